@@ -1,0 +1,108 @@
+"""The command line: `blockyard COMMAND [options]`, a thin layer over warehouse.commands."""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+
+
+def _common(p: argparse.ArgumentParser) -> None:
+    p.add_argument("-w", "--warehouse", metavar="PATH_OR_URL", default=argparse.SUPPRESS,
+                   help="warehouse file or postgresql:// URL (default: $BLOCKYARD_WAREHOUSE, else ./blockyard.db)")
+
+
+def build_parser():
+    from . import __version__
+    from .commands import REGISTRY
+    from . import commands_all  # noqa: F401  (registers the analysis, ledger and shell commands)
+
+    parser = argparse.ArgumentParser(
+        prog="blockyard",
+        description="Blockyard: a results warehouse and blocked-analysis shell for solver benchmarks.",
+        epilog="Run 'blockyard COMMAND --help' for a command's options; 'blockyard demo' builds a demo warehouse.",
+    )
+    parser.add_argument("--version", action="version", version=f"blockyard {__version__}")
+    _common(parser)
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for cmd in REGISTRY.values():
+        p = sub.add_parser(cmd.name, help=cmd.summary, description=f"{cmd.summary}.",
+                           epilog=f"example: {cmd.example}")
+        _common(p)
+        cmd.configure(p)
+    return parser
+
+
+class _Parser(argparse.ArgumentParser):
+    pass
+
+
+def run(argv: list[str] | None = None, out=None, err=None) -> int:
+    from .commands import REGISTRY
+    from .errors import BlockyardError
+    from .session import Session
+
+    out = out or sys.stdout
+    err = err or sys.stderr
+    parser = build_parser()
+    try:
+        a = parser.parse_args(argv)
+    except SystemExit as exc:  # argparse already printed usage and the problem
+        return int(exc.code or 0) if exc.code in (0, None) else 2
+    if not a.command:
+        parser.print_help(out)
+        return 0
+    session = Session(location=getattr(a, "warehouse", None))
+    cmd = REGISTRY[a.command]
+    try:
+        result = cmd.run(session, a)
+        if getattr(a, "json", False):
+            out.write(json.dumps(result.to_dict(), indent=2, default=_json_default) + "\n")
+        else:
+            text = result.render()
+            if text:
+                out.write(text + "\n")
+        status = getattr(result, "exit_status", 0)
+        if status and not getattr(a, "json", False):
+            for line in getattr(result, "errors", lambda: [])():
+                err.write(f"blockyard: {line}\n")
+        return status
+    except BlockyardError as exc:
+        err.write(f"blockyard: {exc}\n")
+        return exc.exit_status
+    except KeyboardInterrupt:
+        err.write("blockyard: interrupted; nothing half-written was kept\n")
+        return 130
+    finally:
+        session.close()
+
+
+def _json_default(o):
+    import math
+
+    try:
+        import numpy as np
+
+        if isinstance(o, np.integer):
+            return int(o)
+        if isinstance(o, np.floating):
+            v = float(o)
+            return None if math.isnan(v) or math.isinf(v) else v
+        if isinstance(o, np.ndarray):
+            return o.tolist()
+    except ImportError:  # pragma: no cover
+        pass
+    return str(o)
+
+
+def main() -> None:
+    try:
+        code = run()
+    except BrokenPipeError:  # output piped into head: not an error
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        code = 0
+    sys.exit(code)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,223 @@
+"""Every command as one function over a Session: the CLI, the shell and notebooks call these.
+
+A command's `run` returns a result object with `to_dict()` (the --json document) and `render()`
+(the text a person reads). Arguments are declared once, for argparse; the shell reuses them.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from dataclasses import dataclass, field
+from typing import Callable
+
+from .errors import InputError
+from .session import Session
+
+
+@dataclass
+class Command:
+    name: str
+    summary: str
+    example: str
+    configure: Callable[[argparse.ArgumentParser], None]
+    run: Callable[[Session, argparse.Namespace], object]
+    needs_warehouse: bool = True
+
+
+REGISTRY: dict[str, Command] = {}
+
+
+def command(name: str, summary: str, example: str, needs_warehouse: bool = True):
+    def wrap(fn):
+        def configure(p):
+            fn.configure(p)
+        REGISTRY[name] = Command(name, summary, example, fn.configure, fn, needs_warehouse)
+        return fn
+    return wrap
+
+
+def args(configure):
+    """Attach an argument declaration to a command function."""
+    def wrap(fn):
+        fn.configure = configure
+        return fn
+    return wrap
+
+
+@dataclass
+class Done:
+    """A plain result: a message and a JSON document."""
+
+    text: str
+    doc: dict = field(default_factory=dict)
+    exit_status: int = 0
+
+    def to_dict(self) -> dict:
+        return self.doc
+
+    def render(self) -> str:
+        return self.text
+
+
+def add_json(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout instead of text")
+
+
+# --- init, upgrade -----------------------------------------------------------------------------
+
+def _init_args(p):
+    add_json(p)
+
+
+@command("init", "create a new warehouse (a SQLite file, or a PostgreSQL URL)",
+         "blockyard init -w results.db", needs_warehouse=False)
+@args(_init_args)
+def cmd_init(session: Session, a) -> Done:
+    from .store.connect import init_warehouse
+    from .store.schema import SCHEMA_REVISION
+
+    wh = init_warehouse(session.location)
+    shown = wh.display
+    wh.close()
+    return Done(f"created warehouse {shown} (schema {SCHEMA_REVISION})\nnext: blockyard load FILE --campaign NAME -w {session.where}",
+                {"warehouse": shown, "schema": SCHEMA_REVISION, "status": "created"})
+
+
+@command("upgrade", "bring an older warehouse to this version's schema (copies the file aside first)",
+         "blockyard upgrade -w results.db", needs_warehouse=False)
+@args(_init_args)
+def cmd_upgrade(session: Session, a) -> Done:
+    from .store.connect import upgrade_warehouse
+    from .store.schema import SCHEMA_REVISION
+
+    wh, old, backup = upgrade_warehouse(session.location)
+    shown = wh.display
+    wh.close()
+    if old == SCHEMA_REVISION:
+        return Done(f"warehouse {shown} is already at schema {SCHEMA_REVISION}; nothing to do",
+                    {"warehouse": shown, "from": old, "to": SCHEMA_REVISION, "backup": None, "status": "current"})
+    where = f"; the old file is kept as {backup}" if backup else ""
+    return Done(f"upgraded warehouse {shown} from schema {old} to {SCHEMA_REVISION}{where}",
+                {"warehouse": shown, "from": old, "to": SCHEMA_REVISION, "backup": backup, "status": "upgraded"})
+
+
+# --- load --------------------------------------------------------------------------------------
+
+def _load_args(p):
+    p.add_argument("files", nargs="+", metavar="FILE", help="result files: .csv .tsv .jsonl .parquet, optionally .gz")
+    p.add_argument("--campaign", required=True, help="campaign the runs belong to (created if new)")
+    p.add_argument("--layout", metavar="L.toml", help="layout file mapping this source's columns (docs/loading.md)")
+    p.add_argument("--skip-bad", action="store_true", help="load the good rows; write rejected ones with a reason")
+    p.add_argument("--rejects", metavar="FILE", help="where --skip-bad writes rejected rows (default: beside the source)")
+    p.add_argument("--dry-run", action="store_true", help="read and check everything, print the mapping, store nothing")
+    add_json(p)
+
+
+@dataclass
+class LoadResult:
+    reports: list
+    dry_run: bool
+
+    @property
+    def exit_status(self) -> int:
+        return 2 if any(r.status == "refused" for r in self.reports) else 0
+
+    def to_dict(self) -> dict:
+        return {"imports": [r.to_dict() for r in self.reports]}
+
+    def errors(self) -> list[str]:
+        return [r.message for r in self.reports if r.status == "refused"]
+
+    def render(self) -> str:
+        from .present.loading import render_load
+
+        return render_load(self)
+
+
+@command("load", "read result files into a campaign, all or nothing per file",
+         "blockyard load runs-nov.csv --campaign nov-tuning --layout rack-b.toml")
+@args(_load_args)
+def cmd_load(session: Session, a) -> LoadResult:
+    from .errors import BlockyardError
+    from .ingest.layout import read_layout
+    from .ingest.loader import FileReport, load_file
+
+    layout = read_layout(a.layout)
+    wh = session.warehouse()
+    reports = []
+    if a.rejects and len(a.files) > 1:
+        raise InputError("--rejects names one file; with several sources leave it out (each gets its own beside it)")
+    for f in a.files:
+        progress = _progress_bar(f) if (sys.stderr.isatty() and not getattr(a, "json", False)) else None
+        try:
+            with progress or _Null() as bar:
+                rep = load_file(wh, f, a.campaign, layout, skip_bad=a.skip_bad, dry_run=a.dry_run,
+                                rejects=a.rejects, progress=bar.update if progress else None)
+        except BlockyardError as exc:
+            rep = FileReport(file=f, status="refused", campaign=a.campaign, message=str(exc))
+        reports.append(rep)
+    return LoadResult(reports, a.dry_run)
+
+
+class _Null:
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return False
+
+
+def _progress_bar(name: str):
+    from .present.progress import FileProgress
+
+    return FileProgress(name)
+
+
+# --- inventory ---------------------------------------------------------------------------------
+
+def _inventory_args(p):
+    from .inventory import KINDS
+
+    p.add_argument("kind", nargs="?", choices=KINDS, metavar="LISTING",
+                   help=f"list one kind of thing: {', '.join(KINDS)} (default: counts only)")
+    p.add_argument("--limit", type=int, help="show at most this many rows")
+    add_json(p)
+
+
+@dataclass
+class InventoryResult:
+    inv: object
+
+    def to_dict(self) -> dict:
+        return self.inv.to_dict()
+
+    def render(self) -> str:
+        from .present.loading import render_inventory
+
+        return render_inventory(self.inv)
+
+
+@command("inventory", "what the warehouse holds: counts, or a listing of one kind",
+         "blockyard inventory solvers")
+@args(_inventory_args)
+def cmd_inventory(session: Session, a) -> InventoryResult:
+    from .inventory import inventory
+
+    return InventoryResult(inventory(session.warehouse(), a.kind, a.limit))
+
+
+# --- demo --------------------------------------------------------------------------------------
+
+def _demo_args(p):
+    p.add_argument("folder", nargs="?", default=".", help="where to put the demo files and demo.db (default: here)")
+    add_json(p)
+
+
+@command("demo", "build a demo warehouse from generated campaign files and walk the main job",
+         "blockyard demo /tmp/yard", needs_warehouse=False)
+@args(_demo_args)
+def cmd_demo(session: Session, a) -> Done:
+    from .walkthrough import run_demo
+
+    return run_demo(a.folder, json_mode=a.json)

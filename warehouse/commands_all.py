@@ -1,0 +1,2 @@
+"""Imports every module that registers commands, in the order help lists them."""
+from . import commands  # noqa: F401

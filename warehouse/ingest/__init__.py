@@ -1,0 +1,1 @@
+"""Ingest layer: reading result files and writing their runs into the warehouse."""

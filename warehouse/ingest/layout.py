@@ -1,0 +1,158 @@
+"""Layout files: how one source's columns, constants, status words and metrics map to ours.
+
+A layout is a small TOML file (see docs/loading.md):
+
+    [columns]            # source column = our field, or a metric's name
+    algo = "solver"
+    [constants]          # a value for every row of the file
+    host = "rack-b"
+    [status]             # the source's own words = ok | timeout | failed | infeasible
+    TLE = "timeout"
+    [group]              # derive the group (and family) from the instance name
+    pattern = '^(?P<family>[^/]+)/(?P<group>[^/]+)/'
+    [metrics.pallets]    # sense (min or max) and unit of a metric
+    sense = "min"
+    unit = "pallets"
+    [missing]            # words that mean "no value" in metric columns
+    words = ["n/a", "-"]
+    [ignore]
+    columns = ["notes"]
+"""
+from __future__ import annotations
+
+import re
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ..errors import InputError
+
+NAME_LIMIT = 255
+FIELDS = (
+    "solver", "version", "build", "params", "family", "group", "instance", "seed", "replicate",
+    "status", "finished_at", "host", "instance_hash",
+)
+STATUSES = ("ok", "timeout", "failed", "infeasible")
+# words many tools write for our four statuses; a layout adds more
+STATUS_WORDS = {
+    "ok": "ok", "success": "ok", "solved": "ok", "optimal": "ok", "feasible": "ok", "done": "ok",
+    "timeout": "timeout", "time_limit": "timeout", "timelimit": "timeout", "time-out": "timeout",
+    "failed": "failed", "fail": "failed", "error": "failed", "crash": "failed", "crashed": "failed",
+    "infeasible": "infeasible",
+}
+SECTIONS = {"columns", "constants", "status", "group", "metrics", "missing", "ignore", "attributes"}
+
+
+@dataclass
+class MetricSpec:
+    sense: str = "min"
+    unit: str = ""
+
+
+@dataclass
+class Layout:
+    """What a layout file says; the empty layout maps canonical columns only."""
+
+    source: str = ""
+    columns: dict[str, str] = field(default_factory=dict)  # lower-cased source name -> target
+    constants: dict[str, str] = field(default_factory=dict)
+    status: dict[str, str] = field(default_factory=dict)  # lower-cased word -> status
+    group_pattern: re.Pattern | None = None
+    metrics: dict[str, MetricSpec] = field(default_factory=dict)
+    missing: tuple[str, ...] = ()
+    ignore: tuple[str, ...] = ()
+    attributes: tuple[str, ...] = ()
+    text: str = ""
+
+    def status_words(self) -> dict[str, str]:
+        words = dict(STATUS_WORDS)
+        words.update(self.status)
+        return words
+
+
+def _err(path: str, msg: str) -> InputError:
+    return InputError(f"layout {path}: {msg}")
+
+
+def _table(doc: dict, key: str, path: str) -> dict:
+    value = doc.get(key, {})
+    if not isinstance(value, dict):
+        raise _err(path, f"[{key}] must be a table of name = value lines")
+    return value
+
+
+def _strings(table: dict, section: str, path: str) -> dict[str, str]:
+    out = {}
+    for k, v in table.items():
+        if not isinstance(v, (str, int, float)) or isinstance(v, bool):
+            raise _err(path, f"[{section}] {k} must be a text value, not {type(v).__name__}")
+        out[str(k)] = str(v)
+    return out
+
+
+def _names(doc: dict, section: str, path: str) -> tuple[str, ...]:
+    value = _table(doc, section, path)
+    names = value.get("columns", value.get("words", []))
+    if not isinstance(names, list) or not all(isinstance(n, str) for n in names):
+        raise _err(path, f"[{section}] needs a list of names, e.g. columns = [\"notes\"]")
+    extra = set(value) - {"columns", "words"}
+    if extra:
+        raise _err(path, f"[{section}] has unknown key '{sorted(extra)[0]}'")
+    return tuple(names)
+
+
+def read_layout(path: str | Path | None) -> Layout:
+    if path is None:
+        return Layout()
+    p = Path(path)
+    shown = str(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError(f"layout {shown}: no such file") from None
+    except UnicodeDecodeError as exc:
+        raise _err(shown, f"not UTF-8 text (byte {exc.start})") from None
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise _err(shown, f"not valid TOML: {exc}") from None
+    unknown = set(doc) - SECTIONS
+    if unknown:
+        raise _err(shown, f"unknown section [{sorted(unknown)[0]}]; known: {', '.join(sorted(SECTIONS))}")
+    lay = Layout(source=shown, text=text)
+    for src, target in _strings(_table(doc, "columns", shown), "columns", shown).items():
+        lay.columns[src.lower()] = target.strip()
+    constants = _strings(_table(doc, "constants", shown), "constants", shown)
+    for k, v in constants.items():
+        if k not in FIELDS:
+            raise _err(shown, f"[constants] {k}: unknown field; known: {', '.join(FIELDS)}")
+        lay.constants[k] = v
+    for word, status in _strings(_table(doc, "status", shown), "status", shown).items():
+        if status not in STATUSES:
+            raise _err(shown, f"[status] {word} = '{status}': must be one of {', '.join(STATUSES)}")
+        lay.status[word.strip().lower()] = status
+    grp = _table(doc, "group", shown)
+    if grp:
+        pattern = grp.get("pattern")
+        if not isinstance(pattern, str) or set(grp) - {"pattern"}:
+            raise _err(shown, "[group] takes one key, pattern = a regular expression with a named group 'group'")
+        try:
+            lay.group_pattern = re.compile(pattern)
+        except re.error as exc:
+            raise _err(shown, f"[group] pattern does not compile: {exc}") from None
+        if "group" not in lay.group_pattern.groupindex:
+            raise _err(shown, "[group] pattern needs a named group (?P<group>...)")
+    for name, spec in _table(doc, "metrics", shown).items():
+        if not isinstance(spec, dict):
+            raise _err(shown, f"[metrics.{name}] must be a table with sense and unit")
+        extra = set(spec) - {"sense", "unit"}
+        if extra:
+            raise _err(shown, f"[metrics.{name}] unknown key '{sorted(extra)[0]}' (known: sense, unit)")
+        sense = str(spec.get("sense", "min")).lower()
+        if sense not in ("min", "max"):
+            raise _err(shown, f"[metrics.{name}] sense = '{sense}': must be min or max")
+        lay.metrics[name] = MetricSpec(sense=sense, unit=str(spec.get("unit", "")))
+    lay.missing = _names(doc, "missing", shown)
+    lay.ignore = tuple(n.lower() for n in _names(doc, "ignore", shown))
+    lay.attributes = tuple(n.lower() for n in _names(doc, "attributes", shown))
+    return lay

@@ -1,0 +1,109 @@
+"""What a warehouse holds: counts and listings, each one SQL query."""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+from sqlalchemy import func, select
+
+from .errors import InputError
+from .store import schema as S
+from .store.connect import Warehouse
+
+KINDS = ("campaigns", "solvers", "families", "groups", "metrics", "imports", "hosts")
+
+
+@dataclass
+class Inventory:
+    warehouse: str
+    counts: dict[str, int]
+    kind: str | None = None
+    headers: list[str] = field(default_factory=list)
+    rows: list[list] = field(default_factory=list)
+
+    def to_dict(self) -> dict:
+        d = dict(self.counts)
+        d["warehouse"] = self.warehouse
+        if self.kind:
+            d[f"{self.kind}_list"] = [dict(zip(self.headers, r)) for r in self.rows]
+        return d
+
+
+def _when(epoch) -> str:
+    return time.strftime("%Y-%m-%d %H:%M", time.gmtime(epoch)) if epoch else ""
+
+
+def counts(conn) -> dict[str, int]:
+    n = lambda t: conn.execute(select(func.count()).select_from(t)).scalar()  # noqa: E731
+    total = n(S.runs)
+    retracted = conn.execute(
+        select(func.coalesce(func.sum(S.retractions.c.runs), 0)).where(S.retractions.c.undone_at.is_(None))
+    ).scalar()
+    return {
+        "campaigns": n(S.campaigns), "solvers": n(S.solvers), "families": n(S.families),
+        "groups": n(S.groups), "instances": n(S.instances), "metrics": n(S.metrics),
+        "imports": n(S.imports), "hosts": n(S.hosts), "runs": total - int(retracted),
+        "retracted": int(retracted),
+    }
+
+
+def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) -> Inventory:
+    if kind is not None and kind not in KINDS:
+        from difflib import get_close_matches
+
+        near = get_close_matches(kind, KINDS, n=1)
+        hint = f" (did you mean '{near[0]}'?)" if near else ""
+        raise InputError(f"inventory: unknown listing '{kind}'{hint}; choose from {', '.join(KINDS)}")
+    with wh.engine.connect() as conn:
+        inv = Inventory(wh.display, counts(conn), kind)
+        if kind is None:
+            return inv
+        r = S.runs
+        live = r.c.retraction_id.is_(None)
+        if kind == "campaigns":
+            q = (select(S.campaigns.c.name, func.count(r.c.id), S.campaigns.c.created_at)
+                 .select_from(S.campaigns.outerjoin(r, (r.c.campaign_id == S.campaigns.c.id) & live))
+                 .group_by(S.campaigns.c.id, S.campaigns.c.name, S.campaigns.c.created_at).order_by(S.campaigns.c.name))
+            inv.headers = ["campaign", "runs", "created"]
+            inv.rows = [[a, b, _when(c)] for a, b, c in conn.execute(q)]
+        elif kind == "solvers":
+            q = (select(S.solvers.c.name, S.solvers.c.version, S.solvers.c.build, func.count(r.c.id))
+                 .select_from(S.solvers.outerjoin(r, (r.c.solver_id == S.solvers.c.id) & live))
+                 .group_by(S.solvers.c.id, S.solvers.c.name, S.solvers.c.version, S.solvers.c.build))
+            rows = [[f"{a}@{b}" if b else a, c, d] for a, b, c, d in conn.execute(q)]
+            from .select.versions import version_key
+
+            rows.sort(key=lambda x: (x[0].split("@")[0], version_key(x[0].split("@", 1)[1] if "@" in x[0] else "")))
+            inv.headers = ["treatment", "build", "runs"]
+            inv.rows = rows
+        elif kind == "families":
+            q = (select(S.families.c.name, func.count(func.distinct(S.groups.c.id)), func.count(func.distinct(S.instances.c.id)))
+                 .select_from(S.families.outerjoin(S.groups).outerjoin(S.instances))
+                 .group_by(S.families.c.id, S.families.c.name).order_by(S.families.c.name))
+            inv.headers = ["family", "groups", "instances"]
+            inv.rows = [list(x) for x in conn.execute(q)]
+        elif kind == "groups":
+            q = (select(S.families.c.name, S.groups.c.name, func.count(S.instances.c.id))
+                 .select_from(S.groups.join(S.families).outerjoin(S.instances))
+                 .group_by(S.groups.c.id, S.families.c.name, S.groups.c.name).order_by(S.families.c.name, S.groups.c.name))
+            inv.headers = ["block", "instances"]
+            inv.rows = [[f"{a}/{b}", c] for a, b, c in conn.execute(q)]
+        elif kind == "metrics":
+            q = select(S.metrics.c.name, S.metrics.c.sense, S.metrics.c.unit).order_by(S.metrics.c.name)
+            inv.headers = ["metric", "better", "unit"]
+            inv.rows = [[a, "lower" if b == "min" else "higher", c] for a, b, c in conn.execute(q)]
+        elif kind == "hosts":
+            q = (select(S.hosts.c.name, func.count(r.c.id)).select_from(S.hosts.outerjoin(r, (r.c.host_id == S.hosts.c.id) & live))
+                 .group_by(S.hosts.c.id, S.hosts.c.name).order_by(S.hosts.c.name))
+            inv.headers = ["host", "runs"]
+            inv.rows = [list(x) for x in conn.execute(q)]
+        else:  # imports
+            q = (select(S.imports.c.id, S.campaigns.c.name, S.imports.c.file_name, S.imports.c.rows_read,
+                        S.imports.c.rows_loaded, S.imports.c.rows_rejected, S.imports.c.rows_skipped,
+                        S.imports.c.loaded_at, S.imports.c.sha256)
+                 .join(S.campaigns).order_by(S.imports.c.id))
+            inv.headers = ["import", "campaign", "file", "read", "loaded", "rejected", "skipped", "loaded at", "sha256"]
+            inv.rows = [[a, b, c, d, e, f, g, _when(h), i[:12]] for a, b, c, d, e, f, g, h, i in conn.execute(q)]
+        if limit is not None:
+            inv.rows = inv.rows[:limit]
+    return inv

@@ -1,0 +1,1 @@
+"""Select layer: the slice language, compiled to SQL expressions with bound parameters."""

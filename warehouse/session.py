@@ -1,0 +1,46 @@
+"""The one piece of state a front end keeps: where the warehouse is, the focus, the settings."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from .store.connect import Warehouse, open_warehouse, resolve_location
+
+
+@dataclass
+class Collapse:
+    replicates: str = "mean"  # mean | median | trimmed:0.1
+    instances: str = "mean"  # mean | median
+    failures: str = "drop"  # drop | penalize:FACTOR | worst
+    holes: str = "drop"  # drop | keep
+
+    def to_dict(self) -> dict:
+        return {"replicates": self.replicates, "instances": self.instances,
+                "failures": self.failures, "holes": self.holes}
+
+
+@dataclass
+class Session:
+    location: str | None = None
+    focus: str = ""
+    metric: str | None = None
+    collapse: Collapse = field(default_factory=Collapse)
+    last_analysis: int | None = None
+    interactive: bool = False
+    _wh: Warehouse | None = None
+
+    @property
+    def where(self) -> str:
+        return resolve_location(self.location)
+
+    def warehouse(self) -> Warehouse:
+        if self._wh is None:
+            self._wh = open_warehouse(self.location)
+        return self._wh
+
+    def reset(self) -> None:
+        if self._wh is not None:
+            self._wh.close()
+        self._wh = None
+
+    def close(self) -> None:
+        self.reset()

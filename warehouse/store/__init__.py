@@ -1,0 +1,1 @@
+"""Storage layer: the schema, migrations and the connection to a warehouse."""

@@ -1,0 +1,235 @@
+"""Finding, opening, creating and upgrading a warehouse.
+
+Where it lives: the explicit location, else $BLOCKYARD_WAREHOUSE, else ./blockyard.db. A plain
+path is SQLite (WAL, foreign keys on, a busy timeout); a postgresql:// URL is a team server
+reached through psycopg 3. Passwords are never shown: `Warehouse.display` hides them.
+"""
+from __future__ import annotations
+
+import os
+import shutil
+import sqlite3
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+from sqlalchemy import create_engine, event, inspect, text
+from sqlalchemy.engine import Engine, make_url
+from sqlalchemy.exc import ArgumentError, OperationalError, DatabaseError
+
+from ..errors import StorageError
+from .schema import SCHEMA_REVISION
+
+DEFAULT_FILE = "blockyard.db"
+ENV_VAR = "BLOCKYARD_WAREHOUSE"
+BUSY_TIMEOUT_MS = 60_000
+
+
+@dataclass
+class Warehouse:
+    """An open warehouse: the engine plus how to name it to a user."""
+
+    engine: Engine
+    location: str  # what the user gave (path or URL), password hidden
+    path: Path | None  # the SQLite file, or None on a server
+
+    @property
+    def dialect(self) -> str:
+        return self.engine.dialect.name
+
+    @property
+    def is_sqlite(self) -> bool:
+        return self.dialect == "sqlite"
+
+    @property
+    def display(self) -> str:
+        return str(self.path) if self.path is not None else self.location
+
+    def write(self):
+        """A connection whose transactions take the write lock at BEGIN (no lock upgrades)."""
+        return self.engine.connect().execution_options(blockyard_write=True)
+
+    def close(self) -> None:
+        self.engine.dispose()
+
+
+def resolve_location(location: str | None) -> str:
+    return location or os.environ.get(ENV_VAR) or DEFAULT_FILE
+
+
+def _is_url(location: str) -> bool:
+    return "://" in location
+
+
+def _sqlite_engine(path: Path) -> Engine:
+    engine = create_engine(f"sqlite:///{path}", future=True)
+
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn, _record):
+        # The driver's own transaction handling is switched off; we emit BEGIN ourselves so that
+        # writers can take the lock up front (BEGIN IMMEDIATE) and never fail on an upgrade.
+        dbapi_conn.isolation_level = None
+        cur = dbapi_conn.cursor()
+        cur.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
+        cur.execute("PRAGMA foreign_keys = ON")
+        try:
+            cur.execute("PRAGMA journal_mode = WAL")
+        except sqlite3.OperationalError:
+            pass  # read-only file or directory: keep whatever journal it has
+        cur.execute("PRAGMA synchronous = NORMAL")
+        cur.execute("PRAGMA temp_store = MEMORY")
+        cur.execute("PRAGMA cache_size = -65536")
+        cur.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn):
+        write = conn.get_execution_options().get("blockyard_write", False)
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if write else "BEGIN")
+
+    return engine
+
+
+def _server_engine(location: str) -> tuple[Engine, str]:
+    try:
+        url = make_url(location)
+    except ArgumentError as exc:
+        raise StorageError(f"warehouse URL does not parse: {exc}") from None
+    if url.drivername in ("postgresql", "postgres", "postgresql+psycopg"):
+        url = url.set(drivername="postgresql+psycopg")
+    else:
+        raise StorageError(
+            f"warehouse URL scheme '{url.drivername}' is not supported; use a file path (SQLite) "
+            "or postgresql://user@host/dbname"
+        )
+    engine = create_engine(url, future=True, pool_pre_ping=True)
+    return engine, url.render_as_string(hide_password=True)
+
+
+def _make(location: str) -> Warehouse:
+    if _is_url(location):
+        engine, shown = _server_engine(location)
+        return Warehouse(engine, shown, None)
+    path = Path(location).expanduser()
+    return Warehouse(_sqlite_engine(path), str(path), path)
+
+
+def stored_revision(wh: Warehouse) -> str | None:
+    """The alembic revision a warehouse is at, or None when it has no schema."""
+    try:
+        with wh.engine.connect() as conn:
+            if not inspect(conn).has_table("alembic_version"):
+                return None
+            return conn.execute(text("SELECT version_num FROM alembic_version")).scalar()
+    except OperationalError as exc:
+        raise StorageError(f"cannot open warehouse {wh.display}: {_reason(exc)}") from None
+    except DatabaseError as exc:
+        raise StorageError(f"{wh.display} is not a warehouse: {_reason(exc)}") from None
+
+
+def _reason(exc: Exception) -> str:
+    orig = getattr(exc, "orig", None) or exc
+    return str(orig).strip().splitlines()[0] if str(orig).strip() else type(orig).__name__
+
+
+def open_warehouse(location: str | None = None) -> Warehouse:
+    """Open an existing warehouse at the current schema, or say exactly what to do."""
+    location = resolve_location(location)
+    if not _is_url(location) and not Path(location).expanduser().exists():
+        raise StorageError(
+            f"no warehouse at {location}; create one with: blockyard init -w {location} "
+            "(or run blockyard demo)"
+        )
+    wh = _make(location)
+    rev = stored_revision(wh)
+    if rev is None:
+        wh.close()
+        raise StorageError(f"{wh.display} has no Blockyard schema; create one with: blockyard init -w {location}")
+    if rev != SCHEMA_REVISION:
+        wh.close()
+        if rev < SCHEMA_REVISION:
+            raise StorageError(
+                f"warehouse {wh.display} has schema {rev}, older than this Blockyard's {SCHEMA_REVISION}; "
+                f"run: blockyard upgrade -w {location} (it copies the file aside first)"
+            )
+        raise StorageError(
+            f"warehouse {wh.display} has schema {rev}, newer than this Blockyard's {SCHEMA_REVISION}; "
+            "upgrade Blockyard"
+        )
+    return wh
+
+
+def migrations_dir() -> Path:
+    here = Path(__file__).resolve()
+    for candidate in (here.parents[2] / "migrations", here.parents[1] / "migrations"):
+        if (candidate / "env.py").exists():
+            return candidate
+    raise StorageError("the schema migrations are missing from this installation; reinstall Blockyard")
+
+
+def _alembic_config(conn):
+    from alembic.config import Config
+
+    cfg = Config()
+    cfg.set_main_option("script_location", str(migrations_dir()))
+    cfg.attributes["connection"] = conn
+    return cfg
+
+
+def migrate(wh: Warehouse, revision: str = "head") -> None:
+    """Bring the schema to `revision` through the migrations, in one transaction."""
+    from alembic import command
+
+    with wh.write() as conn:
+        with conn.begin():
+            command.upgrade(_alembic_config(conn), revision)
+
+
+def init_warehouse(location: str | None = None, revision: str = "head") -> Warehouse:
+    """Create a new warehouse (built through the migrations). Refuses to touch an existing one."""
+    location = resolve_location(location)
+    if not _is_url(location):
+        path = Path(location).expanduser()
+        if path.exists() and path.stat().st_size > 0:
+            raise StorageError(f"{location} already exists; open it with -w {location} or pick another name")
+        if not path.parent.exists():
+            raise StorageError(f"folder {path.parent} does not exist")
+    wh = _make(location)
+    if stored_revision(wh) is not None:
+        wh.close()
+        raise StorageError(f"{wh.display} already holds a Blockyard schema")
+    try:
+        migrate(wh, revision)
+    except OperationalError as exc:
+        wh.close()
+        raise StorageError(f"cannot create warehouse {wh.display}: {_reason(exc)}") from None
+    return wh
+
+
+def upgrade_warehouse(location: str | None = None) -> tuple[Warehouse, str | None, str | None]:
+    """Upgrade to the current schema. A SQLite file is first copied aside; returns (wh, old, backup)."""
+    location = resolve_location(location)
+    if not _is_url(location) and not Path(location).expanduser().exists():
+        raise StorageError(f"no warehouse at {location}")
+    wh = _make(location)
+    old = stored_revision(wh)
+    if old is None:
+        wh.close()
+        raise StorageError(f"{wh.display} has no Blockyard schema; nothing to upgrade")
+    if old == SCHEMA_REVISION:
+        return wh, old, None
+    backup = None
+    if wh.path is not None:
+        stamp = time.strftime("%Y%m%d-%H%M%S")
+        backup_path = wh.path.with_name(f"{wh.path.name}.before-{SCHEMA_REVISION}-{stamp}")
+        src = sqlite3.connect(str(wh.path))
+        dst = sqlite3.connect(str(backup_path))
+        try:
+            src.backup(dst)  # consistent copy, WAL included
+        finally:
+            dst.close()
+            src.close()
+        backup = str(backup_path)
+    migrate(wh, "head")
+    return wh, old, backup
+
+

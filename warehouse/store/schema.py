@@ -1,0 +1,182 @@
+"""Every table of a warehouse, declared once (SQLAlchemy Core).
+
+Times are stored as integer seconds since the Unix epoch (UTC): compact, fast to compare and
+identical on SQLite and PostgreSQL. Optional text fields hold '' rather than NULL so that unique
+keys over them work the same on both databases.
+"""
+from __future__ import annotations
+
+from sqlalchemy import (
+    BigInteger,
+    Column,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    MetaData,
+    SmallInteger,
+    String,
+    Table,
+    Text,
+    UniqueConstraint,
+)
+
+# The alembic revision this module describes; a test checks it equals the migrations' head.
+SCHEMA_REVISION = "0002"
+
+NAME = 255  # longest name accepted for solvers, instances, groups, hosts, metrics
+
+metadata = MetaData()
+
+campaigns = Table(
+    "campaigns",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String(NAME), nullable=False, unique=True),
+    Column("description", Text, nullable=False, server_default=""),
+    Column("notes", Text, nullable=False, server_default=""),
+    Column("created_at", BigInteger, nullable=False),
+)
+
+imports = Table(
+    "imports",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("campaign_id", Integer, ForeignKey("campaigns.id"), nullable=False),
+    Column("file_name", Text, nullable=False),
+    Column("sha256", String(64), nullable=False, unique=True),
+    Column("layout", Text, nullable=False, server_default=""),
+    Column("rows_read", Integer, nullable=False),
+    Column("rows_loaded", Integer, nullable=False),
+    Column("rows_rejected", Integer, nullable=False),
+    Column("rows_skipped", Integer, nullable=False, server_default="0"),
+    Column("loaded_at", BigInteger, nullable=False),
+    Column("tool_version", String(32), nullable=False),
+)
+
+solvers = Table(
+    "solvers",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String(NAME), nullable=False),
+    Column("version", String(NAME), nullable=False, server_default=""),
+    Column("build", String(NAME), nullable=False, server_default=""),
+    Column("params", Text, nullable=False, server_default=""),
+    UniqueConstraint("name", "version", "build", "params", name="uq_solvers"),
+)
+
+families = Table(
+    "families",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String(NAME), nullable=False, unique=True),
+)
+
+groups = Table(
+    "groups",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("family_id", Integer, ForeignKey("families.id"), nullable=False),
+    Column("name", String(NAME), nullable=False),
+    UniqueConstraint("family_id", "name", name="uq_groups"),
+)
+
+instances = Table(
+    "instances",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("group_id", Integer, ForeignKey("groups.id"), nullable=False),
+    Column("name", String(NAME), nullable=False),
+    Column("content_hash", String(NAME), nullable=False, server_default=""),
+    Column("attributes", Text, nullable=False, server_default=""),
+    UniqueConstraint("group_id", "name", "content_hash", name="uq_instances"),
+)
+
+metrics = Table(
+    "metrics",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String(NAME), nullable=False, unique=True),
+    Column("unit", String(NAME), nullable=False, server_default=""),
+    Column("sense", String(3), nullable=False, server_default="min"),
+    Column("slot", Integer, nullable=False, unique=True),
+)
+
+hosts = Table(
+    "hosts",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String(NAME), nullable=False, unique=True),
+)
+
+retractions = Table(
+    "retractions",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("slice", Text, nullable=False),
+    Column("reason", Text, nullable=False),
+    Column("who", String(NAME), nullable=False, server_default=""),
+    Column("at", BigInteger, nullable=False),
+    Column("runs", Integer, nullable=False, server_default="0"),
+    Column("undone_at", BigInteger, nullable=True),
+)
+
+# Metric values live in the run row itself, one column per metric slot: one row written per run
+# keeps loads near SQLite's own insert speed and lets a slice aggregate without a join.
+METRIC_SLOTS = 24
+VALUE_COLUMNS = [f"v{i}" for i in range(1, METRIC_SLOTS + 1)]
+
+# status codes stored in runs.status
+STATUS_CODES = {"ok": 0, "timeout": 1, "failed": 2, "infeasible": 3}
+STATUS_NAMES = {v: k for k, v in STATUS_CODES.items()}
+
+runs = Table(
+    "runs",
+    metadata,
+    Column("id", BigInteger().with_variant(Integer, "sqlite"), primary_key=True, autoincrement=False),
+    Column("campaign_id", Integer, ForeignKey("campaigns.id"), nullable=False),
+    Column("import_id", Integer, ForeignKey("imports.id"), nullable=False),
+    Column("solver_id", Integer, ForeignKey("solvers.id"), nullable=False),
+    Column("instance_id", Integer, ForeignKey("instances.id"), nullable=False),
+    Column("seed", BigInteger, nullable=False),
+    Column("replicate", Integer, nullable=False),
+    Column("status", SmallInteger, nullable=False),
+    Column("finished_at", BigInteger, nullable=True),
+    Column("host_id", Integer, ForeignKey("hosts.id"), nullable=True),
+    Column("source_line", Integer, nullable=False),
+    Column("retraction_id", Integer, ForeignKey("retractions.id"), nullable=True),
+    *[Column(name, Float, nullable=True) for name in VALUE_COLUMNS],
+    Index("ux_runs_key", "campaign_id", "solver_id", "instance_id", "seed", "replicate", unique=True),
+    Index("ix_runs_solver_instance", "solver_id", "instance_id"),
+    Index("ix_runs_finished", "finished_at"),
+)
+
+# --- the ledger (revision 0002) ---------------------------------------------------------------
+
+analyses = Table(
+    "analyses",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("kind", String(32), nullable=False),
+    Column("slice_text", Text, nullable=False),
+    Column("slice_parsed", Text, nullable=False),
+    Column("metric", String(NAME), nullable=False, server_default=""),
+    Column("settings", Text, nullable=False),
+    Column("observations", Text, nullable=False),
+    Column("max_run_id", BigInteger, nullable=False, server_default="0"),
+    Column("fingerprint", String(64), nullable=False),
+    Column("result", Text, nullable=False),
+    Column("result_digest", String(64), nullable=False),
+    Column("software", Text, nullable=False),
+    Column("created_at", BigInteger, nullable=False),
+)
+
+claims = Table(
+    "claims",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("analysis_id", Integer, ForeignKey("analyses.id"), nullable=False),
+    Column("text", Text, nullable=False),
+    Column("tags", Text, nullable=False, server_default=""),
+    Column("created_at", BigInteger, nullable=False),
+)
