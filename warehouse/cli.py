@@ -73,6 +73,12 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
     except KeyboardInterrupt:
         err.write("blockyard: interrupted; nothing half-written was kept\n")
         return 130
+    except Exception as exc:  # a defect of ours, not the user's: say so, keep the traceback on request
+        if os.environ.get("BLOCKYARD_DEBUG"):
+            raise
+        err.write(f"blockyard: internal error ({type(exc).__name__}: {exc}); "
+                  "rerun with BLOCKYARD_DEBUG=1 for the traceback and report it\n")
+        return 1
     finally:
         session.close()
 

@@ -1,2 +1,3 @@
 """Imports every module that registers commands, in the order help lists them."""
 from . import commands  # noqa: F401
+from . import analysis_commands  # noqa: F401

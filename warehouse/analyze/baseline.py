@@ -33,7 +33,7 @@ MVT_SEED = 20240607
 #: integration points per dimension when solving for a critical value.
 MVT_POINTS_QUANTILE = 25000
 #: integration points per dimension for an adjusted p-value.
-MVT_POINTS_P = 4000
+MVT_POINTS_P = 1500
 
 
 # --------------------------------------------------------------------------- multivariate t

@@ -700,7 +700,8 @@ def rcbd_anova(obs: pd.DataFrame, transform: str = "none") -> BlockedResult:
     if failed:
         what = {"normal": "residuals are not normal", "variance": "variances differ",
                 "additive": "effects are not additive"}
-        problem = " and ".join(what[f] for f in failed)
+        named = [what[f] for f in failed]
+        problem = named[0] if len(named) == 1 else ", ".join(named[:-1]) + " and " + named[-1]
         order = [t for t in ("log", "boxcox", "rank") if t != transform]
         choice = next((c for c in checks if c["transform"] in order and c["passes"]), None)
         if choice is not None:
@@ -712,10 +713,10 @@ def rcbd_anova(obs: pd.DataFrame, transform: str = "none") -> BlockedResult:
             advice.append(
                 f"{problem}: the {label} transform{extra} passes the checks (Shapiro-Wilk "
                 f"{_fmt_p(choice['shapiro_p'])}, Fligner-Killeen {_fmt_p(choice['fligner_p'])}); "
-                f"rerun with that transform or rely on the Friedman test")
+                f"rerun with it, or rely on the Friedman test")
         else:
             recommended = "friedman"
-            advice.append(f"{problem} and no transform passes the checks: rely on the Friedman test "
+            advice.append(f"{problem}, and no transform passes the checks: rely on the Friedman test "
                           f"(Friedman {_fmt_p(fr.p)}, Iman-Davenport {_fmt_p(fr.p_f)})")
 
     h = 1.0 / a + 1.0 / b - 1.0 / (a * b)

@@ -1,0 +1,188 @@
+"""How fast `blockyard load` is, measured against a naive loader on the same file and machine.
+
+    python benchmarks/ingest.py              # 1,000,000 runs, plus the 3,000,000-run memory check
+    python benchmarks/ingest.py --quick      # 200,000 runs (memory check at 200k and 600k)
+    python benchmarks/ingest.py --rows 500000
+
+It writes a made-up campaign file (solver, version, family, group, instance, seed, status,
+finished_at, host and three metrics), then times, each as its own process:
+
+  load       `blockyard init` (not timed), then `blockyard load FILE --campaign bench` (timed)
+  reference  a small script: the csv module reads the file and sqlite3's executemany writes every
+             row into one flat table of text columns with no index, committed once at the end
+
+and prints load / reference (the aim is 1.25 or less). Peak memory is each child's own maximum
+resident size (ru_maxrss from wait4), for a file of N runs and one of 3N runs: chunked reading
+keeps it about flat. It prints numbers and never fails on them.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+SOLVERS = ["stacker", "packwell", "tetra", "layerup"]
+VERSIONS = ["1.4", "1.5", "1.6", "2.0"]
+FAMILIES = ["mixed-sku", "uniform-cartons", "fragile-top", "oversize"]
+GROUPS_PER_FAMILY = 5  # 20 groups
+INSTANCES = 1000  # spread over the groups
+HOSTS = ["rack-a", "rack-b", "rack-c"]
+
+LAYOUT = """[metrics.pallets]
+sense = "min"
+[metrics.fill_pct]
+sense = "max"
+[metrics.seconds]
+sense = "min"
+unit = "s"
+"""
+
+REFERENCE = r'''
+import csv, sqlite3, sys
+src, db = sys.argv[1], sys.argv[2]
+con = sqlite3.connect(db)
+with open(src, newline="", encoding="utf-8") as fh:
+    rows = csv.reader(fh)
+    header = next(rows)
+    cols = ", ".join(f'"{c}" TEXT' for c in header)
+    con.execute(f"CREATE TABLE flat ({cols})")
+    marks = ", ".join("?" * len(header))
+    con.executemany(f"INSERT INTO flat VALUES ({marks})", rows)
+con.commit()
+con.close()
+'''
+
+
+def write_campaign(path: Path, rows: int, seed: int = 7) -> None:
+    """A campaign of `rows` runs: every treatment x instance x seed, cut at `rows`."""
+    import pandas as pd
+
+    rng = np.random.default_rng(seed)
+    treatments = [(s, v) for s in SOLVERS for v in VERSIONS]  # 16 treatments
+    per_seed = len(treatments) * INSTANCES
+    seeds = -(-rows // per_seed)
+    idx = np.arange(rows, dtype=np.int64)
+    seed_no = idx // per_seed + 1
+    rest = idx % per_seed
+    treat = rest // INSTANCES
+    inst = rest % INSTANCES
+    group = inst % (len(FAMILIES) * GROUPS_PER_FAMILY)
+    family = group // GROUPS_PER_FAMILY
+    solver = np.array([t[0] for t in treatments], dtype=object)[treat]
+    version = np.array([t[1] for t in treatments], dtype=object)[treat]
+    fam_names = np.array(FAMILIES, dtype=object)
+    group_names = np.array([f"g{g % GROUPS_PER_FAMILY + 1}" for g in range(len(FAMILIES) * GROUPS_PER_FAMILY)], dtype=object)
+    inst_names = np.array([f"{FAMILIES[(i % 20) // 5]}-{i:04d}" for i in range(INSTANCES)], dtype=object)
+    status = np.where(rng.random(rows) < 0.03, "timeout", "ok").astype(object)
+    base = 20 + (inst % 37)
+    pallets = np.round(base * (1 + rng.normal(0, 0.02, rows))).astype(np.int64).astype(str).astype(object)
+    fill = np.round(70 + 25 * rng.random(rows), 2).astype(str).astype(object)
+    secs = np.round(base * (0.5 + rng.random(rows)), 3).astype(str).astype(object)
+    timeout = status == "timeout"
+    pallets[timeout] = ""
+    fill[timeout] = ""
+    start = np.datetime64("2026-11-01T00:00:00", "s")
+    finished = (start + (idx * 7 % (30 * 86400)).astype("timedelta64[s]")).astype(str).astype(object) + "Z"
+    frame = pd.DataFrame({
+        "solver": solver, "version": version, "family": fam_names[family], "group": group_names[group],
+        "instance": inst_names[inst], "seed": seed_no, "status": status, "finished_at": finished,
+        "host": np.array(HOSTS, dtype=object)[idx % len(HOSTS)],
+        "pallets": pallets, "fill_pct": fill, "seconds": secs,
+    })
+    frame.to_csv(path, index=False)
+    del seeds
+
+
+def run_child(argv: list[str]) -> tuple[float, float, int]:
+    """Run a command; return (wall seconds, peak resident MiB of that child, exit status)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    _, status, usage = os.wait4(proc.pid, 0)
+    wall = time.perf_counter() - t0
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    err = proc.stderr.read().decode(errors="replace").strip() if proc.stderr else ""
+    proc.stderr.close()
+    if proc.returncode:
+        print(f"  (child {' '.join(argv[:3])}... exited {proc.returncode}: {err.splitlines()[-1] if err else ''})")
+    return wall, usage.ru_maxrss / 1024.0, proc.returncode  # ru_maxrss is in KiB on Linux
+
+
+def blockyard_cmd() -> list[str]:
+    exe = Path(sys.executable).with_name("blockyard")
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "warehouse"]
+
+
+def time_load(csv_path: Path, work: Path, tag: str) -> tuple[float, float]:
+    db = work / f"load-{tag}.db"
+    layout = work / "bench.toml"
+    layout.write_text(LAYOUT, encoding="utf-8")
+    for f in work.glob(f"load-{tag}.db*"):
+        f.unlink()
+    run_child(blockyard_cmd() + ["init", "-w", str(db)])
+    wall, peak, _ = run_child(blockyard_cmd() + ["load", str(csv_path), "--campaign", "bench",
+                                                  "--layout", str(layout), "-w", str(db)])
+    return wall, peak
+
+
+def time_reference(csv_path: Path, work: Path, tag: str) -> tuple[float, float]:
+    db = work / f"ref-{tag}.db"
+    for f in work.glob(f"ref-{tag}.db*"):
+        f.unlink()
+    script = work / "reference.py"
+    script.write_text(REFERENCE, encoding="utf-8")
+    wall, peak, _ = run_child([sys.executable, str(script), str(csv_path), str(db)])
+    return wall, peak
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", type=int, default=1_000_000, help="runs in the timed file (default 1,000,000)")
+    ap.add_argument("--quick", action="store_true", help="200,000 runs")
+    ap.add_argument("--repeat", type=int, default=1, help="time each side this many times, keep the best")
+    ap.add_argument("--no-memory", action="store_true", help="skip the 3N-run memory check")
+    ap.add_argument("--dir", help="work folder (default: a temporary one, removed afterwards)")
+    a = ap.parse_args()
+    rows = 200_000 if a.quick else a.rows
+    tmp = None
+    if a.dir:
+        work = Path(a.dir)
+        work.mkdir(parents=True, exist_ok=True)
+    else:
+        tmp = tempfile.TemporaryDirectory(prefix="blockyard-bench-")
+        work = Path(tmp.name)
+    try:
+        src = work / f"runs-{rows}.csv"
+        t0 = time.perf_counter()
+        write_campaign(src, rows)
+        mib = src.stat().st_size / 2**20
+        print(f"file       {rows:,} runs, {mib:.0f} MiB ({time.perf_counter() - t0:.1f} s to write)")
+        best_load = best_ref = float("inf")
+        peak_load = peak_ref = 0.0
+        for _ in range(max(1, a.repeat)):
+            wall, peak = time_reference(src, work, "n")
+            best_ref, peak_ref = min(best_ref, wall), max(peak_ref, peak)
+            wall, peak = time_load(src, work, "n")
+            best_load, peak_load = min(best_load, wall), max(peak_load, peak)
+        print(f"load       {best_load:6.2f} s   {rows / best_load:10,.0f} runs/s   peak {peak_load:5.0f} MiB")
+        print(f"reference  {best_ref:6.2f} s   {rows / best_ref:10,.0f} runs/s   peak {peak_ref:5.0f} MiB")
+        print(f"ratio      load / reference = {best_load / best_ref:.2f} (aim: 1.25 or less)")
+        if not a.no_memory:
+            big = work / f"runs-{3 * rows}.csv"
+            write_campaign(big, 3 * rows)
+            wall3, peak3 = time_load(big, work, "3n")
+            print(f"memory     peak {peak_load:.0f} MiB at {rows:,} runs, {peak3:.0f} MiB at {3 * rows:,} runs "
+                  f"(x{peak3 / peak_load:.2f} for 3x the rows; load took {wall3:.1f} s, {3 * rows / wall3:,.0f} runs/s)")
+            big.unlink()
+    finally:
+        if tmp is not None:
+            tmp.cleanup()
+
+
+if __name__ == "__main__":
+    main()

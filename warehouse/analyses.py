@@ -1,0 +1,339 @@
+"""The analyses behind blocktest, versus and plan, as functions of explicit inputs.
+
+Each takes an open connection, a parsed slice, a metric, collapse settings and its own options,
+and returns a result that knows its JSON document and its text. The ledger re-runs these same
+functions to recheck a stored analysis.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import pandas as pd
+
+from .collapse import Collapsed, collapse
+from .errors import DesignError, InputError
+from .select.slices import Slice
+from .session import Collapse
+
+ALPHA = 0.05
+
+
+def _collapse_doc(c: Collapsed) -> dict:
+    return {"runs_in_slice": c.runs_in_slice, "runs_used": c.runs_used, "instances_used": c.instances_used,
+            "notes": c.notes, "settings": c.settings, "hosts": c.hosts, "campaigns": c.campaigns}
+
+
+@dataclass
+class BlocktestResult:
+    collapsed: Collapsed
+    design: str  # complete | incomplete | generalized
+    stats: object  # BlockedResult | IncompleteResult | GeneralizedResult
+    pairs: list = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    analysis_id: int | None = None
+    options: dict = field(default_factory=dict)
+
+    kind = "blocktest"
+
+    def to_dict(self) -> dict:
+        c, s = self.collapsed, self.stats
+        d = {"slice": c.slice_text, "metric": c.metric, "sense": c.sense, "design": self.design,
+             "treatments": len(c.treatments), "blocks": len(c.blocks), "treatment_names": c.treatments,
+             "dropped_blocks": c.dropped_blocks, "anova": s.to_dict()["anova"], "collapse": _collapse_doc(c),
+             "warnings": self.warnings}
+        sd = s.to_dict()
+        for key in ("r_squared", "relative_efficiency", "relative_efficiency_corrected", "residual_ms",
+                    "residual_df", "transform", "recommended", "advice", "balance", "interaction_ms",
+                    "interaction_df", "treatment_random_blocks", "transform_checks"):
+            if key in sd:
+                d[key] = sd[key]
+        d["friedman"] = sd.get("friedman") or (self._friedman_doc())
+        d["quade"] = sd.get("quade")
+        d["diagnostics"] = sd.get("diagnostics", {})
+        means = sd.get("treatment_means") or sd.get("adjusted_means")
+        d["treatment_means"] = means
+        if self.pairs:
+            d["pairs"] = [p.to_dict() for p in self.pairs]
+        d["analysis_id"] = self.analysis_id
+        return d
+
+    def _friedman_doc(self):
+        return None
+
+    def verdicts(self) -> dict:
+        row = next(r for r in self.stats.anova if r["source"] == "treatment")
+        return {"treatment_effect": bool(row["p"] is not None and row["p"] < ALPHA)}
+
+    def headline(self) -> str:
+        row = next(r for r in self.stats.anova if r["source"] == "treatment")
+        from .present.text import num, pval
+
+        return (f"{self.collapsed.metric}: treatment F = {num(row['f'], 3)} on {row['df']} and "
+                f"{self.stats.residual_df} df, p {pval(row['p']) if pval(row['p']).startswith('<') else '= ' + pval(row['p'])}")
+
+    def render(self) -> str:
+        from .present.analysis import render_blocktest
+
+        return render_blocktest(self)
+
+
+def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, transform: str = "none",
+                  design: str = "auto", pairs: bool = False) -> BlocktestResult:
+    from .analyze.blocked import generalized_anova, incomplete_anova, rcbd_anova
+    from .cautions import design_cautions, host_caution, pseudo_replication
+
+    if transform not in ("none", "log", "boxcox", "rank"):
+        raise InputError(f"--transform {transform}: choose none, log, boxcox or rank")
+    if design not in ("auto", "complete", "incomplete", "generalized"):
+        raise InputError(f"--design {design}: choose auto, complete, incomplete or generalized")
+    if design == "incomplete" and settings.holes != "keep":
+        settings = Collapse(settings.replicates, settings.instances, settings.failures, "keep")
+    c = collapse(conn, sl, metric, settings)
+    if len(c.treatments) < 2:
+        raise DesignError(f"the slice holds one treatment ({', '.join(c.treatments)}); a blocked comparison needs two or more")
+    if c.obs.empty:
+        raise DesignError("no block has every treatment; use --holes keep to analyse the incomplete design, or narrow the slice")
+    warnings = list(design_cautions(c)) + host_caution(c) + pseudo_replication(c)
+    if c.dropped_blocks and settings.holes == "drop":
+        warnings.append(f"{len(c.dropped_blocks)} blocks with holes were dropped (complete-case analysis): "
+                        + ", ".join(d["block"] for d in c.dropped_blocks[:6]) + (" ..." if len(c.dropped_blocks) > 6 else ""))
+    chosen = design
+    if design == "auto":
+        chosen = "complete" if c.complete else "incomplete"
+    if chosen == "complete" and not c.complete:
+        raise DesignError("the design has holes; use --holes keep with --design incomplete, or --holes drop")
+    obs = c.obs[["treatment", "block", "value"]]
+    if chosen == "complete":
+        stats = rcbd_anova(obs, transform=transform)
+    elif chosen == "incomplete":
+        if transform != "none":
+            raise InputError("--transform applies to the complete design; the incomplete design is analysed as is")
+        stats = incomplete_anova(obs)
+    else:
+        cells = c.cells[c.cells["value"].notna()][["treatment", "block", "instance", "value"]]
+        stats = generalized_anova(cells)
+    warnings += list(getattr(stats, "warnings", []))
+    result_pairs = []
+    if pairs:
+        if chosen != "complete":
+            raise InputError("--pairs needs a complete design (every treatment in every block)")
+        from .analyze.pairs import conover_friedman, tukey_hsd_blocked
+
+        result_pairs = [tukey_hsd_blocked(obs), conover_friedman(obs)]
+        k = len(c.treatments)
+        warnings.append(f"{k * (k - 1) // 2} pairwise comparisons: p values are adjusted for the family; "
+                        "unadjusted p would overstate the evidence")
+    return BlocktestResult(c, chosen, stats, result_pairs, _dedupe(warnings),
+                           options={"transform": transform, "design": design, "pairs": pairs})
+
+
+def _dedupe(items: list[str]) -> list[str]:
+    seen, out = set(), []
+    for w in items:
+        if w not in seen:
+            seen.add(w)
+            out.append(w)
+    return out
+
+
+# --- versus ------------------------------------------------------------------------------------
+
+@dataclass
+class VersusResult:
+    collapsed: Collapsed
+    baseline: str
+    stats: object  # BaselineResult
+    better: str  # lower | higher (what "better" means in the wording)
+    sided: bool
+    warnings: list[str] = field(default_factory=list)
+    analysis_id: int | None = None
+    options: dict = field(default_factory=dict)
+
+    kind = "versus"
+
+    def verdict(self, row: dict) -> str:
+        p = row.get("p_adjusted")
+        if p is None or p >= 1 - self.stats.confidence:
+            return ""
+        lower = row["diff"] < 0
+        good = lower if self.better == "lower" else not lower
+        return "better" if good else "worse"
+
+    def to_dict(self) -> dict:
+        c, s = self.collapsed, self.stats
+        rows = []
+        for r in s.comparisons:
+            row = dict(r)
+            row["verdict"] = self.verdict(r) or "no clear difference"
+            rows.append(row)
+        return {"baseline": self.baseline, "slice": c.slice_text, "metric": c.metric, "sense": c.sense,
+                "blocks": len(c.blocks), "dropped_blocks": c.dropped_blocks, "method": s.method,
+                "adjust": s.adjust, "alternative": s.alternative, "confidence": s.confidence,
+                "residual_ms": s.residual_ms, "residual_df": s.residual_df, "critical_value": s.critical_value,
+                "comparisons": rows, "collapse": _collapse_doc(c), "warnings": self.warnings,
+                "analysis_id": self.analysis_id}
+
+    def verdicts(self) -> dict:
+        return {r["treatment"]: {"significant": bool(self.verdict(r)), "sign": (r["diff"] > 0) - (r["diff"] < 0)}
+                for r in self.stats.comparisons}
+
+    def headline(self) -> str:
+        from .present.text import signed
+
+        parts = []
+        for r in self.stats.comparisons:
+            v = self.verdict(r) or "no clear difference"
+            parts.append(f"{r['treatment']} {signed(r['diff'])} ({v})")
+        return f"{self.collapsed.metric} vs {self.baseline}: " + "; ".join(parts)
+
+    def render(self) -> str:
+        from .present.analysis import render_versus
+
+        return render_versus(self)
+
+
+def _margin(margin: str | None):
+    if margin is None or margin == "":
+        return 0.0
+    text = str(margin).strip()
+    try:
+        if text.endswith("%"):
+            float(text[:-1])
+            return text
+        return float(text)
+    except ValueError:
+        raise InputError(f"--margin {margin}: write a number (0.5) or a percentage of the baseline (1%)") from None
+
+
+def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline: str, method: str = "dunnett",
+               adjust: str = "holm", better: str | None = None, margin: str | None = None,
+               confidence: float = 0.95) -> VersusResult:
+    from .analyze.baseline import dunnett_vs_baseline, paired_vs_baseline
+    from .cautions import design_cautions, host_caution, pseudo_replication
+
+    if method not in ("dunnett", "paired-t", "wilcoxon"):
+        raise InputError(f"--method {method}: choose dunnett, paired-t or wilcoxon")
+    if adjust not in ("holm", "bonferroni"):
+        raise InputError(f"--adjust {adjust}: choose holm or bonferroni")
+    if better not in (None, "lower", "higher"):
+        raise InputError(f"--better {better}: choose lower or higher")
+    if not 0.5 < confidence < 1:
+        raise InputError(f"--confidence {confidence}: give a level between 0.5 and 1, e.g. 0.95")
+    if "@" not in baseline:
+        raise InputError(f"baseline '{baseline}': name one treatment as NAME@VERSION, e.g. stacker@1.4")
+    if settings.holes == "keep":
+        raise InputError("versus compares on common blocks only; leave --holes at drop")
+    c = collapse(conn, sl, metric, settings)
+    if baseline not in c.treatments:
+        from difflib import get_close_matches
+
+        near = get_close_matches(baseline, c.treatments, n=2)
+        hint = f" (did you mean {' or '.join(near)}?)" if near else ""
+        raise DesignError(f"baseline {baseline} is not in the slice{hint}; treatments there: {', '.join(c.treatments)}")
+    if len(c.treatments) < 2:
+        raise DesignError("the slice holds only the baseline; add the treatments to compare with it")
+    if c.obs.empty:
+        raise DesignError("no block holds the baseline and every other treatment; narrow the slice to common blocks")
+    sense_better = "lower" if c.sense == "min" else "higher"
+    word = better or sense_better
+    alternative = "two-sided" if better is None else ("less" if better == "lower" else "greater")
+    m = _margin(margin)
+    obs = c.obs[["treatment", "block", "value"]]
+    if method == "dunnett":
+        stats = dunnett_vs_baseline(obs, baseline, alternative=alternative, confidence=confidence, better=word, margin=m)
+    else:
+        stats = paired_vs_baseline(obs, baseline, method=method, adjust=adjust, alternative=alternative,
+                                   confidence=confidence, better=word, margin=m)
+    warnings = list(design_cautions(c)) + host_caution(c, baseline) + pseudo_replication(c)
+    if c.dropped_blocks:
+        missing_base = [d["block"] for d in c.dropped_blocks if baseline in d["missing"]]
+        other = [d["block"] for d in c.dropped_blocks if baseline not in d["missing"]]
+        if missing_base:
+            warnings.append(f"{len(missing_base)} blocks are not in the baseline and were dropped: {', '.join(missing_base[:8])}")
+        if other:
+            warnings.append(f"{len(other)} blocks miss another treatment and were dropped: {', '.join(other[:8])}")
+    warnings += list(stats.warnings)
+    res = VersusResult(c, baseline, stats, word, better is not None, [], options={
+        "baseline": baseline, "method": method, "adjust": adjust, "better": better, "margin": margin,
+        "confidence": confidence})
+    if any(res.verdict(r) for r in stats.comparisons) and not margin:
+        warnings.append("significant is not the same as large enough to matter: judge the size of each difference, "
+                        "or set --margin to count small differences as ties")
+    res.warnings = _dedupe(warnings)
+    return res
+
+
+# --- plan --------------------------------------------------------------------------------------
+
+@dataclass
+class PlanResult:
+    plan: object
+    kind_of_plan: str
+    source: dict = field(default_factory=dict)
+    analysis_id: int | None = None
+    options: dict = field(default_factory=dict)
+
+    kind = "plan"
+
+    def to_dict(self) -> dict:
+        d = self.plan.to_dict()
+        d["plan"] = self.kind_of_plan
+        if self.source:
+            d["from"] = self.source
+        d["analysis_id"] = self.analysis_id
+        return d
+
+    def verdicts(self) -> dict:
+        return {"blocks_needed": self.plan.to_dict().get("blocks_needed")}
+
+    def headline(self) -> str:
+        d = self.plan.to_dict()
+        if "blocks_needed" in d:
+            return f"{d['blocks_needed']} blocks needed for power {d.get('power')} at alpha {d.get('alpha')}"
+        return f"power {d.get('power'):.3f} with {d.get('blocks')} blocks"
+
+    def render(self) -> str:
+        from .present.analysis import render_plan
+
+        return render_plan(self)
+
+
+def run_plan(*, effect: float | None = None, delta: float | None = None, sd: float | None = None,
+             source: dict | None = None, power: float = 0.8, alpha: float = 0.05, comparisons: int = 1,
+             means: list[float] | None = None, sigma: float | None = None, blocks: int | None = None) -> PlanResult:
+    """Blocks needed (or power reached) for a paired comparison or for the RCBD F test.
+
+    `source` is a stored analysis's document ({"analysis_id", "residual_ms", ...}); its residual mean
+    square gives sigma for the F test and sqrt(2 MS) as the sd of block differences.
+    """
+    from .analyze import planning
+
+    if comparisons < 1:
+        raise InputError("--comparisons must be 1 or more")
+    opts = {"effect": effect, "delta": delta, "sd": sd, "power": power, "alpha": alpha, "comparisons": comparisons,
+            "means": means, "sigma": sigma, "blocks": blocks, "from": (source or {}).get("analysis_id")}
+    src = {}
+    if source is not None:
+        ms = source.get("residual_ms")
+        if ms is None:
+            raise DesignError(f"analysis {source.get('analysis_id')} has no residual mean square to take sigma from "
+                              "(use a blocktest or a Dunnett versus)")
+        src = {"analysis_id": source.get("analysis_id"), "residual_ms": ms, "sigma": ms ** 0.5,
+               "sd_of_differences": (2 * ms) ** 0.5}
+        sigma = sigma or ms ** 0.5
+        if sd is None and delta is not None:
+            sd = (2 * ms) ** 0.5
+    if means:
+        if sigma is None:
+            raise InputError("the F-test plan needs --sigma S or --from ANALYSIS")
+        if blocks:
+            return PlanResult(planning.rcbd_power(means, sigma, blocks, alpha=alpha), "rcbd-power", src, options=opts)
+        return PlanResult(planning.blocks_for_rcbd(means, sigma, power=power, alpha=alpha), "rcbd-blocks", src, options=opts)
+    if effect is not None:
+        return PlanResult(planning.blocks_for_paired(effect, power=power, alpha=alpha, comparisons=comparisons),
+                          "paired", src, options=opts)
+    if delta is not None and sd is not None:
+        return PlanResult(planning.blocks_for_delta(delta, sd, power=power, alpha=alpha, comparisons=comparisons),
+                          "paired", src, options=opts)
+    raise InputError("say what to plan for: --effect D, or --delta X with --sd S or --from ANALYSIS, "
+                     "or --means A,B,C with --sigma S")

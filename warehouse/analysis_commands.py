@@ -1,0 +1,203 @@
+"""peek, blocktest, versus, plan: the commands users come for."""
+from __future__ import annotations
+
+import argparse
+from dataclasses import dataclass, field, replace
+
+from .commands import Done, add_json, args, command
+from .session import Collapse, Session
+
+
+def add_slice(p: argparse.ArgumentParser, metric: bool = True) -> None:
+    p.add_argument("--slice", metavar="SLICE", help="which runs (default: the focus in the shell, else all); "
+                   "e.g. \"solver=stacker version>=1.5 family=mixed-sku\"")
+    if metric:
+        p.add_argument("--metric", metavar="NAME", help="the metric to analyse (inventory metrics lists them)")
+
+
+def add_collapse(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("collapse (how runs become one value per treatment and block)")
+    g.add_argument("--replicates", metavar="mean|median|trimmed:0.1", help="statistic over seeds of one instance (default mean)")
+    g.add_argument("--instances", metavar="mean|median", help="statistic over instances of one block (default mean)")
+    g.add_argument("--failures", metavar="drop|penalize:F|worst", help="failed runs: drop them, count them at F x "
+                   "their value (a runtime cutoff), or at the worst value on the instance (default drop)")
+    g.add_argument("--holes", metavar="drop|keep", help="blocks missing a treatment: drop them (default) or keep "
+                   "them and analyse the incomplete design")
+
+
+def slice_of(session: Session, a):
+    from .select.slices import parse
+
+    text = a.slice if getattr(a, "slice", None) is not None else session.focus
+    return parse(text)
+
+
+def settings_of(session: Session, a) -> Collapse:
+    c = session.collapse
+    return Collapse(
+        replicates=getattr(a, "replicates", None) or c.replicates,
+        instances=getattr(a, "instances", None) or c.instances,
+        failures=getattr(a, "failures", None) or c.failures,
+        holes=getattr(a, "holes", None) or c.holes,
+    )
+
+
+def metric_of(session: Session, a) -> str | None:
+    return getattr(a, "metric", None) or session.metric
+
+
+# --- peek --------------------------------------------------------------------------------------
+
+def _peek_args(p):
+    add_slice(p)
+    add_collapse(p)
+    add_json(p)
+
+
+@dataclass
+class PeekResult:
+    cov: object
+
+    def to_dict(self) -> dict:
+        return self.cov.to_dict()
+
+    def render(self) -> str:
+        from .present.analysis import render_peek
+
+        return render_peek(self.cov)
+
+
+@command("peek", "coverage of the slice: runs per treatment and block, holes, failures, cautions",
+         'blockyard peek --slice "family=fragile-top" --metric pallets')
+@args(_peek_args)
+def cmd_peek(session: Session, a) -> PeekResult:
+    from .coverage import coverage
+
+    wh = session.warehouse()
+    with wh.engine.connect() as conn:
+        settings = settings_of(session, a)
+        if not getattr(a, "holes", None):
+            settings = replace(settings, holes="keep")
+        return PeekResult(coverage(conn, slice_of(session, a), metric_of(session, a), settings))
+
+
+def _record(session: Session, result, sl, settings: Collapse) -> None:
+    from . import ledger
+
+    wh = session.warehouse()
+    result.analysis_id = ledger.record(wh, result, sl, {"collapse": settings.to_dict(), "options": result.options})
+    session.last_analysis = result.analysis_id
+
+
+# --- blocktest ---------------------------------------------------------------------------------
+
+def _blocktest_args(p):
+    add_slice(p)
+    p.add_argument("--transform", default="none", choices=["none", "log", "boxcox", "rank"],
+                   help="analyse on another scale (log shifts values when zeros occur, and says so)")
+    p.add_argument("--design", default="auto", choices=["auto", "complete", "incomplete", "generalized"],
+                   help="complete: every treatment in every block; incomplete: blocks may miss treatments "
+                   "(implies --holes keep); generalized: instances kept apart inside blocks, with the "
+                   "treatment x block interaction")
+    p.add_argument("--pairs", action="store_true", help="add all pairwise comparisons (Tukey HSD; Conover after Friedman)")
+    add_collapse(p)
+    add_json(p)
+
+
+@command("blocktest", "blocked ANOVA with diagnostics, transforms and the rank-based alternative",
+         'blockyard blocktest --slice "family=mixed-sku" --metric pallets')
+@args(_blocktest_args)
+def cmd_blocktest(session: Session, a):
+    from .analyses import run_blocktest
+
+    sl = slice_of(session, a).absolute()
+    settings = settings_of(session, a)
+    if a.design == "incomplete":
+        settings = replace(settings, holes="keep")
+    with session.warehouse().engine.connect() as conn:
+        res = run_blocktest(conn, sl, metric_of(session, a), settings, a.transform, a.design, a.pairs)
+    _record(session, res, sl, settings)
+    return res
+
+
+# --- versus ------------------------------------------------------------------------------------
+
+def _versus_args(p):
+    p.add_argument("baseline", metavar="BASELINE", help="the treatment everything is compared with, as NAME@VERSION")
+    add_slice(p)
+    p.add_argument("--method", default="dunnett", choices=["dunnett", "paired-t", "wilcoxon"],
+                   help="dunnett (default) uses the block model's residual mean square; paired-t and wilcoxon "
+                   "test each treatment's block differences and adjust with --adjust")
+    p.add_argument("--adjust", default="holm", choices=["holm", "bonferroni"], help="multiplicity adjustment for paired-t and wilcoxon")
+    p.add_argument("--better", choices=["lower", "higher"], help="make the test one-sided: is a treatment better in this direction")
+    p.add_argument("--margin", metavar="X|X%", help="differences within this margin count as ties (absolute, or %% of the baseline)")
+    p.add_argument("--confidence", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
+    add_collapse(p)
+    add_json(p)
+
+
+@command("versus", "compare every treatment with a baseline on common blocks (Dunnett by default)",
+         'blockyard versus stacker@1.4 --slice "stacker@1.4 campaign=oct-baseline | solver=stacker since=2026-11-01" --metric pallets')
+@args(_versus_args)
+def cmd_versus(session: Session, a):
+    from .analyses import run_versus
+
+    sl = slice_of(session, a).absolute()
+    settings = settings_of(session, a)
+    with session.warehouse().engine.connect() as conn:
+        res = run_versus(conn, sl, metric_of(session, a), settings, a.baseline, a.method, a.adjust, a.better,
+                         a.margin, a.confidence)
+    _record(session, res, sl, settings)
+    return res
+
+
+# --- plan --------------------------------------------------------------------------------------
+
+def _floats(text: str) -> list[float]:
+    from .errors import InputError
+
+    try:
+        vals = [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise InputError(f"--means {text}: write the means as numbers separated by commas, e.g. 40,39.2,38.5") from None
+    if len(vals) < 2:
+        raise InputError("--means needs two or more treatment means")
+    return vals
+
+
+def _plan_args(p):
+    g = p.add_argument_group("what to detect (one of)")
+    g.add_argument("--effect", type=float, metavar="D", help="standardized effect: mean block difference over the sd of block differences")
+    g.add_argument("--delta", type=float, metavar="X", help="smallest difference that matters, in the metric's units (with --sd or --from)")
+    g.add_argument("--means", metavar="A,B,...", help="treatment means for the RCBD F test (with --sigma or --from)")
+    p.add_argument("--sd", type=float, metavar="S", help="sd of block differences (with --delta)")
+    p.add_argument("--sigma", type=float, metavar="S", help="residual standard deviation of the block model (with --means)")
+    p.add_argument("--from", dest="from_id", type=int, metavar="ANALYSIS", help="take sigma from a stored analysis (blocktest or Dunnett versus)")
+    p.add_argument("--blocks", type=int, metavar="B", help="with --means: the power reached with this many blocks instead")
+    p.add_argument("--power", type=float, default=0.8, help="target power (default 0.8)")
+    p.add_argument("--alpha", type=float, default=0.05, help="family-wise significance level (default 0.05)")
+    p.add_argument("--comparisons", type=int, default=1, help="comparisons sharing alpha (Bonferroni split; default 1)")
+    add_json(p)
+
+
+@command("plan", "blocks needed to detect a given effect with a given power",
+         "blockyard plan --effect 0.5 --power 0.8 --alpha 0.05 --comparisons 3")
+@args(_plan_args)
+def cmd_plan(session: Session, a):
+    from . import ledger
+    from .analyses import run_plan
+
+    source = None
+    if a.from_id is not None:
+        st = ledger.get(session.warehouse(), a.from_id, with_state=False)
+        source = dict(st.result)
+        source["analysis_id"] = st.id
+    res = run_plan(effect=a.effect, delta=a.delta, sd=a.sd, source=source, power=a.power, alpha=a.alpha,
+                   comparisons=a.comparisons, means=_floats(a.means) if a.means else None, sigma=a.sigma,
+                   blocks=a.blocks)
+    if source is not None:
+        from .select.slices import Slice
+
+        res.analysis_id = ledger.record(session.warehouse(), res, Slice(), {"options": res.options})
+        session.last_analysis = res.analysis_id
+    return res

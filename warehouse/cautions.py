@@ -1,0 +1,79 @@
+"""Cautions drawn from the collapsed data: things that make a comparison mislead if unsaid."""
+from __future__ import annotations
+
+import re
+
+import pandas as pd
+
+from .collapse import Collapsed
+
+_TIME_UNITS = {"s", "sec", "secs", "second", "seconds", "ms", "min", "h", "us"}
+_TIME_NAMES = re.compile(r"time|second|runtime|wall|cpu|elapsed|duration", re.I)
+
+
+def is_time_metric(name: str, unit: str) -> bool:
+    return unit.strip().lower() in _TIME_UNITS or bool(_TIME_NAMES.search(name))
+
+
+def host_caution(c: Collapsed, baseline: str | None = None) -> list[str]:
+    if not is_time_metric(c.metric, c.unit):
+        return []
+    sets = {t: tuple(h) for t, h in c.hosts.items() if t in c.treatments}
+    if len(set(sets.values())) <= 1:
+        return []
+    if baseline and baseline in sets:
+        others = sorted({h for t, hs in sets.items() if t != baseline for h in hs})
+        return [f"{c.metric} was measured on {', '.join(sets[baseline])} for the baseline but on "
+                f"{', '.join(others)} for the others: host and treatment are confounded"]
+    parts = "; ".join(f"{t} on {', '.join(h)}" for t, h in sets.items())
+    return [f"{c.metric} was measured on different hosts ({parts}): host and treatment are confounded"]
+
+
+def pseudo_replication(c: Collapsed) -> list[str]:
+    """Blocks whose result profiles are identical across every treatment are probably one block twice."""
+    if c.obs.empty or len(c.treatments) < 2:
+        return []
+    wide = c.obs.pivot(index="block", columns="treatment", values="value").dropna()
+    if len(wide) < 2:
+        return []
+    rounded = wide.round(9)
+    dup = rounded[rounded.duplicated(keep=False)]
+    if dup.empty:
+        return []
+    groups = dup.groupby(list(dup.columns)).groups
+    out = []
+    for _, blocks in groups.items():
+        names = sorted(blocks)
+        if len(names) > 1:
+            out.append(f"blocks {', '.join(names)} have identical results for every treatment: probably the same "
+                       "instances twice (pseudo-replication inflates significance); merge them or drop one")
+    return out
+
+
+def hash_pseudo_replication(conn, dims, group_ids) -> list[str]:
+    """Groups whose instances carry identical content hashes."""
+    from sqlalchemy import select
+
+    from .store import schema as S
+
+    rows = conn.execute(select(S.instances.c.group_id, S.instances.c.content_hash)
+                        .where(S.instances.c.group_id.in_(list(group_ids)), S.instances.c.content_hash != "")).all()
+    if not rows:
+        return []
+    frame = pd.DataFrame(rows, columns=["group_id", "hash"])
+    sets = frame.groupby("group_id")["hash"].apply(lambda s: tuple(sorted(set(s))))
+    out = []
+    for key, gids in sets.groupby(sets).groups.items():
+        if len(gids) > 1:
+            names = sorted(dims.block(g) for g in gids)
+            out.append(f"groups {', '.join(names)} hold instances with identical content hashes: they are the same "
+                       "block twice (pseudo-replication); merge them or drop one")
+    return out
+
+
+def design_cautions(c: Collapsed) -> list[str]:
+    out = list(c.hash_conflicts)
+    b = len(c.blocks)
+    if b and b < 6:
+        out.append(f"only {b} blocks: tests have little power and the checks on residuals are weak")
+    return out

@@ -1,0 +1,315 @@
+"""Collapse: replicates to one value per instance, instances to one value per block.
+
+The observation table has one row per treatment and block; the number of observations for
+tests and power is the number of blocks, never the number of runs. Failed runs are handled by a
+declared policy, and every step reports what it touched.
+
+With the default settings (mean of replicates) the whole replicate step runs in SQL as one
+GROUP BY over the slice; median and trimmed means read the slice's values and finish in pandas.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import case, func, select
+
+from .errors import DesignError, InputError
+from .select.resolve import Dims, condition
+from .select.slices import Slice
+from .session import Collapse
+from .store import schema as S
+
+R = S.runs
+
+
+@dataclass
+class Collapsed:
+    slice_text: str
+    metric: str
+    sense: str  # min or max
+    unit: str
+    settings: dict
+    obs: pd.DataFrame  # treatment, block, value, instances, runs, failed
+    cells: pd.DataFrame  # treatment, block, instance, value, runs, ok, failed
+    treatments: list[str]
+    blocks: list[str]  # blocks kept
+    dropped_blocks: list[dict]  # {"block", "missing": [...]}
+    runs_in_slice: int
+    runs_used: int
+    instances_used: int
+    notes: list[str]
+    hosts: dict[str, list[str]]  # treatment -> hosts its runs came from
+    campaigns: dict[str, list[str]]  # treatment -> campaigns
+    fingerprint: str
+    max_run_id: int
+    hash_conflicts: list[str] = field(default_factory=list)
+
+    @property
+    def complete(self) -> bool:
+        counts = self.obs.groupby("block")["treatment"].nunique()
+        return bool(len(counts)) and bool((counts == len(self.treatments)).all())
+
+
+def parse_settings(c: Collapse) -> dict:
+    rep = c.replicates
+    trim = None
+    if rep.startswith("trimmed"):
+        _, _, frac = rep.partition(":")
+        try:
+            trim = float(frac or 0.1)
+        except ValueError:
+            raise InputError(f"--replicates {rep}: write trimmed:0.1 (the share cut from each end)") from None
+        if not 0 <= trim < 0.5:
+            raise InputError(f"--replicates {rep}: the trimmed share must be at least 0 and below 0.5")
+    elif rep not in ("mean", "median"):
+        raise InputError(f"--replicates {rep}: choose mean, median or trimmed:0.1")
+    if c.instances not in ("mean", "median"):
+        raise InputError(f"--instances {c.instances}: choose mean or median")
+    fail, _, factor = c.failures.partition(":")
+    if fail not in ("drop", "penalize", "worst"):
+        raise InputError(f"--failures {c.failures}: choose drop, penalize:FACTOR (e.g. penalize:10) or worst")
+    pen = None
+    if fail == "penalize":
+        try:
+            pen = float(factor or 10)
+        except ValueError:
+            raise InputError(f"--failures {c.failures}: the factor must be a number, e.g. penalize:10") from None
+        if pen <= 0:
+            raise InputError(f"--failures {c.failures}: the factor must be positive")
+    if c.holes not in ("drop", "keep"):
+        raise InputError(f"--holes {c.holes}: choose drop or keep")
+    return {"replicates": "trimmed" if trim is not None else rep, "trim": trim, "instances": c.instances,
+            "failures": fail, "penalty": pen, "holes": c.holes}
+
+
+def _metric(dims: Dims, metric: str | None) -> tuple[str, int, str, str]:
+    if not dims.metrics:
+        raise DesignError("the warehouse holds no metrics yet; load some runs first")
+    if metric is None:
+        if len(dims.metrics) == 1:
+            metric = next(iter(dims.metrics))
+        else:
+            raise InputError(f"say which metric: --metric {' | '.join(sorted(dims.metrics))}")
+    if metric not in dims.metrics:
+        from difflib import get_close_matches
+
+        near = get_close_matches(metric, list(dims.metrics), n=2)
+        hint = f" (did you mean {' or '.join(near)}?)" if near else ""
+        raise InputError(f"no metric '{metric}' in this warehouse{hint}; known: {', '.join(sorted(dims.metrics))}")
+    _, slot, sense, unit = dims.metrics[metric]
+    return metric, slot, sense, unit
+
+
+def _cell_query(cond, v):
+    ok = R.c.status == 0
+    okv = ok & v.is_not(None)
+    bad = R.c.status != 0
+    return (
+        select(
+            R.c.solver_id, R.c.instance_id, R.c.host_id, R.c.campaign_id,
+            func.count().label("n"),
+            func.sum(case((okv, 1), else_=0)).label("n_ok"),
+            func.sum(case((okv, v), else_=None)).label("sum_ok"),
+            func.sum(case((okv, v * v), else_=None)).label("sq_ok"),
+            func.min(case((okv, v), else_=None)).label("min_ok"),
+            func.max(case((okv, v), else_=None)).label("max_ok"),
+            func.sum(case((bad, 1), else_=0)).label("n_fail"),
+            func.sum(case((bad & v.is_not(None), 1), else_=0)).label("n_fail_v"),
+            func.sum(case((bad & v.is_not(None), v), else_=None)).label("sum_fail_v"),
+            func.sum(R.c.id).label("id_sum"),
+            func.max(R.c.id).label("id_max"),
+        )
+        .where(cond)
+        .group_by(R.c.solver_id, R.c.instance_id, R.c.host_id, R.c.campaign_id)
+    )
+
+
+def _trimmed(values: np.ndarray, share: float) -> float:
+    from scipy.stats import trim_mean
+
+    return float(trim_mean(values, share)) if len(values) else math.nan
+
+
+def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collapsed:
+    """One observation per treatment and block for `metric` over the runs of slice `sl`."""
+    st = parse_settings(settings)
+    dims = Dims.load(conn)
+    metric, slot, sense, unit = _metric(dims, metric)
+    cond = condition(sl, dims, conn)
+    v = R.c[f"v{slot}"]
+    raw = pd.DataFrame(conn.execute(_cell_query(cond, v)).all(),
+                       columns=["solver_id", "instance_id", "host_id", "campaign_id", "n", "n_ok", "sum_ok", "sq_ok",
+                                "min_ok", "max_ok", "n_fail", "n_fail_v", "sum_fail_v", "id_sum", "id_max"])
+    if raw.empty:
+        raise DesignError(f"no runs in slice '{sl.text or '(everything)'}'; see blockyard inventory for what is stored")
+    for c in ("sum_ok", "sq_ok", "min_ok", "max_ok", "sum_fail_v"):
+        raw[c] = pd.to_numeric(raw[c], errors="coerce").astype(float)
+    hosts = {dims.treatment(s): sorted({dims.hosts.get(h, "(unknown)") if h is not None and not pd.isna(h) else "(unknown)"
+                                        for h in g["host_id"]}) for s, g in raw.groupby("solver_id")}
+    campaigns = {dims.treatment(s): sorted({dims.campaigns[c] for c in g["campaign_id"]}) for s, g in raw.groupby("solver_id")}
+    agg = raw.groupby(["solver_id", "instance_id"], as_index=False).agg(
+        n=("n", "sum"), n_ok=("n_ok", "sum"), sum_ok=("sum_ok", "sum"), sq_ok=("sq_ok", "sum"),
+        min_ok=("min_ok", "min"), max_ok=("max_ok", "max"), n_fail=("n_fail", "sum"),
+        n_fail_v=("n_fail_v", "sum"), sum_fail_v=("sum_fail_v", "sum"), id_sum=("id_sum", "sum"), id_max=("id_max", "max"))
+    runs_in_slice = int(agg["n"].sum())
+    max_run_id = int(agg["id_max"].max())
+    notes: list[str] = []
+    fail_runs = int(agg["n_fail"].sum())
+    # the replicate step
+    if st["replicates"] == "mean":
+        value = _policy_mean(agg, st, sense, notes)
+    else:
+        value = _policy_values(conn, cond, v, agg, st, sense, notes)
+    agg["value"] = value
+    # instance and block labels
+    inst = pd.DataFrame(conn.execute(select(S.instances.c.id, S.instances.c.group_id, S.instances.c.name,
+                                            S.instances.c.content_hash)
+                                     .where(S.instances.c.id.in_(select(R.c.instance_id).where(cond).distinct()))).all(),
+                        columns=["instance_id", "group_id", "instance", "content_hash"])
+    agg = agg.merge(inst, on="instance_id", how="left")
+    agg["treatment"] = [dims.treatment(s) for s in agg["solver_id"]]
+    agg["block"] = [dims.block(g) for g in agg["group_id"]]
+    conflicts = []
+    dup = inst.groupby(["group_id", "instance"])["content_hash"].nunique()
+    for (gid, name), k in dup[dup > 1].items():
+        conflicts.append(f"instance {dims.block(gid)}/{name} has {k} different content hashes in this slice; "
+                         "its versions are kept apart and are not comparable")
+    fingerprint = _fingerprint(agg, st, metric, sl)
+    # instances -> blocks: within a block, only instances every present treatment has a value for
+    valid = agg[agg["value"].notna()]
+    treatments = sorted(agg["treatment"].unique(), key=_treatment_key)
+    present = valid.groupby("block")["treatment"].nunique()
+    per_inst = valid.groupby(["block", "instance_id"])["treatment"].nunique()
+    need = present.reindex(per_inst.index.get_level_values(0)).to_numpy()
+    common = per_inst[per_inst.to_numpy() == need].reset_index()[["block", "instance_id"]]
+    used = valid.merge(common, on=["block", "instance_id"])
+    not_common = valid["instance_id"].nunique() - used["instance_id"].nunique()
+    if not_common:
+        notes.append(f"{not_common} instances left out because not every treatment in their block has a value on them")
+    stat = "median" if st["instances"] == "median" else "mean"
+    obs = used.groupby(["treatment", "block"], as_index=False).agg(
+        value=("value", stat), instances=("instance_id", "nunique"), runs=("n", "sum"), failed=("n_fail", "sum"))
+    all_blocks = sorted(agg["block"].unique())
+    dropped = []
+    have = obs.groupby("block")["treatment"].apply(set).to_dict()
+    for b in all_blocks:
+        missing = [t for t in treatments if t not in have.get(b, set())]
+        if missing:
+            dropped.append({"block": b, "missing": missing})
+    if st["holes"] == "drop" and dropped:
+        gone = {d["block"] for d in dropped}
+        obs = obs[~obs["block"].isin(gone)]
+    obs = obs.reset_index(drop=True)
+    kept_blocks = sorted(obs["block"].unique())
+    used_cells = used[used["block"].isin(kept_blocks)]
+    if st["failures"] == "drop":
+        runs_used = int(used_cells["n_ok"].sum())
+    else:
+        runs_used = int(used_cells["n"].sum())
+    cells = used_cells[["treatment", "block", "instance", "value", "n", "n_ok", "n_fail"]].rename(
+        columns={"n": "runs", "n_ok": "ok", "n_fail": "failed"}).reset_index(drop=True)
+    if fail_runs and st["failures"] == "drop":
+        notes.insert(0, f"{fail_runs} failed runs dropped")
+    return Collapsed(
+        slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, cells=cells,
+        treatments=[t for t in treatments if t in set(obs["treatment"])] or treatments,
+        blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=runs_in_slice, runs_used=runs_used,
+        instances_used=int(used_cells["instance_id"].nunique()), notes=notes, hosts=hosts, campaigns=campaigns,
+        fingerprint=fingerprint, max_run_id=max_run_id, hash_conflicts=conflicts,
+    )
+
+
+def _treatment_key(label: str):
+    from .select.versions import version_sort_key
+
+    name, _, version = label.partition("@")
+    return (name, version_sort_key(version))
+
+
+def _policy_mean(agg: pd.DataFrame, st: dict, sense: str, notes: list[str]) -> np.ndarray:
+    n_ok = agg["n_ok"].to_numpy(float)
+    sum_ok = agg["sum_ok"].fillna(0).to_numpy(float)
+    n_fail = agg["n_fail"].to_numpy(float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if st["failures"] == "drop":
+            out = np.where(n_ok > 0, sum_ok / n_ok, np.nan)
+            lost = int(((n_ok == 0) & (n_fail > 0)).sum())
+            if lost:
+                notes.append(f"{lost} cells (treatment x instance) had no successful run and are missing")
+            return out
+        if st["failures"] == "penalize":
+            if sense != "min":
+                raise DesignError("penalize is for metrics where lower is better (a runtime, say); use --failures worst or drop")
+            fallback = np.nanmax(agg["max_ok"].to_numpy(float)) if agg["max_ok"].notna().any() else np.nan
+            n_fail_v = agg["n_fail_v"].to_numpy(float)
+            sum_fail_v = agg["sum_fail_v"].fillna(0).to_numpy(float)
+            pen = st["penalty"] * (sum_fail_v + fallback * (n_fail - n_fail_v))
+            total = n_ok + n_fail
+            out = np.where(total > 0, (sum_ok + np.where(n_fail > 0, pen, 0)) / total, np.nan)
+            touched = int(n_fail.sum())
+            if touched:
+                notes.append(f"{touched} failed runs counted at {st['penalty']:g} x their recorded value "
+                             f"(or {st['penalty']:g} x the slice's largest value where none was recorded) in "
+                             f"{int((n_fail > 0).sum())} cells")
+            return out
+        # worst: the worst successful value seen on the same instance, any treatment
+        col = "max_ok" if sense == "min" else "min_ok"
+        fn = "max" if sense == "min" else "min"
+        worst = agg.groupby("instance_id")[col].transform(fn).to_numpy(float)
+        total = n_ok + n_fail
+        out = np.where((total > 0) & ~(np.isnan(worst) & (n_fail > 0)), (sum_ok + np.nan_to_num(worst) * n_fail) / total, np.nan)
+        out = np.where((n_ok == 0) & np.isnan(worst), np.nan, out)
+        touched = int(n_fail.sum())
+        if touched:
+            notes.append(f"{touched} failed runs counted at the worst value seen on their instance, in {int((n_fail > 0).sum())} cells")
+        return out
+
+
+def _policy_values(conn, cond, v, agg: pd.DataFrame, st: dict, sense: str, notes: list[str]) -> np.ndarray:
+    """Median or trimmed mean of replicates: read the slice's values and finish in pandas."""
+    rows = pd.DataFrame(conn.execute(select(R.c.solver_id, R.c.instance_id, R.c.status, v).where(cond)).all(),
+                        columns=["solver_id", "instance_id", "status", "v"])
+    rows["v"] = pd.to_numeric(rows["v"], errors="coerce").astype(float)
+    ok = (rows["status"] == 0) & rows["v"].notna()
+    if st["failures"] == "drop":
+        rows = rows[ok]
+        lost = int(((agg["n_ok"] == 0) & (agg["n_fail"] > 0)).sum())
+        if lost:
+            notes.append(f"{lost} cells (treatment x instance) had no successful run and are missing")
+    elif st["failures"] == "penalize":
+        if sense != "min":
+            raise DesignError("penalize is for metrics where lower is better (a runtime, say); use --failures worst or drop")
+        fallback = rows.loc[ok, "v"].max()
+        rows.loc[~ok, "v"] = st["penalty"] * rows.loc[~ok, "v"].fillna(fallback)
+        notes.append(f"{int((~ok).sum())} failed runs counted at {st['penalty']:g} x their recorded value")
+    else:
+        okrows = rows[ok]
+        worst = okrows.groupby("instance_id")["v"].max() if sense == "min" else okrows.groupby("instance_id")["v"].min()
+        rows.loc[~ok, "v"] = rows.loc[~ok, "instance_id"].map(worst)
+        notes.append(f"{int((~ok).sum())} failed runs counted at the worst value seen on their instance")
+        rows = rows[rows["v"].notna()]
+    g = rows.groupby(["solver_id", "instance_id"])["v"]
+    if st["replicates"] == "median":
+        per = g.median()
+    else:
+        per = g.apply(lambda s: _trimmed(s.to_numpy(), st["trim"]))
+    key = pd.MultiIndex.from_frame(agg[["solver_id", "instance_id"]])
+    return per.reindex(key).to_numpy(float)
+
+
+def _fingerprint(agg: pd.DataFrame, st: dict, metric: str, sl: Slice) -> str:
+    """A hash over every contributing cell's runs (id sum, count) and values (sums), and the settings."""
+    cols = ["treatment", "block", "instance", "content_hash", "n", "n_ok", "n_fail", "id_sum"]
+    frame = agg[cols].copy()
+    for c in ("sum_ok", "sq_ok", "sum_fail_v"):
+        frame[c] = [None if pd.isna(x) else float(f"{x:.10g}") for x in agg[c]]
+    frame = frame.sort_values(["treatment", "block", "instance", "content_hash"])
+    payload = json.dumps({"metric": metric, "settings": st, "slice": sl.to_dict(),
+                          "cells": frame.astype(object).where(frame.notna(), None).values.tolist()},
+                         sort_keys=True, default=lambda o: o.item() if hasattr(o, "item") else str(o))
+    return hashlib.sha256(payload.encode()).hexdigest()
