@@ -1,3 +1,4 @@
 """Imports every module that registers commands, in the order help lists them."""
 from . import commands  # noqa: F401
 from . import analysis_commands  # noqa: F401
+from . import ledger_commands  # noqa: F401

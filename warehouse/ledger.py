@@ -71,6 +71,8 @@ def digest(kind: str, slice_text: str, settings: str, observations: str, fingerp
 def record(wh: Warehouse, result, sl: Slice, settings: dict, now: float | None = None) -> int:
     """Store an analysis result (blocktest, versus, plan) with everything needed to re-run it."""
     now = time.time() if now is None else now
+    with wh.engine.connect() as conn:
+        settings = dict(settings, retractions_before=int(conn.execute(select(func.coalesce(func.max(S.retractions.c.id), 0))).scalar()))
     c = getattr(result, "collapsed", None)
     doc = _clean(result.to_dict())
     doc.pop("analysis_id", None)
@@ -149,7 +151,8 @@ def stale_runs(conn, st: Stored, dims: Dims | None = None) -> int:
         cond = condition(st.slice, dims, conn, retracted="yes")
     except Exception:  # the names it used may be gone from a changed warehouse; judged by recheck
         return 0
-    q = select(func.count()).select_from(S.runs).where(cond, S.runs.c.id <= st.max_run_id)
+    q = select(func.count()).select_from(S.runs).where(
+        cond, S.runs.c.id <= st.max_run_id, S.runs.c.retraction_id > int(st.settings.get("retractions_before", 0)))
     if st.metric in dims.metrics:
         v = S.runs.c[f"v{dims.metrics[st.metric][1]}"]
         q = q.where(or_(v.is_not(None), S.runs.c.status != 0))
@@ -199,3 +202,244 @@ def keep(wh: Warehouse, text: str, analysis_id: int | None, tags: list[str], now
                                                        tags=",".join(t.strip() for t in tags),
                                                        created_at=int(now))).inserted_primary_key[0]
     return {"claim_id": cid, "analysis_id": analysis_id, "text": text, "tags": tags}
+
+
+# --- recall ------------------------------------------------------------------------------------
+
+def treatments_of(doc: dict) -> list[str]:
+    names = list(doc.get("treatment_names") or [])
+    if doc.get("baseline"):
+        names.append(doc["baseline"])
+    names += [r.get("treatment") for r in doc.get("comparisons", []) if r.get("treatment")]
+    return sorted(set(names))
+
+
+def recall(wh: Warehouse, text: str | None = None, tags: list[str] | None = None, solver: str | None = None,
+           since: str | None = None, stale: bool = False, limit: int | None = None) -> list[Stored]:
+    """Stored analyses matching every filter given, newest first, each with its state and claims."""
+    from .select.slices import parse_when
+
+    since_epoch = parse_when(since, "since") if since else None
+    tags = [t.lower() for t in (tags or [])]
+    needle = (text or "").lower().strip()
+    out: list[Stored] = []
+    with wh.engine.connect() as conn:
+        claims: dict[int, list[dict]] = {}
+        for c in conn.execute(select(S.claims).order_by(S.claims.c.id)):
+            claims.setdefault(c.analysis_id, []).append(
+                dict(id=c.id, text=c.text, tags=[t for t in c.tags.split(",") if t], created_at=c.created_at))
+        dims = None
+        q = select(S.analyses).order_by(S.analyses.c.id.desc())
+        if since_epoch is not None:
+            q = q.where(S.analyses.c.created_at >= since_epoch)
+        for row in conn.execute(q).all():
+            st = _stored(row, _intact(row))
+            st.claims = claims.get(st.id, [])
+            if tags and not all(any(t == x.lower() for c in st.claims for x in c["tags"]) for t in tags):
+                continue
+            if solver:
+                names = treatments_of(st.result)
+                if not any(n == solver or n.split("@")[0] == solver for n in names):
+                    continue
+            if needle:
+                hay = " ".join([st.slice_text, st.metric, st.kind, *(c["text"] for c in st.claims),
+                                *(t for c in st.claims for t in c["tags"]), *treatments_of(st.result)]).lower()
+                if needle not in hay:
+                    continue
+            if st.intact:
+                dims = dims or Dims.load(conn)
+                st.stale_runs = stale_runs(conn, st, dims)
+            if stale and st.state == "fresh":
+                continue
+            out.append(st)
+            if limit and len(out) >= limit:
+                break
+    return out
+
+
+# --- retract -----------------------------------------------------------------------------------
+
+def retract(wh: Warehouse, sl: Slice, reason: str, who: str | None = None, now: float | None = None) -> dict:
+    """Mark the slice's runs withdrawn (never deleted) and name the stored analyses that used them."""
+    import getpass
+
+    if sl.is_empty():
+        raise InputError("retract needs a slice that names the runs to withdraw, e.g. --slice \"campaign=nov host=rack-b\"")
+    if not (reason or "").strip():
+        raise InputError("retract needs --reason: say why these runs are withdrawn")
+    try:
+        who = who or getpass.getuser()
+    except Exception:  # no user name on this system
+        who = ""
+    now = time.time() if now is None else now
+    with wh.write() as conn:
+        with conn.begin():
+            dims = Dims.load(conn)
+            cond = condition(sl, dims, conn)
+            rid = conn.execute(insert(S.retractions).values(slice=sl.text, reason=reason.strip(), who=who,
+                                                            at=int(now), runs=0)).inserted_primary_key[0]
+            n = conn.execute(update(S.runs).where(cond).values(retraction_id=rid)).rowcount
+            if n == 0:
+                conn.rollback()
+                return {"retraction_id": None, "runs_retracted": 0, "stale_analyses": [],
+                        "message": "no runs in that slice (or all already retracted); nothing changed"}
+            conn.execute(update(S.retractions).where(S.retractions.c.id == rid).values(runs=n))
+    stale = affected(wh, rid)
+    return {"retraction_id": rid, "runs_retracted": int(n), "stale_analyses": stale, "reason": reason.strip(),
+            "who": who, "slice": sl.text}
+
+
+def affected(wh: Warehouse, retraction_id: int) -> list[int]:
+    """Stored analyses that stood on runs of this retraction."""
+    ids = []
+    with wh.engine.connect() as conn:
+        dims = Dims.load(conn)
+        for row in conn.execute(select(S.analyses).order_by(S.analyses.c.id)).all():
+            st = _stored(row, True)
+            if st.kind == "plan" and not st.observations:
+                continue
+            try:
+                cond = condition(st.slice, dims, conn, retracted="yes")
+            except Exception:
+                continue
+            q = select(func.count()).select_from(S.runs).where(cond, S.runs.c.id <= st.max_run_id,
+                                                               S.runs.c.retraction_id == retraction_id)
+            blocks = {o.get("block") for o in st.observations}
+            if blocks:
+                gids = [g for g in dims.groups if dims.block(g) in blocks]
+                q = q.where(S.runs.c.instance_id.in_(select(S.instances.c.id).where(S.instances.c.group_id.in_(gids))))
+            if conn.execute(q).scalar():
+                ids.append(st.id)
+    return ids
+
+
+def undo_retraction(wh: Warehouse, retraction_id: int, now: float | None = None) -> dict:
+    now = time.time() if now is None else now
+    with wh.write() as conn:
+        with conn.begin():
+            row = conn.execute(select(S.retractions).where(S.retractions.c.id == retraction_id)).first()
+            if row is None:
+                raise InputError(f"no retraction {retraction_id} (inventory lists none; retract prints its id)")
+            if row.undone_at is not None:
+                raise InputError(f"retraction {retraction_id} was already undone")
+            n = conn.execute(update(S.runs).where(S.runs.c.retraction_id == retraction_id).values(retraction_id=None)).rowcount
+            conn.execute(update(S.retractions).where(S.retractions.c.id == retraction_id).values(undone_at=int(now)))
+    return {"retraction_id": retraction_id, "runs_restored": int(n), "slice": row.slice, "reason": row.reason}
+
+
+# --- recheck -----------------------------------------------------------------------------------
+
+def verdicts_of(kind: str, doc: dict) -> dict:
+    """The conclusions a stored result draws: what a recheck compares."""
+    if kind == "blocktest":
+        row = next((r for r in doc.get("anova", []) if r.get("source") == "treatment"), {})
+        p = row.get("p")
+        return {"treatment effect": p is not None and p < 0.05}
+    if kind == "versus":
+        level = 1 - float(doc.get("confidence", 0.95))
+        out = {}
+        for r in doc.get("comparisons", []):
+            p, d = r.get("p_adjusted"), r.get("diff") or 0.0
+            out[r["treatment"]] = {"significant": p is not None and p < level, "sign": (d > 0) - (d < 0)}
+        return out
+    if kind == "plan":
+        return {"blocks_needed": doc.get("blocks_needed")}
+    return {}
+
+
+def rerun(wh: Warehouse, st: Stored):
+    """Run a stored analysis again on today's data, with its stored slice and settings."""
+    from .analyses import run_blocktest, run_plan, run_versus
+    from .session import Collapse
+
+    opts = st.settings.get("options", {})
+    col = Collapse(**st.settings.get("collapse", {})) if st.settings.get("collapse") else Collapse()
+    with wh.engine.connect() as conn:
+        if st.kind == "blocktest":
+            return run_blocktest(conn, st.slice, st.metric, col, opts.get("transform", "none"),
+                                 opts.get("design", "auto"), opts.get("pairs", False))
+        if st.kind == "versus":
+            return run_versus(conn, st.slice, st.metric, col, opts["baseline"], opts.get("method", "dunnett"),
+                              opts.get("adjust", "holm"), opts.get("better"), opts.get("margin"),
+                              opts.get("confidence", 0.95))
+    if st.kind == "plan":
+        source = None
+        if opts.get("from") is not None:
+            src = get(wh, int(opts["from"]), with_state=False)
+            source = dict(rerun(wh, src).to_dict())
+            source["analysis_id"] = src.id
+        return run_plan(effect=opts.get("effect"), delta=opts.get("delta"), sd=opts.get("sd"), source=source,
+                        power=opts.get("power", 0.8), alpha=opts.get("alpha", 0.05),
+                        comparisons=opts.get("comparisons", 1), means=opts.get("means"), sigma=opts.get("sigma"),
+                        blocks=opts.get("blocks"))
+    raise InputError(f"analysis {st.id} is of kind {st.kind}, which cannot be re-run")
+
+
+@dataclass
+class Recheck:
+    stored: Stored
+    status: str  # unchanged | data-changed | conclusion-changed | tampered
+    new_doc: dict | None
+    new_fingerprint: str | None
+    runs_arrived: int
+    runs_withdrawn: int
+    changes: list[str]
+    error: str | None = None
+
+    def to_dict(self) -> dict:
+        return {"analysis_id": self.stored.id, "status": self.status, "kind": self.stored.kind,
+                "slice": self.stored.slice_text, "metric": self.stored.metric,
+                "stored_fingerprint": self.stored.fingerprint, "new_fingerprint": self.new_fingerprint,
+                "runs_arrived": self.runs_arrived, "runs_withdrawn": self.runs_withdrawn, "changes": self.changes,
+                "old": self.stored.result, "new": self.new_doc, "error": self.error}
+
+
+def recheck(wh: Warehouse, analysis_id: int) -> Recheck:
+    from .errors import BlockyardError
+
+    st = get(wh, analysis_id)
+    withdrawn = st.stale_runs
+    arrived = 0
+    if st.kind != "plan":
+        with wh.engine.connect() as conn:
+            dims = Dims.load(conn)
+            try:
+                cond = condition(st.slice, dims, conn)
+                arrived = int(conn.execute(select(func.count()).select_from(S.runs)
+                                           .where(cond, S.runs.c.id > st.max_run_id)).scalar() or 0)
+            except BlockyardError:
+                arrived = 0
+    try:
+        new = rerun(wh, st)
+    except BlockyardError as exc:
+        status = "tampered" if not st.intact else "conclusion-changed"
+        return Recheck(st, status, None, None, arrived, withdrawn,
+                       [f"the analysis cannot be re-run on today's data: {exc}"], error=str(exc))
+    new_doc = _clean(new.to_dict())
+    new_doc.pop("analysis_id", None)
+    new_fp = new.collapsed.fingerprint if getattr(new, "collapsed", None) is not None else None
+    changes = []
+    old_v, new_v = verdicts_of(st.kind, st.result), verdicts_of(st.kind, new_doc)
+    for key in sorted(set(old_v) | set(new_v)):
+        if old_v.get(key) != new_v.get(key):
+            changes.append(f"{key}: was {_say(old_v.get(key))}, now {_say(new_v.get(key))}")
+    if not st.intact:
+        status = "tampered"
+        changes.insert(0, "the stored result does not match its digest: it was edited after it was kept")
+    elif changes:
+        status = "conclusion-changed"
+    elif (new_fp is not None and new_fp != st.fingerprint) or (new_fp is None and _canon(new_doc) != _canon(st.result)):
+        status = "data-changed"
+    else:
+        status = "unchanged"
+    return Recheck(st, status, new_doc, new_fp, arrived, withdrawn, changes)
+
+
+def _say(v) -> str:
+    if isinstance(v, dict):
+        sig = "significant" if v.get("significant") else "not significant"
+        sign = {1: "higher", -1: "lower", 0: "equal"}.get(v.get("sign"), "?")
+        return f"{sig}, {sign} than the baseline"
+    if isinstance(v, bool):
+        return "significant" if v else "not significant"
+    return "absent" if v is None else str(v)

@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from .commands import Done, REGISTRY
+from .commands import REGISTRY, Done
 from .errors import BlockyardError
 from .session import Session
 
@@ -47,9 +47,7 @@ def run_demo(folder: str, json_mode: bool = False) -> Done:
             raise BlockyardError("demo: a generated file was refused: " + "; ".join(res.errors()))
         show("load", f"blockyard load {' '.join('files/' + n for n in names)} --campaign {campaign} --layout files/{layout}", res)
     show("inventory", "blockyard inventory", _step(session, "inventory", kind=None, limit=None))
-    walk = getattr(__import__("warehouse.walkthrough_steps", fromlist=["steps"]), "steps", None) if _has_steps() else None
-    if walk:
-        walk(session, show, root)
+    _walk(session, show, root)
     out.append("next, try:")
     out.append(f"  blockyard shell {db}")
     out.append(f"  blockyard inventory solvers -w {db}")
@@ -57,7 +55,29 @@ def run_demo(folder: str, json_mode: bool = False) -> Done:
     return Done("\n".join(out), doc)
 
 
-def _has_steps() -> bool:
-    import importlib.util
-
-    return importlib.util.find_spec("warehouse.walkthrough_steps") is not None
+def _walk(session: Session, show, root: Path) -> None:
+    """The main job on the demo: coverage, the blocked test, the baseline comparison, the ledger."""
+    nov = "stacker@1.4 campaign=oct-baseline | solver=stacker campaign=nov-tuning"
+    session.focus = nov
+    session.metric = "pallets"
+    show("peek", f'blockyard peek --slice "{nov}" --metric pallets',
+         _step(session, "peek", slice=nov, metric="pallets", replicates=None, instances=None, failures=None, holes=None))
+    common = dict(replicates=None, instances=None, failures=None, holes=None)
+    bt = _step(session, "blocktest", slice=nov, metric="pallets", transform="none", design="auto", pairs=False, **common)
+    show("blocktest", f'blockyard blocktest --slice "{nov}" --metric pallets', bt)
+    vs = _step(session, "versus", baseline="stacker@1.4", slice=nov, metric="pallets", method="dunnett", adjust="holm",
+               better=None, margin=None, confidence=0.95, **common)
+    show("versus", f'blockyard versus stacker@1.4 --slice "{nov}" --metric pallets', vs)
+    claim = "stacker 1.6 uses fewer pallets than the October baseline 1.4"
+    show("keep", f'blockyard keep "{claim}" --analysis {vs.analysis_id} --tag demo',
+         _step(session, "keep", claim=claim, analysis=vs.analysis_id, tag=["demo"]))
+    show("recall", "blockyard recall pallets --tag demo",
+         _step(session, "recall", what="pallets", tag=["demo"], solver=None, since=None, stale=False, limit=None))
+    bad = "campaign=nov-tuning host=rack-b version=1.5"
+    show("retract", f'blockyard retract --slice "{bad}" --reason "build 1.5 on rack-b mis-counted pallets"',
+         _step(session, "retract", slice=bad, reason="build 1.5 on rack-b mis-counted pallets", undo=None))
+    show("recheck", f"blockyard recheck {vs.analysis_id}", _step(session, "recheck", id=vs.analysis_id))
+    if "export" in REGISTRY:
+        report = root / "report.html"
+        show("export", f"blockyard export {vs.analysis_id} --to {report}",
+             _step(session, "export", id=vs.analysis_id, to=str(report)))

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import math
 import shutil
+import sys
 from typing import Iterable, Sequence
 
 from tabulate import tabulate
@@ -50,9 +51,10 @@ def table(rows: Sequence[Sequence], headers: Sequence[str], align: Sequence[str]
           width: int | None = None) -> str:
     """A borderless table; columns beyond the terminal width are cut, with a note saying so."""
     text = tabulate(rows, headers=headers, tablefmt="plain", colalign=align, disable_numparse=True)
-    width = width or shutil.get_terminal_size((120, 24)).columns
+    if width is None and sys.stdout.isatty():
+        width = shutil.get_terminal_size((120, 24)).columns
     lines = text.splitlines()
-    if lines and max(len(l) for l in lines) > width:
+    if width and lines and max(len(l) for l in lines) > width:
         cut = [l[: width - 1] for l in lines]
         cut.append(f"(table cut to {width} columns; widen the terminal or use --json for all of it)")
         return "\n".join(cut)

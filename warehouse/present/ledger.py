@@ -1,0 +1,121 @@
+"""Text and JSON for recall and recheck."""
+from __future__ import annotations
+
+import time
+
+from .text import num, pairs, pval, signed, table
+
+STATE_WORDS = {"fresh": "fresh", "stale": "stale: some of its runs were retracted since",
+               "tampered": "tampered: the stored result does not match its digest"}
+
+
+def headline(kind: str, doc: dict) -> str:
+    if kind == "blocktest":
+        row = next((r for r in doc.get("anova", []) if r.get("source") == "treatment"), None)
+        if not row:
+            return ""
+        p = pval(row.get("p"))
+        return (f"{doc.get('metric')}: {doc.get('treatments')} treatments x {doc.get('blocks')} blocks, "
+                f"treatment F = {num(row.get('f'), 3)}, p {p if p.startswith('<') else '= ' + p}")
+    if kind == "versus":
+        parts = []
+        for r in doc.get("comparisons", []):
+            parts.append(f"{r.get('treatment')} {signed(r.get('diff'))} ({r.get('verdict', '')})")
+        return f"{doc.get('metric')} vs {doc.get('baseline')}: " + "; ".join(parts)
+    if kind == "plan":
+        if "blocks_needed" in doc:
+            return f"{doc['blocks_needed']} blocks needed (power {doc.get('power')}, alpha {doc.get('alpha')})"
+        return f"power {num(doc.get('power'), 3)}"
+    return ""
+
+
+def _when(epoch) -> str:
+    return time.strftime("%Y-%m-%d %H:%M", time.gmtime(epoch)) if epoch else ""
+
+
+def summary_doc(st) -> dict:
+    return {"analysis_id": st.id, "kind": st.kind, "created_at": _when(st.created_at), "slice": st.slice_text,
+            "metric": st.metric, "headline": headline(st.kind, st.result), "state": st.state,
+            "stale_runs": st.stale_runs, "claims": st.claims,
+            "tags": sorted({t for c in st.claims for t in c["tags"]})}
+
+
+def full_doc(st) -> dict:
+    d = summary_doc(st)
+    d.update(settings=st.settings, fingerprint=st.fingerprint, max_run_id=st.max_run_id, software=st.software,
+             observations=st.observations, result=st.result)
+    return d
+
+
+def render_recall_list(items) -> str:
+    if not items:
+        return "no stored analysis matches"
+    rows = []
+    for st in items:
+        claim = st.claims[0]["text"] if st.claims else ""
+        if len(st.claims) > 1:
+            claim += f" (+{len(st.claims) - 1} more)"
+        tags = ", ".join(sorted({t for c in st.claims for t in c["tags"]}))
+        rows.append([str(st.id), st.when(), st.kind, st.state, headline(st.kind, st.result)[:70], claim[:60], tags])
+    return table(rows, ["id", "made", "kind", "state", "result", "claim", "tags"])
+
+
+def render_recall_one(st) -> str:
+    items = [("analysis", f"{st.id} ({st.kind}), made {st.when()} UTC"),
+             ("state", STATE_WORDS[st.state] + (f" ({st.stale_runs} runs)" if st.state == "stale" else "")),
+             ("slice", st.slice_text or "(everything)"), ("metric", st.metric or "-"),
+             ("collapse", ", ".join(f"{k} {v}" for k, v in st.settings.get("collapse", {}).items()) or "-"),
+             ("options", ", ".join(f"{k} {v}" for k, v in st.settings.get("options", {}).items() if v is not None) or "-"),
+             ("result", headline(st.kind, st.result)),
+             ("observations", f"{len(st.observations)} (treatment x block)"),
+             ("fingerprint", st.fingerprint),
+             ("software", ", ".join(f"{k} {v}" for k, v in st.software.items()))]
+    out = [pairs(items)]
+    for c in st.claims:
+        tags = f"  [{', '.join(c['tags'])}]" if c["tags"] else ""
+        out.append(f"claim {c['id']}  \"{c['text']}\"{tags}  ({_when(c['created_at'])})")
+    for w in st.result.get("warnings", []):
+        out.append(f"caution   {w}")
+    if st.state != "fresh":
+        out.append(f"next: blockyard recheck {st.id}")
+    return "\n".join(out)
+
+
+def _numbers(kind: str, doc: dict | None) -> list[tuple[str, str]]:
+    if not doc:
+        return []
+    if kind == "blocktest":
+        row = next((r for r in doc.get("anova", []) if r.get("source") == "treatment"), {})
+        out = [("blocks", str(doc.get("blocks"))), ("treatment F", num(row.get("f"), 3)), ("p", pval(row.get("p")))]
+        for m in doc.get("treatment_means") or []:
+            out.append((f"mean {m.get('treatment')}", num(m.get("mean", m.get("adjusted_mean")))))
+        return out
+    if kind == "versus":
+        out = [("blocks", str(doc.get("blocks")))]
+        for r in doc.get("comparisons", []):
+            out.append((f"{r['treatment']} diff", signed(r.get("diff"))))
+            out.append((f"{r['treatment']} p adj", pval(r.get("p_adjusted"))))
+        return out
+    return [(k, str(doc.get(k))) for k in ("blocks_needed", "power", "alpha") if k in doc]
+
+
+def render_recheck(rc) -> str:
+    st = rc.stored
+    say = {"unchanged": "unchanged: same runs, same values, same result",
+           "data-changed": "data changed, conclusions hold",
+           "conclusion-changed": "the conclusion changed",
+           "tampered": "tampered: the stored result was edited after it was kept"}[rc.status]
+    out = [f"analysis {st.id} ({st.kind}, made {st.when()} UTC): {say}"]
+    if rc.runs_arrived or rc.runs_withdrawn:
+        out.append(f"runs since: {rc.runs_arrived} arrived in its slice, {rc.runs_withdrawn} of its runs withdrawn")
+    old = dict(_numbers(st.kind, st.result))
+    new = dict(_numbers(st.kind, rc.new_doc))
+    keys = list(dict.fromkeys([*old, *new]))
+    rows = [[k, old.get(k, "-"), new.get(k, "-")] for k in keys]
+    if rows:
+        out.append(table(rows, ["", "stored", "today"], align=["left", "right", "right"]))
+    for c in rc.changes:
+        out.append(f"changed   {c}")
+    if rc.error:
+        out.append(f"caution   {rc.error}")
+    return "\n".join(out)
