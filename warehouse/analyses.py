@@ -110,6 +110,8 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
             raise InputError("--transform applies to the complete design; the incomplete design is analysed as is")
         stats = incomplete_anova(obs)
     else:
+        if transform != "none":
+            raise InputError("--transform applies to the complete design; the generalized design is analysed as is")
         cells = c.cells[c.cells["value"].notna()][["treatment", "block", "instance", "value"]]
         stats = generalized_anova(cells)
     warnings += list(getattr(stats, "warnings", []))
@@ -119,7 +121,11 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
             raise InputError("--pairs needs a complete design (every treatment in every block)")
         from .analyze.pairs import conover_friedman, tukey_hsd_blocked
 
-        result_pairs = [tukey_hsd_blocked(obs), conover_friedman(obs)]
+        # Tukey works on the scale the ANOVA used; the within-block ranks of Conover do not change
+        scaled = obs if transform == "none" else stats.residuals[["treatment", "block", "value"]]
+        result_pairs = [tukey_hsd_blocked(scaled), conover_friedman(obs)]
+        if transform != "none":
+            warnings.append(f"Tukey differences and intervals are on the {transform} scale, like the ANOVA")
         k = len(c.treatments)
         warnings.append(f"{k * (k - 1) // 2} pairwise comparisons: p values are adjusted for the family; "
                         "unadjusted p would overstate the evidence")
@@ -162,7 +168,7 @@ class VersusResult:
     def to_dict(self) -> dict:
         c, s = self.collapsed, self.stats
         rows = []
-        for r in s.comparisons:
+        for r in s.to_dict()["comparisons"]:  # JSON-safe: an open end of a one-sided interval is None
             row = dict(r)
             row["verdict"] = self.verdict(r) or "no clear difference"
             rows.append(row)

@@ -8,6 +8,14 @@ from .commands import Done, add_json, args, command
 from .session import Collapse, Session
 
 
+class _Words(list):
+    """The words an option takes, for help and shell completion. argparse does not check them:
+    the command does, so a wrong word gets the usual one-line error and exit status 2."""
+
+    def __contains__(self, item) -> bool:
+        return True
+
+
 def add_slice(p: argparse.ArgumentParser, metric: bool = True) -> None:
     p.add_argument("--slice", metavar="SLICE", help="which runs (default: the focus in the shell, else all); "
                    "e.g. \"solver=stacker version>=1.5 family=mixed-sku\"")
@@ -93,9 +101,9 @@ def _record(session: Session, result, sl, settings: Collapse) -> None:
 
 def _blocktest_args(p):
     add_slice(p)
-    p.add_argument("--transform", default="none", choices=["none", "log", "boxcox", "rank"],
+    p.add_argument("--transform", default="none", choices=_Words(["none", "log", "boxcox", "rank"]),
                    help="analyse on another scale (log shifts values when zeros occur, and says so)")
-    p.add_argument("--design", default="auto", choices=["auto", "complete", "incomplete", "generalized"],
+    p.add_argument("--design", default="auto", choices=_Words(["auto", "complete", "incomplete", "generalized"]),
                    help="complete: every treatment in every block; incomplete: blocks may miss treatments "
                    "(implies --holes keep); generalized: instances kept apart inside blocks, with the "
                    "treatment x block interaction")
@@ -125,11 +133,11 @@ def cmd_blocktest(session: Session, a):
 def _versus_args(p):
     p.add_argument("baseline", metavar="BASELINE", help="the treatment everything is compared with, as NAME@VERSION")
     add_slice(p)
-    p.add_argument("--method", default="dunnett", choices=["dunnett", "paired-t", "wilcoxon"],
+    p.add_argument("--method", default="dunnett", choices=_Words(["dunnett", "paired-t", "wilcoxon"]),
                    help="dunnett (default) uses the block model's residual mean square; paired-t and wilcoxon "
                    "test each treatment's block differences and adjust with --adjust")
-    p.add_argument("--adjust", default="holm", choices=["holm", "bonferroni"], help="multiplicity adjustment for paired-t and wilcoxon")
-    p.add_argument("--better", choices=["lower", "higher"], help="make the test one-sided: is a treatment better in this direction")
+    p.add_argument("--adjust", default="holm", choices=_Words(["holm", "bonferroni"]), help="multiplicity adjustment for paired-t and wilcoxon")
+    p.add_argument("--better", choices=_Words(["lower", "higher"]), help="make the test one-sided: is a treatment better in this direction")
     p.add_argument("--margin", metavar="X|X%", help="differences within this margin count as ties (absolute, or %% of the baseline)")
     p.add_argument("--confidence", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     add_collapse(p)
@@ -195,9 +203,15 @@ def cmd_plan(session: Session, a):
     res = run_plan(effect=a.effect, delta=a.delta, sd=a.sd, source=source, power=a.power, alpha=a.alpha,
                    comparisons=a.comparisons, means=_floats(a.means) if a.means else None, sigma=a.sigma,
                    blocks=a.blocks)
-    if source is not None:
-        from .select.slices import Slice
+    # a plan is kept like any analysis, so that a claim made on it ("we need 34 blocks") is tied to
+    # it and not to whatever ran before; without a warehouse it is only printed
+    from .errors import StorageError
+    from .select.slices import Slice
 
-        res.analysis_id = ledger.record(session.warehouse(), res, Slice(), {"options": res.options})
-        session.last_analysis = res.analysis_id
+    try:
+        wh = session.warehouse()
+    except StorageError:
+        return res
+    res.analysis_id = ledger.record(wh, res, Slice(), {"options": res.options})
+    session.last_analysis = res.analysis_id
     return res

@@ -19,7 +19,7 @@ import pandas as pd
 from sqlalchemy import case, func, select
 
 from .errors import DesignError, InputError
-from .select.resolve import Dims, condition
+from .select.resolve import Dims, cells_can_answer, condition
 from .select.slices import Slice
 from .session import Collapse
 from .store import schema as S
@@ -106,27 +106,18 @@ def _metric(dims: Dims, metric: str | None) -> tuple[str, int, str, str]:
 
 
 def _cell_query(cond, v):
-    ok = R.c.status == 0
-    okv = ok & v.is_not(None)
-    bad = R.c.status != 0
-    return (
-        select(
-            R.c.solver_id, R.c.instance_id, R.c.host_id, R.c.campaign_id,
-            func.count().label("n"),
-            func.sum(case((okv, 1), else_=0)).label("n_ok"),
-            func.sum(case((okv, v), else_=None)).label("sum_ok"),
-            func.sum(case((okv, v * v), else_=None)).label("sq_ok"),
-            func.min(case((okv, v), else_=None)).label("min_ok"),
-            func.max(case((okv, v), else_=None)).label("max_ok"),
-            func.sum(case((bad, 1), else_=0)).label("n_fail"),
-            func.sum(case((bad & v.is_not(None), 1), else_=0)).label("n_fail_v"),
-            func.sum(case((bad & v.is_not(None), v), else_=None)).label("sum_fail_v"),
-            func.sum(R.c.id).label("id_sum"),
-            func.max(R.c.id).label("id_max"),
-        )
-        .where(cond)
-        .group_by(R.c.solver_id, R.c.instance_id, R.c.host_id, R.c.campaign_id)
-    )
+    from .store.cells import run_aggregates
+
+    return (select(R.c.solver_id, R.c.instance_id, R.c.host_id, R.c.campaign_id, *run_aggregates(v))
+            .where(cond).group_by(R.c.solver_id, R.c.instance_id, R.c.host_id, R.c.campaign_id))
+
+
+def _summary_query(cond, slot: int):
+    """The same cells from the cell summaries: work in proportion to cells, not runs."""
+    from .store.cells import C, cell_aggregates
+
+    return (select(C.c.solver_id, C.c.instance_id, C.c.host_id, C.c.campaign_id, *cell_aggregates())
+            .where(cond, C.c.slot == slot).group_by(C.c.solver_id, C.c.instance_id, C.c.host_id, C.c.campaign_id))
 
 
 def _trimmed(values: np.ndarray, share: float) -> float:
@@ -142,7 +133,11 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
     metric, slot, sense, unit = _metric(dims, metric)
     cond = condition(sl, dims, conn)
     v = R.c[f"v{slot}"]
-    raw = pd.DataFrame(conn.execute(_cell_query(cond, v)).all(),
+    if st["replicates"] == "mean" and cells_can_answer(sl):
+        query = _summary_query(condition(sl, dims, conn, table=S.cell_stats), slot)
+    else:
+        query = _cell_query(cond, v)
+    raw = pd.DataFrame(conn.execute(query).all(),
                        columns=["solver_id", "instance_id", "host_id", "campaign_id", "n", "n_ok", "sum_ok", "sq_ok",
                                 "min_ok", "max_ok", "n_fail", "n_fail_v", "sum_fail_v", "id_sum", "id_max"])
     if raw.empty:
@@ -167,10 +162,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
         value = _policy_values(conn, cond, v, agg, st, sense, notes)
     agg["value"] = value
     # instance and block labels
-    inst = pd.DataFrame(conn.execute(select(S.instances.c.id, S.instances.c.group_id, S.instances.c.name,
-                                            S.instances.c.content_hash)
-                                     .where(S.instances.c.id.in_(select(R.c.instance_id).where(cond).distinct()))).all(),
-                        columns=["instance_id", "group_id", "instance", "content_hash"])
+    inst = _instances(conn, sorted(agg["instance_id"].unique().tolist()))
     agg = agg.merge(inst, on="instance_id", how="left")
     agg["treatment"] = [dims.treatment(s) for s in agg["solver_id"]]
     agg["block"] = [dims.block(g) for g in agg["group_id"]]
@@ -222,6 +214,15 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
         instances_used=int(used_cells["instance_id"].nunique()), notes=notes, hosts=hosts, campaigns=campaigns,
         fingerprint=fingerprint, max_run_id=max_run_id, hash_conflicts=conflicts,
     )
+
+
+def _instances(conn, ids: list[int]) -> pd.DataFrame:
+    rows = []
+    inst = S.instances
+    for i in range(0, len(ids), 10_000):
+        rows += conn.execute(select(inst.c.id, inst.c.group_id, inst.c.name, inst.c.content_hash)
+                             .where(inst.c.id.in_(ids[i:i + 10_000]))).all()
+    return pd.DataFrame(rows, columns=["instance_id", "group_id", "instance", "content_hash"])
 
 
 def _treatment_key(label: str):

@@ -35,7 +35,8 @@ def _when(epoch) -> str:
 
 def counts(conn) -> dict[str, int]:
     n = lambda t: conn.execute(select(func.count()).select_from(t)).scalar()  # noqa: E731
-    total = n(S.runs)
+    # runs are never deleted, so the imports' own counts add up to the table without scanning it
+    total = int(conn.execute(select(func.coalesce(func.sum(S.imports.c.rows_loaded), 0))).scalar())
     retracted = conn.execute(
         select(func.coalesce(func.sum(S.retractions.c.runs), 0)).where(S.retractions.c.undone_at.is_(None))
     ).scalar()
@@ -58,19 +59,23 @@ def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) 
         inv = Inventory(wh.display, counts(conn), kind)
         if kind is None:
             return inv
-        r = S.runs
-        live = r.c.retraction_id.is_(None)
+        cs = S.cell_stats
+        # one metric slot per import is enough to count its live runs from the cell summaries
+        first = select(cs.c.import_id, func.min(cs.c.slot).label("slot")).group_by(cs.c.import_id).subquery()
+        cells = (select(cs.c.campaign_id, cs.c.solver_id, cs.c.n)
+                 .join(first, (first.c.import_id == cs.c.import_id) & (first.c.slot == cs.c.slot)).subquery())
         if kind == "campaigns":
-            q = (select(S.campaigns.c.name, func.count(r.c.id), S.campaigns.c.created_at)
-                 .select_from(S.campaigns.outerjoin(r, (r.c.campaign_id == S.campaigns.c.id) & live))
-                 .group_by(S.campaigns.c.id, S.campaigns.c.name, S.campaigns.c.created_at).order_by(S.campaigns.c.name))
+            per = select(cells.c.campaign_id, func.sum(cells.c.n).label("n")).group_by(cells.c.campaign_id).subquery()
+            q = (select(S.campaigns.c.name, func.coalesce(per.c.n, 0), S.campaigns.c.created_at)
+                 .select_from(S.campaigns.outerjoin(per, per.c.campaign_id == S.campaigns.c.id))
+                 .order_by(S.campaigns.c.name))
             inv.headers = ["campaign", "runs", "created"]
-            inv.rows = [[a, b, _when(c)] for a, b, c in conn.execute(q)]
+            inv.rows = [[a, int(b), _when(c)] for a, b, c in conn.execute(q)]
         elif kind == "solvers":
-            q = (select(S.solvers.c.name, S.solvers.c.version, S.solvers.c.build, func.count(r.c.id))
-                 .select_from(S.solvers.outerjoin(r, (r.c.solver_id == S.solvers.c.id) & live))
-                 .group_by(S.solvers.c.id, S.solvers.c.name, S.solvers.c.version, S.solvers.c.build))
-            rows = [[f"{a}@{b}" if b else a, c, d] for a, b, c, d in conn.execute(q)]
+            per = select(cells.c.solver_id, func.sum(cells.c.n).label("n")).group_by(cells.c.solver_id).subquery()
+            q = (select(S.solvers.c.name, S.solvers.c.version, S.solvers.c.build, func.coalesce(per.c.n, 0))
+                 .select_from(S.solvers.outerjoin(per, per.c.solver_id == S.solvers.c.id)))
+            rows = [[f"{a}@{b}" if b else a, c, int(d)] for a, b, c, d in conn.execute(q)]
             from .select.versions import version_key
 
             rows.sort(key=lambda x: (x[0].split("@")[0], version_key(x[0].split("@", 1)[1] if "@" in x[0] else "")))
@@ -93,10 +98,13 @@ def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) 
             inv.headers = ["metric", "better", "unit"]
             inv.rows = [[a, "lower" if b == "min" else "higher", c] for a, b, c in conn.execute(q)]
         elif kind == "hosts":
-            q = (select(S.hosts.c.name, func.count(r.c.id)).select_from(S.hosts.outerjoin(r, (r.c.host_id == S.hosts.c.id) & live))
-                 .group_by(S.hosts.c.id, S.hosts.c.name).order_by(S.hosts.c.name))
+            hcells = (select(cs.c.host_id, cs.c.n)
+                      .join(first, (first.c.import_id == cs.c.import_id) & (first.c.slot == cs.c.slot)).subquery())
+            per = select(hcells.c.host_id, func.sum(hcells.c.n).label("n")).group_by(hcells.c.host_id).subquery()
+            q = (select(S.hosts.c.name, func.coalesce(per.c.n, 0))
+                 .select_from(S.hosts.outerjoin(per, per.c.host_id == S.hosts.c.id)).order_by(S.hosts.c.name))
             inv.headers = ["host", "runs"]
-            inv.rows = [list(x) for x in conn.execute(q)]
+            inv.rows = [[a, int(b)] for a, b in conn.execute(q)]
         else:  # imports
             q = (select(S.imports.c.id, S.campaigns.c.name, S.imports.c.file_name, S.imports.c.rows_read,
                         S.imports.c.rows_loaded, S.imports.c.rows_rejected, S.imports.c.rows_skipped,

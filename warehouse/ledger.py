@@ -8,12 +8,13 @@ import platform
 import time
 from dataclasses import dataclass, field
 
-from sqlalchemy import func, insert, or_, select, update
+from sqlalchemy import and_, func, insert, or_, select, update
 
 from . import __version__
 from .errors import InputError
 from .select.resolve import Dims, condition
 from .select.slices import Slice
+from .store import cells
 from .store import schema as S
 from .store.connect import Warehouse
 
@@ -139,7 +140,25 @@ def _stored(row, intact: bool) -> Stored:
 
 
 def _intact(row) -> bool:
-    return digest(row.kind, row.slice_text, row.settings, row.observations, row.fingerprint, row.result) == row.result_digest
+    if digest(row.kind, row.slice_text, row.settings, row.observations, row.fingerprint, row.result) != row.result_digest:
+        return False
+    # a recheck re-runs from the parsed slice and the metric column, which the digest does not cover:
+    # they must agree with the slice text and the result, which it does
+    try:
+        sl = Slice.from_dict(json.loads(row.slice_parsed))
+        doc = json.loads(row.result)
+    except (TypeError, ValueError, KeyError):
+        return False
+    if sl.text != row.slice_text:
+        from .errors import SliceError
+        from .select.slices import parse
+
+        try:
+            if parse(row.slice_text) != sl:
+                return False
+        except SliceError:
+            return False
+    return row.kind == "plan" or (isinstance(doc, dict) and doc.get("metric", "") == row.metric)
 
 
 def stale_runs(conn, st: Stored, dims: Dims | None = None) -> int:
@@ -275,7 +294,9 @@ def retract(wh: Warehouse, sl: Slice, reason: str, who: str | None = None, now: 
     with wh.write() as conn:
         with conn.begin():
             dims = Dims.load(conn)
-            cond = condition(sl, dims, conn)
+            # live runs only, whatever the slice says about retracted runs: a run belongs to one
+            # retraction, so that the counts add up and an undo brings back what its retraction took
+            cond = and_(condition(sl, dims, conn), S.runs.c.retraction_id.is_(None))
             rid = conn.execute(insert(S.retractions).values(slice=sl.text, reason=reason.strip(), who=who,
                                                             at=int(now), runs=0)).inserted_primary_key[0]
             n = conn.execute(update(S.runs).where(cond).values(retraction_id=rid)).rowcount
@@ -284,6 +305,7 @@ def retract(wh: Warehouse, sl: Slice, reason: str, who: str | None = None, now: 
                 return {"retraction_id": None, "runs_retracted": 0, "stale_analyses": [],
                         "message": "no runs in that slice (or all already retracted); nothing changed"}
             conn.execute(update(S.retractions).where(S.retractions.c.id == rid).values(runs=n))
+            cells.rebuild(conn, cells.touched(conn, S.runs.c.retraction_id == rid))
     stale = affected(wh, rid)
     return {"retraction_id": rid, "runs_retracted": int(n), "stale_analyses": stale, "reason": reason.strip(),
             "who": who, "slice": sl.text}
@@ -304,6 +326,9 @@ def affected(wh: Warehouse, retraction_id: int) -> list[int]:
                 continue
             q = select(func.count()).select_from(S.runs).where(cond, S.runs.c.id <= st.max_run_id,
                                                                S.runs.c.retraction_id == retraction_id)
+            if st.metric in dims.metrics:  # runs without its metric did not take part (as in stale_runs)
+                v = S.runs.c[f"v{dims.metrics[st.metric][1]}"]
+                q = q.where(or_(v.is_not(None), S.runs.c.status != 0))
             blocks = {o.get("block") for o in st.observations}
             if blocks:
                 gids = [g for g in dims.groups if dims.block(g) in blocks]
@@ -322,7 +347,9 @@ def undo_retraction(wh: Warehouse, retraction_id: int, now: float | None = None)
                 raise InputError(f"no retraction {retraction_id} (inventory lists none; retract prints its id)")
             if row.undone_at is not None:
                 raise InputError(f"retraction {retraction_id} was already undone")
+            keys = cells.touched(conn, S.runs.c.retraction_id == retraction_id)
             n = conn.execute(update(S.runs).where(S.runs.c.retraction_id == retraction_id).values(retraction_id=None)).rowcount
+            cells.rebuild(conn, keys)
             conn.execute(update(S.retractions).where(S.retractions.c.id == retraction_id).values(undone_at=int(now)))
     return {"retraction_id": retraction_id, "runs_restored": int(n), "slice": row.slice, "reason": row.reason}
 

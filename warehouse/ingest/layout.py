@@ -121,11 +121,21 @@ def read_layout(path: str | Path | None) -> Layout:
         raise _err(shown, f"unknown section [{sorted(unknown)[0]}]; known: {', '.join(sorted(SECTIONS))}")
     lay = Layout(source=shown, text=text)
     for src, target in _strings(_table(doc, "columns", shown), "columns", shown).items():
-        lay.columns[src.lower()] = target.strip()
+        target = target.strip()
+        if not target:
+            raise _err(shown, f"[columns] {src} = '': name a field ({', '.join(FIELDS)}) or a metric")
+        lay.columns[src.strip().lower()] = target.lower() if target.lower() in FIELDS else target
     constants = _strings(_table(doc, "constants", shown), "constants", shown)
     for k, v in constants.items():
         if k not in FIELDS:
             raise _err(shown, f"[constants] {k}: unknown field; known: {', '.join(FIELDS)}")
+        v = v.strip()
+        if k in ("seed", "replicate") and not re.fullmatch(r"[+-]?[0-9]{1,18}", v):
+            raise _err(shown, f"[constants] {k} = '{v}': must be a whole number")
+        if k in ("solver", "instance", "group") and not v:
+            raise _err(shown, f"[constants] {k} is empty; every run needs a {k}")
+        if k != "params" and len(v) > NAME_LIMIT:
+            raise _err(shown, f"[constants] {k} is {len(v)} characters long; names may have at most {NAME_LIMIT}")
         lay.constants[k] = v
     for word, status in _strings(_table(doc, "status", shown), "status", shown).items():
         if status not in STATUSES:
@@ -135,13 +145,16 @@ def read_layout(path: str | Path | None) -> Layout:
     if grp:
         pattern = grp.get("pattern")
         if not isinstance(pattern, str) or set(grp) - {"pattern"}:
-            raise _err(shown, "[group] takes one key, pattern = a regular expression with a named group 'group'")
+            raise _err(shown, "[group] takes one key, pattern = a regular expression with a named group (?P<group>...)")
         try:
             lay.group_pattern = re.compile(pattern)
         except re.error as exc:
             raise _err(shown, f"[group] pattern does not compile: {exc}") from None
         if "group" not in lay.group_pattern.groupindex:
             raise _err(shown, "[group] pattern needs a named group (?P<group>...)")
+        extra = set(lay.group_pattern.groupindex) - {"family", "group", "instance"}
+        if extra:
+            raise _err(shown, f"[group] pattern has a named group '{sorted(extra)[0]}'; the names it may use are family, group and instance")
     for name, spec in _table(doc, "metrics", shown).items():
         if not isinstance(spec, dict):
             raise _err(shown, f"[metrics.{name}] must be a table with sense and unit")
@@ -152,6 +165,11 @@ def read_layout(path: str | Path | None) -> Layout:
         if sense not in ("min", "max"):
             raise _err(shown, f"[metrics.{name}] sense = '{sense}': must be min or max")
         lay.metrics[name] = MetricSpec(sense=sense, unit=str(spec.get("unit", "")))
+    if "status" in lay.constants:
+        word = lay.constants["status"].lower()
+        if word and word not in lay.status_words():
+            raise _err(shown, f"[constants] status = '{lay.constants['status']}' is not a status word; "
+                              f"use one of {', '.join(STATUSES)} or map it in [status]")
     lay.missing = _names(doc, "missing", shown)
     lay.ignore = tuple(n.lower() for n in _names(doc, "ignore", shown))
     lay.attributes = tuple(n.lower() for n in _names(doc, "attributes", shown))

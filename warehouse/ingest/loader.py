@@ -1,34 +1,42 @@
 """Loading result files into the warehouse: one file, one transaction, all or nothing.
 
-The hot path stays vectorized: each chunk's names are factorized once, only the distinct names
-touch the dimension tables, and runs are written with executemany (SQLite) or COPY (PostgreSQL).
+The hot path stays vectorized: each chunk is checked by Arrow compute kernels and numpy, only the
+distinct names touch the dimension tables, and runs are written with executemany (SQLite) or COPY
+(PostgreSQL). A large load into a SQLite warehouse that holds fewer runs than the file sets the
+runs table's secondary indexes aside inside the transaction and builds them again at the end
+(much cheaper than keeping them up to date row by row); if the rebuilt unique key finds a run
+twice, the load starts over the ordinary way so that the duplicates are reported one by one.
 """
 from __future__ import annotations
 
-import json
-import math
+import csv
 import os
+import sqlite3
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
 
 import numpy as np
-import pandas as pd
-from sqlalchemy import func, insert, select, text, update
+import pyarrow as pa
+import pyarrow.compute as pc
+from sqlalchemy import func, insert, select, update
 from sqlalchemy.exc import IntegrityError, OperationalError
 
 from .. import __version__
 from ..errors import InputError, StorageError
+from ..store import cells
 from ..store import schema as S
 from ..store.connect import Warehouse
-from .layout import FIELDS, NAME_LIMIT, Layout, read_layout
-from .sources import CsvLineMap, SourceInfo, first_pass, read_delimited, read_header, read_jsonl, read_parquet
+from . import values as V
+from .layout import FIELDS, NAME_LIMIT, Layout
+from .sources import SourceInfo, first_pass, read_delimited, read_header, read_jsonl, read_parquet
 
 DEFAULTS = {"version": "", "build": "", "params": "", "family": "default", "seed": "0",
             "replicate": "0", "status": "ok", "finished_at": "", "host": "", "instance_hash": ""}
 NAME_FIELDS = ("solver", "version", "build", "family", "group", "instance", "host", "instance_hash")
-INT64_MAX = 2**63 - 1
+TEXT_FIELDS = NAME_FIELDS + ("params",)
+BULK_MIN_ROWS = 50_000  # below this, keeping the indexes up to date is as quick as rebuilding them
 
 
 @dataclass
@@ -61,8 +69,8 @@ class FileReport:
         return d
 
 
-class _Refused(Exception):
-    """Internal: roll the transaction back (dry run) without it being an error."""
+class _StartOver(Exception):
+    """Internal: the set-aside unique index found a run twice; load again with the indexes kept."""
 
 
 # --- dimension tables --------------------------------------------------------------------------
@@ -84,6 +92,11 @@ class Dimensions:
         self.metrics = {r.name: (r.id, r.slot, r.sense, r.unit) for r in conn.execute(select(S.metrics))}
 
     def _add(self, table, **values) -> int:
+        if self.conn.dialect.name == "sqlite":  # the driver's own cursor: a tenth of the time per row
+            cur = self.conn.connection.driver_connection.cursor()
+            cur.execute(f"INSERT INTO {table.name} ({', '.join(values)}) VALUES ({', '.join('?' * len(values))})",
+                        tuple(values.values()))
+            return cur.lastrowid
         return self.conn.execute(insert(table).values(**values)).inserted_primary_key[0]
 
     def solver_ids(self, keys: list[tuple]) -> list[int]:
@@ -110,7 +123,7 @@ class Dimensions:
                 if known:
                     warnings.append(
                         f"instance {family}/{group}/{inst} has content hash '{chash or '(none)'}' here but "
-                        f"'{sorted(known)[0] or '(none)'}' in the warehouse: kept as a different instance"
+                        f"'{sorted(known)[0] or '(none)'}' elsewhere: kept as a different instance"
                     )
                 iid = self.instances[(gid, inst, chash)] = self._add(S.instances, group_id=gid, name=inst, content_hash=chash)
                 known.add(chash)
@@ -139,26 +152,85 @@ class Dimensions:
                     f"{old_sense}; a metric keeps one sense"
                 )
             return mid, slot, old_sense
+        if len(name) > NAME_LIMIT:
+            raise InputError(f"{shown}: metric name '{name[:40]}...' is {len(name)} characters long; names may have at most {NAME_LIMIT}")
         used = {v[1] for v in self.metrics.values()}
         free = [s for s in range(1, S.METRIC_SLOTS + 1) if s not in used]
         if not free:
-            raise StorageError(f"{shown}: metric '{name}' would be the warehouse's {S.METRIC_SLOTS + 1}th; it holds at most {S.METRIC_SLOTS}")
+            raise StorageError(
+                f"{shown}: metric '{name}' would be the warehouse's {S.METRIC_SLOTS + 1}th; a warehouse holds at "
+                f"most {S.METRIC_SLOTS} metrics (list them with: blockyard inventory metrics); leave columns out "
+                "with a layout's [ignore]")
         sense = sense or "min"
         mid = self._add(S.metrics, name=name, unit=unit, sense=sense, slot=free[0])
         self.metrics[name] = (mid, free[0], sense, unit)
         return mid, free[0], sense
 
 
-def _factorize(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, list[tuple]]:
-    """Codes per row and the distinct key tuples, without a Python loop over the rows."""
-    if len(cols) == 1:
-        codes, uniq = pd.factorize(frame[cols[0]], sort=False)
-        return codes, [(u,) for u in uniq]
-    key = frame[cols[0]].astype(str)
-    for c in cols[1:]:
-        key = key + "\x1f" + frame[c].astype(str)
-    codes, uniq = pd.factorize(key, sort=False)
-    return codes, [tuple(u.split("\x1f")) for u in uniq]
+# --- one chunk after the checks ----------------------------------------------------------------
+
+@dataclass
+class Rows:
+    """Checked runs of one chunk: names as Arrow text (or one str for every row), numbers as numpy."""
+
+    lines: np.ndarray
+    src: np.ndarray  # row positions in the source chunk
+    names: dict[str, pa.Array | str]
+    seed: np.ndarray
+    replicate: np.ndarray
+    status: np.ndarray
+    finished: np.ndarray
+    has_finished: np.ndarray
+    metrics: dict[str, np.ndarray]
+    keys: dict[str, tuple[np.ndarray, list[tuple]]] = field(default_factory=dict)
+
+    def __len__(self) -> int:
+        return len(self.lines)
+
+    def take(self, keep: np.ndarray) -> "Rows":
+        idx = pa.array(np.flatnonzero(keep))
+        return Rows(
+            self.lines[keep], self.src[keep],
+            {k: v if isinstance(v, str) else v.take(idx) for k, v in self.names.items()},
+            self.seed[keep], self.replicate[keep], self.status[keep], self.finished[keep],
+            self.has_finished[keep], {k: v[keep] for k, v in self.metrics.items()},
+        )
+
+    def factorize(self) -> None:
+        """Codes per row and the distinct keys for solvers, instances and hosts (no database)."""
+        m = len(self)
+        for what, cols in (("solver", ("solver", "version", "build", "params")),
+                           ("instance", ("family", "group", "instance", "instance_hash")), ("host", ("host",))):
+            self.keys[what] = V.factorize([self.names[f] for f in cols], m)
+
+    def name(self, f: str, j: int) -> str:
+        v = self.names[f]
+        return v if isinstance(v, str) else v[j].as_py()
+
+    def describe(self, j: int) -> str:
+        solver, version = self.name("solver", j), self.name("version", j)
+        who = f"{solver}@{version}" if version else solver
+        return f"{who}, instance {self.name('instance', j)}, seed {self.seed[j]}, replicate {self.replicate[j]}"
+
+    def preview(self, k: int = 5) -> list[dict]:
+        out = []
+        for j in range(min(k, len(self))):
+            rec = {f: self.name(f, j) for f in ("solver", "version", "family", "group", "instance")}
+            rec.update(seed=int(self.seed[j]), replicate=int(self.replicate[j]),
+                       status=S.STATUS_NAMES[int(self.status[j])],
+                       finished_at=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(int(self.finished[j])))
+                       if self.has_finished[j] else "",
+                       host=self.name("host", j))
+            for m, vals in self.metrics.items():
+                v = float(vals[j])
+                rec[m] = None if np.isnan(v) else v
+            out.append(rec)
+        return out
+
+
+def _status_table(words: dict[str, str]) -> tuple[pa.Array, np.ndarray]:
+    keys = sorted(words)
+    return pa.array(keys, type=pa.string()), np.array([S.STATUS_CODES[words[k]] for k in keys], dtype=np.int16)
 
 
 # --- per-file state ----------------------------------------------------------------------------
@@ -172,26 +244,32 @@ class _FileLoad:
         self.metric_cols: dict[str, str] = {}  # source column -> metric name
         self.undecided: set[str] = set()
         self.header: list[str] | None = None
-        self.line_map: CsvLineMap | None = None
+        self.header_line = 1
         self.rejects: list[dict] = []
+        self.ragged = 0
         self.warnings: list[str] = []
         self.status_words = layout.status_words()
-        self.missing_words = set(layout.missing)
+        self.status_keys, self.status_codes = _status_table(self.status_words)
+        self.missing_words = tuple(layout.missing)
+        self.known_metrics: set[str] = set()  # metrics the warehouse holds already: no guessing for them
+        self.guessed_text: list[str] = []  # columns left out because their values were mostly not numbers
 
-    # message helpers
-    def line(self, approx: int) -> int:
-        return self.line_map.line(approx) if self.line_map is not None else approx
+    @property
+    def unit(self) -> str:
+        return "row" if self.info.fmt == "parquet" else "line"
 
-    def where(self, approx: int, fieldname: str | None = None) -> str:
-        unit = "row" if self.info.fmt == "parquet" else "line"
-        place = f"{self.name} {unit} {self.line(approx)}"
+    def where(self, line: int, fieldname: str | None = None) -> str:
+        place = f"{self.name} {self.unit} {line}"
         return f"{place}, field {fieldname}" if fieldname else place
 
+    def advice(self, text: str) -> str:
+        return "" if self.skip_bad else text
+
     # column mapping
-    def map_columns(self, columns: list[str], chunk: pd.DataFrame) -> None:
+    def map_columns(self, columns: list[str], chunk: pa.Table) -> None:
         lay = self.layout
         for col in columns:
-            if col in self.mapping or col in self.ignored or col == "_line":
+            if col in self.mapping or col in self.ignored or col in self.undecided:
                 continue
             low = col.strip().lower()
             if low in lay.columns:
@@ -206,193 +284,236 @@ class _FileLoad:
             if target in FIELDS:
                 clash = [c for c, t in self.mapping.items() if t == target]
                 if clash:
-                    raise InputError(f"{self.name}: columns '{clash[0]}' and '{col}' both give field {target}; keep one or rename it in a layout")
+                    raise InputError(f"{self._header_place()}columns '{clash[0]}' and '{col}' both give field {target}; keep one or rename it in a layout")
                 self.mapping[col] = target
-            elif target in lay.metrics or low in lay.columns:
-                self.mapping[col] = target
-                self.metric_cols[col] = target
+            elif target in lay.metrics or low in lay.columns or target in self.known_metrics:
+                self._metric(col, target)
             else:
                 self.undecided.add(col)
-        for col in list(self.undecided):
-            if col not in chunk.columns:
+        for col in [c for c in chunk.column_names if c in self.undecided]:  # in the file's order
+            _, empty, notnum, _, _ = V.numbers(chunk.column(col), self.missing_words)
+            filled = ~empty
+            if not filled.any():
                 continue
-            values = chunk[col]
-            values = values[(values != "") & ~values.isin(self.missing_words)]
-            if values.empty:
-                continue
-            numeric = pd.to_numeric(values, errors="coerce").notna().mean()
             self.undecided.discard(col)
-            if numeric >= 0.5:
-                self.mapping[col] = col.strip()
-                self.metric_cols[col] = col.strip()
+            if (~notnum[filled]).mean() >= 0.5:
+                self._metric(col, col.strip())
             else:
                 self.ignored.append(col)
+                self.guessed_text.append(col)
+
+    def _metric(self, col: str, metric: str) -> None:
+        clash = [c for c, m in self.metric_cols.items() if m == metric]
+        if clash:
+            raise InputError(f"{self._header_place()}columns '{clash[0]}' and '{col}' both give metric {metric}; keep one or rename it in a layout")
+        self.mapping[col] = metric
+        self.metric_cols[col] = metric
+
+    def _header_place(self) -> str:
+        return f"{self.name} line {self.header_line}: " if self.info.delimited else f"{self.name}: "
 
     def check_header(self, columns: list[str]) -> None:
         lowered: dict[str, str] = {}
-        for c in columns:
-            if c == "_line":
-                continue
+        for i, c in enumerate(columns, start=1):
             low = c.strip().lower()
             if not low:
-                raise InputError(f"{self.name} line 1: a column has no name; name every column in the header")
+                raise InputError(f"{self._header_place()}column {i} has no name; name every column in the header")
             if low in lowered:
-                raise InputError(f"{self.name} line 1: column '{c}' appears twice (also as '{lowered[low]}'); column names must be unique")
+                raise InputError(f"{self._header_place()}column '{c}' appears twice (also as '{lowered[low]}'); column names must be unique")
             lowered[low] = c
 
     def check_required(self) -> None:
         have = set(self.mapping.values()) | set(self.layout.constants)
+        found = ", ".join(self.header) if self.header else ", ".join(self.mapping) or "none"
         for need in ("solver", "instance"):
             if need not in have:
                 raise InputError(
-                    f"{self.name}: missing required column '{need}' (found: {', '.join(self.header or [])}); "
+                    f"{self._header_place()}missing required column '{need}' (columns: {found}); "
                     "add it, or map a column to it in a layout's [columns]"
                 )
         if "group" not in have and self.layout.group_pattern is None:
             raise InputError(
-                f"{self.name}: missing required column 'group'; add it, or derive it from the instance "
-                "name with a [group] pattern in a layout"
+                f"{self._header_place()}missing required column 'group' (columns: {found}); add it, or derive "
+                "it from the instance name with a [group] pattern in a layout"
             )
 
     # one chunk
-    def normalize(self, raw: pd.DataFrame) -> pd.DataFrame:
+    def drop_blank(self, raw: pa.Table, lines: np.ndarray) -> tuple[pa.Table, np.ndarray]:
+        """Leave out records whose every field is empty: blank lines, or ',,,' rows from a spreadsheet."""
+        if not self.info.delimited or raw.num_rows == 0:
+            return raw, lines
+        blank = None
+        for col in raw.columns:
+            empty = V.mask(pc.equal(pc.binary_length(V.combined(col)), 0))
+            blank = empty if blank is None else blank & empty
+            if not blank.any():
+                return raw, lines
+        keep = ~blank
+        return raw.filter(pa.array(keep)), lines[keep]
+
+    def normalize(self, raw: pa.Table, lines: np.ndarray) -> Rows:
         lay = self.layout
-        n = len(raw)
-        out = pd.DataFrame({"_line": raw["_line"].to_numpy()})
+        n = raw.num_rows
         reason = np.full(n, None, dtype=object)
         fieldof = np.full(n, None, dtype=object)
+        flagged = np.zeros(n, dtype=bool)
 
-        def flag(mask, fieldname: str, texts) -> None:
-            mask = np.asarray(mask, dtype=bool) & (reason == None)  # noqa: E711
-            if mask.any():
-                idx = np.flatnonzero(mask)
+        def flag(bad: np.ndarray, fieldname: str, texts) -> None:
+            bad = bad & ~flagged  # a row keeps its first reason
+            if bad.any():
+                idx = np.flatnonzero(bad)
                 if callable(texts):
                     texts = texts(idx)
                 reason[idx] = texts if isinstance(texts, str) else np.asarray(texts, dtype=object)
                 fieldof[idx] = fieldname
+                flagged[idx] = True
 
+        def shown(text: pa.Array, idx: np.ndarray) -> list[str]:
+            return [repr(v)[:80] for v in text.take(pa.array(idx)).to_pylist()]
+
+        by_target = {t: c for c, t in self.mapping.items() if t in FIELDS}
         # a line that repeats the header
         if self.header and len(self.header) > 1:
             first, second = self.header[0], self.header[1]
-            if first in raw.columns and second in raw.columns:
-                rep = (raw[first].str.strip() == first) & (raw[second].str.strip() == second)
-                flag(rep.to_numpy(), first, "this line repeats the header")
+            rep = V.mask(pc.and_(pc.equal(V.as_text(raw.column(first)), first.strip()),
+                                 pc.equal(V.as_text(raw.column(second)), second.strip())))
+            flag(rep, first, "this line repeats the header")
 
-        by_target = {t: c for c, t in self.mapping.items() if t in FIELDS}
-        for f in FIELDS:
+        names: dict[str, pa.Array | str] = {}
+        for f in TEXT_FIELDS:
             if f in lay.constants:
-                out[f] = lay.constants[f]
+                names[f] = lay.constants[f].strip()
             elif f in by_target:
-                out[f] = raw[by_target[f]].str.strip().to_numpy()
+                names[f] = V.as_text(raw.column(by_target[f]))
             else:
-                out[f] = DEFAULTS.get(f, "")
-        if "group" not in by_target and "group" not in lay.constants:
-            out["group"] = ""
+                names[f] = "" if f == "group" else DEFAULTS.get(f, "")
         if lay.group_pattern is not None:
-            need = out["group"] == ""
-            if need.any():
-                ext = out.loc[need, "instance"].str.extract(lay.group_pattern)
-                if "group" in ext:
-                    nomatch = ext["group"].isna().to_numpy()
-                    vals = ext["group"].fillna("")
-                    out.loc[need, "group"] = vals.to_numpy()
-                    if "family" in ext and "family" not in by_target and "family" not in lay.constants:
-                        out.loc[need, "family"] = ext["family"].fillna("default").to_numpy()
-                    if "instance" in ext:  # the pattern may also cut the instance's own name out
-                        out.loc[need, "instance"] = ext["instance"].where(ext["instance"].notna(), out.loc[need, "instance"]).to_numpy()
-                    bad = np.zeros(n, dtype=bool)
-                    bad[np.flatnonzero(need.to_numpy())[nomatch]] = True
-                    flag(bad, "instance", lambda i: [f"'{v}' does not match the layout's [group] pattern" for v in out["instance"].to_numpy()[i]])
+            self._apply_pattern(names, by_target, n, flag)
         for f in ("solver", "instance", "group"):
-            flag((out[f] == "").to_numpy(), f, f"is empty; every run needs a {f}")
-        out.loc[out["family"] == "", "family"] = "default"
+            v = names[f]
+            if not isinstance(v, str):
+                flag(V.mask(pc.equal(v, "")), f, f"is empty; every run needs a {f}")
+        fam = names["family"]
+        if isinstance(fam, str):
+            names["family"] = fam or "default"
+        else:
+            names["family"] = pc.if_else(pc.equal(fam, ""), pa.scalar("default"), fam)
         for f in NAME_FIELDS:
-            lengths = out[f].str.len().to_numpy()
-            if (lengths > NAME_LIMIT).any():
-                flag(lengths > NAME_LIMIT, f, lambda i, L=lengths: [f"is {L[j]} characters long; names may have at most {NAME_LIMIT}" for j in i])
+            v = names[f]
+            if isinstance(v, str):
+                continue
+            lengths = pc.utf8_length(v).to_numpy(zero_copy_only=False)
+            long_ = lengths > NAME_LIMIT
+            if long_.any():
+                flag(long_, f, lambda i, L=lengths: [f"is {L[j]} characters long; names may have at most {NAME_LIMIT}" for j in i])
         # seed and replicate: whole numbers
+        whole = {}
         for f in ("seed", "replicate"):
-            s = out[f].replace("", "0")
-            num = pd.to_numeric(s, errors="coerce")
-            arr = num.to_numpy(dtype=float)
-            bad = ~np.isfinite(arr) | (np.floor(arr) != arr) | (np.abs(arr) > 9.0e18)
-            flag(bad, f, lambda i, v=s.to_numpy(): [f"'{v[j]}' is not a whole number" for j in i])
-            good = np.where(bad, 0, arr)
-            # exact integers: parse the text where the float path might round
-            ints = pd.to_numeric(s.where(~bad, "0"), errors="coerce", downcast=None)
-            out[f] = ints.astype("int64") if ints.dtype.kind in "iu" else good.astype("int64")
-        # status words
-        words = out["status"].str.lower()
-        words = words.where(words != "", "ok")
-        mapped = words.map(self.status_words)
-        unknown = mapped.isna().to_numpy()
-        if unknown.any():
-            known = ", ".join(sorted(set(self.status_words)))
-            flag(unknown, "status", lambda i, v=out["status"].to_numpy(): [
-                f"unknown status '{v[j]}' (known: {known}); map it in a layout's [status] section" for j in i])
-        out["status_code"] = mapped.map(S.STATUS_CODES).fillna(0).astype("int16").to_numpy()
-        # finished_at: ISO 8601, times without a zone read as UTC
-        fin = out["finished_at"]
-        has = (fin != "").to_numpy()
-        epoch = np.full(n, np.nan)
-        if has.any():
-            parsed = pd.to_datetime(fin[has], format="ISO8601", utc=True, errors="coerce")
-            bad = np.zeros(n, dtype=bool)
-            bad[np.flatnonzero(has)] = parsed.isna().to_numpy()
-            flag(bad, "finished_at", lambda i, v=fin.to_numpy(): [f"'{v[j]}' is not an ISO 8601 date and time" for j in i])
-            secs = (parsed - pd.Timestamp("1970-01-01", tz="UTC")) // pd.Timedelta(seconds=1)
-            epoch[np.flatnonzero(has)] = secs.astype("float64").to_numpy()
-        out["finished_epoch"] = epoch
-        # metrics
-        ok = out["status_code"].to_numpy() == 0
-        for col, metric in self.metric_cols.items():
-            if col not in raw.columns:
-                vals = pd.Series([""] * n)
+            if f in by_target:
+                vals, bad, text = V.wholes(raw.column(by_target[f]))
+                flag(bad, f, lambda i, t=text: [f"{v} is not a whole number" for v in shown(t, i)])
+                whole[f] = vals
             else:
-                vals = raw[col].str.strip()
-            if self.missing_words:
-                vals = vals.where(~vals.isin(self.missing_words), "")
-            empty = (vals == "").to_numpy()
-            num = pd.to_numeric(vals.where(~empty, None), errors="coerce").to_numpy(dtype=float)
-            notnum = ~empty & np.isnan(num)
-            flag(notnum, metric, lambda i, v=vals.to_numpy(): [
-                f"'{v[j]}' is not a number; map it in a layout ([missing] words) or use --skip-bad" for j in i])
-            infinite = ~empty & np.isinf(num)
-            flag(infinite, metric, lambda i, v=vals.to_numpy(): [f"'{v[j]}' is not a finite number" for j in i])
+                whole[f] = np.full(n, int(lay.constants.get(f, DEFAULTS[f]) or 0), dtype=np.int64)
+        # status words
+        if "status" in by_target:
+            words = pc.utf8_lower(V.as_text(raw.column(by_target["status"])))
+            words = pc.if_else(pc.equal(words, ""), pa.scalar("ok"), words)
+            pos = pc.index_in(words, value_set=self.status_keys)
+            unknown = V.mask(pos.is_null())
+            if unknown.any():
+                known = ", ".join(sorted(set(self.status_words)))
+                flag(unknown, "status", lambda i, t=words: [
+                    f"unknown status {v} (known: {known}); map more words to ok, timeout, failed or infeasible "
+                    "in a layout's [status] section" for v in shown(t, i)])
+            status = self.status_codes[pc.fill_null(pos, 0).to_numpy(zero_copy_only=False)]
+        else:
+            word = lay.constants.get("status", "ok").strip().lower() or "ok"
+            if word not in self.status_words:
+                raise InputError(f"layout {lay.source}: [constants] status = '{word}' is not a known status word")
+            status = np.full(n, S.STATUS_CODES[self.status_words[word]], dtype=np.int16)
+        # finished_at: ISO 8601, times without a zone read as UTC
+        if "finished_at" in by_target or lay.constants.get("finished_at"):
+            col = raw.column(by_target["finished_at"]) if "finished_at" in by_target else \
+                pa.array([lay.constants["finished_at"]] * n, type=pa.string())
+            finished, has_fin, bad, text = V.instants(col)
+            flag(bad, "finished_at", lambda i, t=text: [
+                f"{v} is not an ISO 8601 date and time (e.g. 2026-11-09T14:05:00Z)" for v in shown(t, i)])
+        else:
+            finished, has_fin = np.zeros(n, dtype=np.int64), np.zeros(n, dtype=bool)
+        # metrics
+        ok = status == S.STATUS_CODES["ok"]
+        metrics: dict[str, np.ndarray] = {}
+        for col, metric in self.metric_cols.items():
+            if col not in raw.column_names:
+                vals = np.full(n, np.nan)
+                empty, notnum, nonfinite = np.ones(n, dtype=bool), np.zeros(n, dtype=bool), np.zeros(n, dtype=bool)
+                text = None
+            else:
+                vals, empty, notnum, nonfinite, text = V.numbers(raw.column(col), self.missing_words)
+            hint = self.advice("; map it in a layout ([missing] words) or use --skip-bad")
+            flag(notnum, metric, lambda i, t=text: [f"{v} is not a number{hint}" for v in shown(t, i)])
+            flag(nonfinite, metric, lambda i, t=text: [f"{v} is not a finite number" for v in shown(t, i)])
             flag(empty & ok, metric, "is empty on an ok run; give the value, or give the run a failure status")
-            out["m:" + metric] = np.where(np.isfinite(num), num, np.nan)
-        bad_rows = reason != None  # noqa: E711
+            metrics[metric] = np.where(np.isfinite(vals), vals, np.nan)
+        rows = Rows(lines, np.arange(n), names, whole["seed"], whole["replicate"], status, finished, has_fin, metrics)
+        bad_rows = flagged
         if bad_rows.any():
-            lines = out["_line"].to_numpy()
             if not self.skip_bad:
                 j = int(np.flatnonzero(bad_rows)[np.argmin(lines[bad_rows])])
                 raise InputError(f"{self.where(int(lines[j]), fieldof[j])}: {reason[j]}")
-            raw_bad = raw.loc[bad_rows]
-            for (k, row), why, fld in zip(raw_bad.iterrows(), reason[bad_rows], fieldof[bad_rows]):
-                rec = {c: row[c] for c in raw.columns if c != "_line"}
-                rec["line"] = self.line(int(row["_line"]))
-                rec["reason"] = f"field {fld}: {why}"
+            idx = np.flatnonzero(bad_rows)
+            records = raw.take(pa.array(idx)).to_pylist()
+            for j, rec in zip(idx.tolist(), records):
+                rec = {k: ("" if v is None else v) for k, v in rec.items()}
+                rec["line"] = int(lines[j])
+                rec["reason"] = f"field {fieldof[j]}: {reason[j]}"
                 self.rejects.append(rec)
-            out = out.loc[~bad_rows].reset_index(drop=True)
-        return out
+            rows = rows.take(~bad_rows)
+        return rows
 
-    def bad_row(self, text_: str, expected: int, actual: int) -> None:
-        """Called by the CSV reader for a row with the wrong number of fields."""
-        line = self._find_line(text_)
-        msg = f"has {actual} fields where the header has {expected}"
+    def _apply_pattern(self, names: dict, by_target: dict, n: int, flag) -> None:
+        """Group (and family, and the instance's own name) from the instance name, by the layout's pattern."""
+        pattern = self.layout.group_pattern
+        group, inst = names["group"], names["instance"]
+        if isinstance(group, str) and group:
+            return
+        need = np.ones(n, dtype=bool) if isinstance(group, str) else V.mask(pc.equal(group, ""))
+        if not need.any():
+            return
+        inst_arr = inst if not isinstance(inst, str) else pa.array([inst] * n, type=pa.string())
+        enc = inst_arr.dictionary_encode()
+        found = [pattern.search(u) for u in enc.dictionary.to_pylist()]  # distinct names only
+        idx = enc.indices
+
+        def part(key: str, fallback: list[str]) -> pa.Array:
+            vals = [(m.group(key) if m is not None and m.group(key) is not None else fb) for m, fb in zip(found, fallback)]
+            return pa.array(vals, type=pa.string()).take(idx)
+
+        uniq = enc.dictionary.to_pylist()
+        matched = np.array([m is not None for m in found], dtype=bool)[idx.to_numpy(zero_copy_only=False)]
+        flag(need & ~matched, "instance", lambda i: [f"{v!r} does not match the layout's [group] pattern"
+                                                     for v in inst_arr.take(pa.array(i)).to_pylist()])
+        use = pa.array(need & matched)
+        base_group = group if not isinstance(group, str) else pa.array([group] * n, type=pa.string())
+        names["group"] = pc.if_else(use, part("group", [""] * len(uniq)), base_group)
+        groups = pattern.groupindex
+        if "family" in groups and "family" not in by_target and "family" not in self.layout.constants:
+            fam = names["family"]
+            base_fam = fam if not isinstance(fam, str) else pa.array([fam] * n, type=pa.string())
+            names["family"] = pc.if_else(use, part("family", ["default"] * len(uniq)), base_fam)
+        if "instance" in groups:
+            names["instance"] = pc.if_else(use, part("instance", uniq), inst_arr)
+
+    def bad_row(self, line: int, text_: str, expected: int, actual: int) -> InputError | None:
+        """Told by the CSV reader of a row with the wrong number of fields."""
+        what = "too many" if actual > expected else "too few"
+        msg = f"has {actual} fields where the header has {expected} ({what})"
         if not self.skip_bad:
-            raise InputError(f"{self.name} line {line}: {msg}")
+            return InputError(f"{self.name} line {line}: {msg}; check the quoting and the delimiter on that line")
+        self.ragged += 1
         self.rejects.append({"line": line, "raw": text_, "reason": msg})
-
-    def _find_line(self, text_: str) -> int | str:
-        from .sources import open_text
-
-        first = text_.split("\n")[0].rstrip("\r")
-        with open_text(self.info) as fh:
-            for n, ln in enumerate(fh, start=1):
-                if ln.rstrip("\r\n") == first:
-                    return n
-        return "?"
+        return None
 
 
 # --- writing -----------------------------------------------------------------------------------
@@ -401,86 +522,265 @@ RUN_COLS = ["id", "campaign_id", "import_id", "solver_id", "instance_id", "seed"
             "status", "finished_at", "host_id", "source_line"]
 
 
-def _nullable(values: np.ndarray, as_int: bool) -> list:
-    if as_int:
-        return [None if math.isnan(v) else int(v) for v in values.tolist()]
-    return [None if math.isnan(v) else v for v in values.tolist()]
+def _with_nulls(values: np.ndarray, present: np.ndarray) -> list:
+    if present.all():
+        return values.tolist()
+    out = values.astype(object)
+    out[~present] = None
+    return out.tolist()
 
 
 class _Writer:
     """Writes run rows; the dialect decides executemany (SQLite) or COPY (PostgreSQL)."""
 
-    def __init__(self, conn, dialect: str, slots: list[int]):
+    def __init__(self, conn, dialect: str, slots: list[int], campaign_id: int, import_id: int):
         self.conn, self.dialect = conn, dialect
+        self.slots = slots
         self.cols = RUN_COLS + [f"v{s}" for s in slots]
         self.raw = conn.connection.driver_connection
-        if dialect == "postgresql":
+        names = ", ".join(self.cols)
+        if dialect == "sqlite":
+            # the two ids are the same on every row and are ours, not the file's: written in the statement
+            marks = "(" + ", ".join(["?", str(int(campaign_id)), str(int(import_id))] + ["?"] * (len(self.cols) - 3)) + ")"
+            self.width = len(self.cols) - 2
+            limit = self.raw.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if hasattr(self.raw, "getlimit") else 999
+            self.per_statement = max(1, min(256, limit // self.width))
+            head = f"INSERT OR IGNORE INTO runs ({names}) VALUES "
+            self.sql_one = head + marks
+            self.sql_many = head + ", ".join([marks] * self.per_statement)
+        else:
+            self.campaign_id, self.import_id = campaign_id, import_id
             self.conn.exec_driver_sql(
                 "CREATE TEMP TABLE IF NOT EXISTS blockyard_stage (LIKE runs INCLUDING DEFAULTS) ON COMMIT DROP"
             )
+            self.copy_sql = f"COPY blockyard_stage ({names}) FROM STDIN (FORMAT csv)"
+            self.move_sql = (f"INSERT INTO runs ({names}) SELECT {names} FROM blockyard_stage ORDER BY id "
+                             "ON CONFLICT DO NOTHING")
 
-    def write(self, rows: list[tuple]) -> None:
-        cols = ", ".join(self.cols)
+    def write(self, ids: np.ndarray, rows: Rows, solver: np.ndarray, instance: np.ndarray,
+              host: np.ndarray, has_host: np.ndarray, metric_of_slot: dict[int, str]) -> None:
         if self.dialect == "sqlite":
-            marks = ", ".join("?" * len(self.cols))
-            self.raw.executemany(f"INSERT OR IGNORE INTO runs ({cols}) VALUES ({marks})", rows)
-        else:
-            cur = self.raw.cursor()
-            cur.execute("TRUNCATE blockyard_stage")
-            with cur.copy(f"COPY blockyard_stage ({cols}) FROM STDIN") as cp:
-                for r in rows:
-                    cp.write_row(r)
-            cur.execute(f"INSERT INTO runs ({cols}) SELECT {cols} FROM blockyard_stage ON CONFLICT DO NOTHING")
+            self._write_sqlite(ids, rows, solver, instance, host, has_host, metric_of_slot)
+            return
+        import io
+
+        import pyarrow.csv as pacsv
+
+        m = len(ids)
+        data = {
+            "id": pa.array(ids), "campaign_id": pa.array(np.full(m, self.campaign_id, dtype=np.int64)),
+            "import_id": pa.array(np.full(m, self.import_id, dtype=np.int64)),
+            "solver_id": pa.array(solver), "instance_id": pa.array(instance), "seed": pa.array(rows.seed),
+            "replicate": pa.array(rows.replicate), "status": pa.array(rows.status),
+            "finished_at": pa.array(rows.finished, mask=~rows.has_finished),
+            "host_id": pa.array(host, mask=~has_host), "source_line": pa.array(rows.lines),
+        }
+        for s in self.slots:
+            vals = rows.metrics[metric_of_slot[s]]
+            data[f"v{s}"] = pa.array(vals, mask=np.isnan(vals))
+        buf = io.BytesIO()
+        pacsv.write_csv(pa.table(data), buf, pacsv.WriteOptions(include_header=False))
+        cur = self.raw.cursor()
+        cur.execute("TRUNCATE blockyard_stage")
+        with cur.copy(self.copy_sql) as cp:
+            cp.write(buf.getvalue())
+        cur.execute(self.move_sql)
 
 
-def _import_report_conflicts(conn, fl: _FileLoad, frame: pd.DataFrame, ids: np.ndarray, campaign_id: int,
-                             import_id: int) -> tuple[np.ndarray, int]:
-    """After INSERT OR IGNORE: which rows did not go in, and why. Returns (kept mask, skipped)."""
+    def _write_sqlite(self, ids, rows: Rows, solver, instance, host, has_host, metric_of_slot) -> None:
+        m = len(ids)
+        ints = [ids, solver, instance, rows.seed, rows.replicate, rows.status, rows.finished, host, rows.lines]
+        if all(int(np.abs(a).max(initial=0)) < V.WHOLE_LIMIT for a in (rows.seed, rows.finished)):
+            # One float64 table, many rows per statement. SQLite stores a whole-valued REAL in an
+            # INTEGER column as an INTEGER, and a NaN as NULL, so the stored values and types are
+            # the same as when binding ints and None (the tests check both).
+            table = np.empty((m, self.width), dtype=np.float64)
+            for i, a in enumerate(ints):
+                table[:, i] = a
+            table[~rows.has_finished, 6] = np.nan
+            table[~has_host, 7] = np.nan
+            for i, s in enumerate(self.slots):
+                table[:, len(ints) + i] = rows.metrics[metric_of_slot[s]]
+            k = self.per_statement
+            full = m // k * k
+            if full:
+                self.raw.executemany(self.sql_many, table[:full].reshape(-1, k * self.width).tolist())
+            if m > full:
+                self.raw.executemany(self.sql_one, table[full:].tolist())
+            return
+        # a seed or time past 2**53 would not survive a float: bind Python ints one row at a time
+        columns = [a.tolist() for a in ints[:6]] + [
+            _with_nulls(rows.finished, rows.has_finished), _with_nulls(host, has_host), rows.lines.tolist()]
+        for s in self.slots:
+            vals = rows.metrics[metric_of_slot[s]]
+            columns.append(_with_nulls(vals, ~np.isnan(vals)))
+        self.raw.executemany(self.sql_one, zip(*columns))
+
+
+def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.ndarray, solver: np.ndarray,
+                      instance: np.ndarray, campaign_id: int, import_id: int) -> tuple[int, int]:
+    """After INSERT OR IGNORE: which rows did not go in, and why. Returns (loaded, skipped)."""
     lo, hi = int(ids[0]), int(ids[-1])
-    stored = {r[0] for r in conn.execute(select(S.runs.c.id).where(S.runs.c.id.between(lo, hi)))}
-    kept = np.fromiter((int(i) in stored for i in ids), dtype=bool, count=len(ids))
-    missing = np.flatnonzero(~kept)
+    stored = np.fromiter((r[0] for r in conn.execute(select(S.runs.c.id).where(S.runs.c.id.between(lo, hi)))), dtype=np.int64)
+    kept = np.isin(ids, stored)
     skipped = 0
-    for j in missing:
-        r = frame.iloc[j]
+    for j in np.flatnonzero(~kept).tolist():  # only the runs that did not go in
         other = conn.execute(
             select(S.runs.c.import_id, S.runs.c.source_line).where(
-                S.runs.c.campaign_id == campaign_id, S.runs.c.solver_id == int(r["solver_id"]),
-                S.runs.c.instance_id == int(r["instance_id"]), S.runs.c.seed == int(r["seed"]),
-                S.runs.c.replicate == int(r["replicate"]))
+                S.runs.c.campaign_id == campaign_id, S.runs.c.solver_id == int(solver[j]),
+                S.runs.c.instance_id == int(instance[j]), S.runs.c.seed == int(rows.seed[j]),
+                S.runs.c.replicate == int(rows.replicate[j]))
         ).first()
-        line = int(r["_line"])
+        line = int(rows.lines[j])
         if other is not None and other.import_id == import_id:
-            what = (f"{r['solver']}@{r['version']}" if r["version"] else r["solver"]) + \
-                f", instance {r['instance']}, seed {r['seed']}, replicate {r['replicate']}"
-            msg = f"lines {fl.line(other.source_line)} and {fl.line(line)} hold the same run ({what}); a run appears once per campaign"
+            a, b = sorted((int(other.source_line), line))
+            msg = f"{fl.unit}s {a} and {b} hold the same run ({rows.describe(j)}); a run appears once per campaign"
             if not fl.skip_bad:
                 raise InputError(f"{fl.name}: {msg}")
-            fl.rejects.append({"line": fl.line(line), "reason": msg})
+            rec = {k: ("" if v is None else v) for k, v in raw.slice(int(rows.src[j]), 1).to_pylist()[0].items()}
+            rec.update(line=line, reason=msg)
+            fl.rejects.append(rec)
         else:
             skipped += 1
             if skipped <= 3:
-                fl.warnings.append(f"{fl.where(line)}: this run is already in the warehouse (import {other.import_id if other else '?'}); skipped, not overwritten")
-    return kept, skipped
+                fl.warnings.append(
+                    f"{fl.where(line)}: this run ({rows.describe(j)}) is already in campaign "
+                    f"(import {other.import_id if other else '?'}); skipped, the stored values are kept")
+    return int(kept.sum()), skipped
 
 
 def _campaign_id(conn, name: str) -> int:
+    if not name.strip():
+        raise InputError("--campaign needs a name")
+    if len(name) > NAME_LIMIT:
+        raise InputError(f"campaign name is {len(name)} characters long; names may have at most {NAME_LIMIT}")
     found = conn.execute(select(S.campaigns.c.id).where(S.campaigns.c.name == name)).scalar()
     if found is not None:
         return found
     return conn.execute(insert(S.campaigns).values(name=name, created_at=int(time.time()))).inserted_primary_key[0]
 
 
+def _checked(fl: _FileLoad, chunks):
+    """Source chunks -> (source table, checked rows, records read). No database work in here."""
+    first = True
+    for raw, lines in chunks:
+        raw, lines = fl.drop_blank(raw, lines)
+        if raw.num_rows == 0:
+            continue
+        if first and not fl.info.delimited:
+            fl.check_header(raw.column_names)
+        fl.map_columns(raw.column_names, raw)
+        if first:
+            fl.check_required()
+            first = False
+        rows = fl.normalize(raw, lines)
+        rows.factorize()
+        # the source table is kept only where a rejected duplicate would be written out with it
+        yield (raw if fl.skip_bad else None), rows, raw.num_rows
+
+
 def _readers(fl: _FileLoad):
     info = fl.info
-    if info.fmt in ("csv", "tsv"):
-        fl.header = read_header(info)
+    if info.delimited:
+        fl.header, fl.header_line = read_header(info)
         fl.check_header(fl.header)
-        fl.line_map = CsvLineMap(info, len(fl.header))
-        return read_delimited(info, fl.header, fl.bad_row)
+        return read_delimited(info, fl.header, fl.header_line, fl.bad_row)
     if info.fmt == "jsonl":
         return read_jsonl(info)
     return read_parquet(info)
+
+
+def _runs_indexes(conn) -> list[tuple[str, str]]:
+    """(name, CREATE statement) of the runs table's full indexes, unique ones first.
+
+    Partial indexes (with a WHERE) hold no new run and cost nothing to keep, so they stay.
+    """
+    rows = conn.exec_driver_sql(
+        "SELECT name, sql FROM sqlite_master WHERE type = 'index' AND tbl_name = 'runs' AND sql IS NOT NULL"
+    ).fetchall()
+    full = [(r[0], r[1]) for r in rows if " WHERE " not in r[1].upper().replace("\n", " ")]
+    return sorted(full, key=lambda x: "UNIQUE" not in x[1].upper())
+
+
+class _Prefetch:
+    """Reads the next chunk in a helper thread while this one is written.
+
+    Only for the readers whose parsing runs in pyarrow without Python's global lock (CSV, TSV,
+    Parquet); the helper stops as soon as the load does, on success or failure.
+    """
+
+    def __init__(self, chunks, depth: int = 1):
+        import queue
+        import threading
+
+        self._q: queue.Queue = queue.Queue(maxsize=depth)
+        self._stop = threading.Event()
+        self._chunks = chunks
+        self._thread = threading.Thread(target=self._run, name="blockyard-read", daemon=True)
+        self._thread.start()
+
+    def _put(self, item) -> bool:
+        import queue
+
+        while not self._stop.is_set():
+            try:
+                self._q.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def _run(self) -> None:
+        try:
+            for chunk in self._chunks:
+                if not self._put(("chunk", chunk)):
+                    return
+            self._put(("end", None))
+        except BaseException as exc:  # noqa: BLE001 - handed to the loading thread
+            self._put(("error", exc))
+        finally:
+            close = getattr(self._chunks, "close", None)
+            if close is not None and self._stop.is_set():
+                try:
+                    close()
+                except Exception:  # noqa: BLE001
+                    pass
+
+    def __iter__(self):
+        try:
+            while True:
+                kind, item = self._q.get()
+                if kind == "chunk":
+                    yield item
+                elif kind == "end":
+                    return
+                else:
+                    raise item
+        finally:
+            self._stop.set()
+            self._thread.join()
+
+
+class _ForeignKeysOff:
+    """SQLite only: skip the per-row foreign key lookups while the runs go in.
+
+    Every id written comes from the dimension tables in the same transaction, so the lookups
+    would only repeat what the loader knows. The pragma is set outside the transaction (SQLite
+    ignores it inside one) and always set back before the connection goes back to the pool.
+    """
+
+    def __init__(self, conn, active: bool):
+        self.raw = conn.connection.driver_connection if active else None
+
+    def __enter__(self):
+        if self.raw is not None:
+            self.raw.execute("PRAGMA foreign_keys = OFF")
+        return self
+
+    def __exit__(self, *exc):
+        if self.raw is not None:
+            self.raw.execute("PRAGMA foreign_keys = ON")
+        return False
 
 
 def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | None = None, *,
@@ -491,7 +791,6 @@ def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | N
     shown = str(path)
     p = Path(path)
     info = first_pass(p, shown)
-    report = FileReport(file=shown, status="loaded", campaign=campaign)
     with wh.engine.connect() as conn:
         prior = conn.execute(
             select(S.imports.c.id, S.imports.c.loaded_at, S.campaigns.c.name)
@@ -500,121 +799,150 @@ def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | N
         ).first()
     if prior is not None:
         when = time.strftime("%Y-%m-%d %H:%M", time.gmtime(prior.loaded_at))
-        report.status = "duplicate"
-        report.campaign = prior.name
-        report.import_id = prior.id
-        report.message = f"already loaded into campaign {prior.name} on {when} UTC (import {prior.id}); nothing to do"
-        return report
-    fl = _FileLoad(wh, info, layout, skip_bad)
-    total = max(info.lines - (1 if info.fmt in ("csv", "tsv") else 0), 1)
+        return FileReport(
+            file=shown, status="duplicate", campaign=prior.name, import_id=prior.id,
+            message=f"already loaded into campaign {prior.name} on {when} UTC (import {prior.id}); nothing to do")
     try:
-        with wh.write() as conn:
-            with conn.begin() as trans:
-                if wh.dialect == "postgresql":
-                    conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
-                campaign_id = _campaign_id(conn, campaign)
-                import_id = conn.execute(insert(S.imports).values(
-                    campaign_id=campaign_id, file_name=p.name, sha256=info.sha256, layout=layout.text,
-                    rows_read=0, rows_loaded=0, rows_rejected=0, rows_skipped=0,
-                    loaded_at=int(time.time()), tool_version=__version__)).inserted_primary_key[0]
-                dims = Dimensions(conn)
-                next_id = (conn.execute(select(func.max(S.runs.c.id))).scalar() or 0) + 1
-                writer = None
-                read = loaded = skipped = 0
-                for raw in _readers(fl):
-                    if not report.mapping and fl.header is None:
-                        fl.check_header(list(raw.columns))
-                    fl.map_columns(list(raw.columns), raw)
-                    if read == 0:
-                        fl.check_required()
-                    read += len(raw)
-                    frame = fl.normalize(raw)
-                    if not report.preview:
-                        report.preview = frame.drop(columns=["_line", "status_code", "finished_epoch"]).head(5).to_dict("records")
-                    if frame.empty:
-                        continue
-                    metric_slots = {}
-                    for col, metric in fl.metric_cols.items():
-                        spec = layout.metrics.get(metric)
-                        _, slot, sense = dims.metric(metric, spec.sense if spec else None, spec.unit if spec else "", shown)
-                        metric_slots[metric] = slot
-                        report.metrics[metric] = sense
-                    if writer is None or set(writer.cols[len(RUN_COLS):]) != {f"v{s}" for s in metric_slots.values()}:
-                        writer = _Writer(conn, wh.dialect, sorted(metric_slots.values()))
-                    codes, keys = _factorize(frame, ["solver", "version", "build", "params"])
-                    frame["solver_id"] = np.asarray(dims.solver_ids(keys), dtype=np.int64)[codes]
-                    codes, keys = _factorize(frame, ["family", "group", "instance", "instance_hash"])
-                    frame["instance_id"] = np.asarray(dims.instance_ids(keys, fl.warnings), dtype=np.int64)[codes]
-                    codes, keys = _factorize(frame, ["host"])
-                    hid = np.asarray([np.nan if h is None else h for h in dims.host_ids([k[0] for k in keys])], dtype=float)
-                    host = hid[codes]
-                    m = len(frame)
-                    ids = np.arange(next_id, next_id + m, dtype=np.int64)
-                    next_id += m
-                    columns = [
-                        ids.tolist(), [campaign_id] * m, [import_id] * m,
-                        frame["solver_id"].tolist(), frame["instance_id"].tolist(),
-                        frame["seed"].tolist(), frame["replicate"].tolist(),
-                        frame["status_code"].astype(int).tolist(),
-                        _nullable(frame["finished_epoch"].to_numpy(), True),
-                        _nullable(host, True), frame["_line"].astype(int).tolist(),
-                    ]
-                    slot_to_metric = {s: name for name, s in metric_slots.items()}
-                    for s in sorted(metric_slots.values()):
-                        columns.append(_nullable(frame["m:" + slot_to_metric[s]].to_numpy(), False))
-                    writer.write(list(zip(*columns)))
-                    count = conn.execute(select(func.count()).select_from(S.runs).where(
-                        S.runs.c.id.between(int(ids[0]), int(ids[-1])))).scalar()
-                    if count != m:
-                        kept, sk = _import_report_conflicts(conn, fl, frame, ids, campaign_id, import_id)
-                        skipped += sk
-                        loaded += int(kept.sum())
-                    else:
-                        loaded += m
-                    if progress:
-                        progress(min(read, total), total)
-                if read == 0 and not fl.rejects:
-                    raise InputError(f"{shown}: the file has a header but no data rows")
-                if not fl.metric_cols and read:
-                    raise InputError(
-                        f"{shown}: no metric columns found (columns: {', '.join(c for c in (fl.header or fl.mapping) if c != '_line')}); "
-                        "a metric is a numeric column other than the run fields"
-                    )
-                rejected = len(fl.rejects)
-                read = max(read, loaded + rejected + skipped)
-                if skipped > 3:
-                    fl.warnings.append(f"{skipped} runs in all were already in the warehouse and were skipped")
-                conn.execute(update(S.imports).where(S.imports.c.id == import_id).values(
-                    rows_read=read, rows_loaded=loaded, rows_rejected=rejected, rows_skipped=skipped))
-                report.rows_read, report.rows_loaded = read, loaded
-                report.rows_rejected, report.rows_skipped = rejected, skipped
-                report.import_id = import_id
-                report.mapping = dict(fl.mapping)
-                report.ignored = list(fl.ignored)
-                report.warnings = fl.warnings
-                if fl.undecided:
-                    report.warnings.append(f"columns with no values were not read: {', '.join(sorted(fl.undecided))}")
-                if dry_run:
-                    report.status = "checked"
-                    report.import_id = None
-                    trans.rollback()
-                    return report
-                if fl.rejects:
-                    target = Path(rejects) if rejects else p.with_name(p.name + ".rejects.csv")
-                    _write_rejects(target, fl.rejects)
-                    report.rejects_file = str(target)
-        if wh.is_sqlite and loaded >= 10_000:
-            with wh.write() as conn:
-                conn.exec_driver_sql("PRAGMA analysis_limit = 1000")
-                conn.exec_driver_sql("ANALYZE")
+        try:
+            report = _load(wh, info, p, campaign, layout, skip_bad, dry_run, rejects, progress, allow_bulk=True)
+        except _StartOver:
+            report = _load(wh, info, p, campaign, layout, skip_bad, dry_run, rejects, progress, allow_bulk=False)
     except OperationalError as exc:
         raise StorageError(f"cannot write to warehouse {wh.display}: {_db_reason(exc)}; nothing from {shown} was stored") from None
     except IntegrityError as exc:
         if "sha256" in str(exc.orig) or "imports" in str(exc.orig):
-            report.status = "duplicate"
-            report.message = "the same bytes were loaded by another process just now; nothing to do"
-            return report
+            return FileReport(file=shown, status="duplicate", campaign=campaign,
+                              message="the same bytes were loaded by another process just now; nothing to do")
         raise StorageError(f"warehouse {wh.display} refused a write: {_db_reason(exc)}; nothing from {shown} was stored") from None
+    if report.status == "loaded" and wh.is_sqlite and report.rows_loaded >= 10_000:
+        with wh.write() as conn:
+            conn.exec_driver_sql("PRAGMA analysis_limit = 1000")
+            conn.exec_driver_sql("ANALYZE")
+    return report
+
+
+def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layout, skip_bad: bool,
+          dry_run: bool, rejects, progress, allow_bulk: bool) -> FileReport:
+    shown = info.name
+    report = FileReport(file=shown, status="loaded", campaign=campaign)
+    fl = _FileLoad(wh, info, layout, skip_bad)
+    total = max(info.lines - (1 if info.delimited else 0), 1)
+    with wh.write() as conn, _ForeignKeysOff(conn, wh.is_sqlite):
+        with conn.begin() as trans:
+            if wh.dialect == "postgresql":
+                conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
+            campaign_id = _campaign_id(conn, campaign)
+            import_id = conn.execute(insert(S.imports).values(
+                campaign_id=campaign_id, file_name=p.name, sha256=info.sha256, layout=layout.text,
+                rows_read=0, rows_loaded=0, rows_rejected=0, rows_skipped=0,
+                loaded_at=int(time.time()), tool_version=__version__)).inserted_primary_key[0]
+            dims = Dimensions(conn)
+            fl.known_metrics = set(dims.metrics)
+            next_id = (conn.execute(select(func.max(S.runs.c.id))).scalar() or 0) + 1
+            set_aside: list[tuple[str, str]] = []
+            if (allow_bulk and wh.is_sqlite and not dry_run and total >= BULK_MIN_ROWS and next_id - 1 <= total):
+                set_aside = _runs_indexes(conn)
+                for name, _ in set_aside:
+                    conn.exec_driver_sql(f'DROP INDEX "{name}"')
+            writer = None
+            read = loaded = skipped = 0
+            summaries = cells.Accumulator()
+            first_id = next_id
+            chunks = _checked(fl, _readers(fl))
+            if info.fmt != "jsonl":  # pyarrow parses without Python's lock: read ahead in a helper thread
+                chunks = _Prefetch(chunks)
+            for raw, rows, n_read in chunks:
+                read += n_read
+                if not report.preview:
+                    report.preview = rows.preview()
+                if len(rows) == 0:
+                    continue
+                metric_slots = {}
+                for metric in rows.metrics:
+                    spec = layout.metrics.get(metric)
+                    _, slot, sense = dims.metric(metric, spec.sense if spec else None, spec.unit if spec else "", shown)
+                    metric_slots[metric] = slot
+                    report.metrics[metric] = sense
+                slots = sorted(metric_slots.values())
+                if writer is None or writer.slots != slots:
+                    writer = _Writer(conn, wh.dialect, slots, campaign_id, import_id)
+                m = len(rows)
+                codes, keys = rows.keys["solver"]
+                solver = np.asarray(dims.solver_ids(keys), dtype=np.int64)[codes]
+                codes, keys = rows.keys["instance"]
+                instance = np.asarray(dims.instance_ids(keys, fl.warnings), dtype=np.int64)[codes]
+                codes, keys = rows.keys["host"]
+                hid = dims.host_ids([k[0] for k in keys])
+                host = np.asarray([h or 0 for h in hid], dtype=np.int64)[codes]
+                has_host = np.asarray([h is not None for h in hid], dtype=bool)[codes]
+                ids = np.arange(next_id, next_id + m, dtype=np.int64)
+                next_id += m
+                writer.write(ids, rows, solver, instance, host, has_host, {s: k for k, s in metric_slots.items()})
+                summaries.add(ids, solver, instance, np.where(has_host, host, np.nan), rows.status,
+                              {s: rows.metrics[k] for k, s in metric_slots.items()})
+                if set_aside:
+                    loaded += m  # no key to collide on until the indexes are back; checked there
+                else:
+                    count = conn.execute(select(func.count()).select_from(S.runs).where(
+                        S.runs.c.id.between(int(ids[0]), int(ids[-1])))).scalar()
+                    if count != m:
+                        got, sk = _report_conflicts(conn, fl, rows, raw, ids, solver, instance, campaign_id, import_id)
+                        loaded += got
+                        skipped += sk
+                    else:
+                        loaded += m
+                if progress:
+                    progress(min(read, total), total)
+            if read == 0 and not fl.rejects:
+                if info.delimited:
+                    raise InputError(f"{shown}: the file has a header but no data rows")
+                raise InputError(f"{shown}: the file holds no records")
+            if not fl.metric_cols and read:
+                texty = [c for c in fl.guessed_text]
+                why = (f"; {', '.join(texty)} {'holds' if len(texty) == 1 else 'hold'} text, not numbers "
+                       "(name a metric under [metrics] in a layout to have its values checked)") if texty else ""
+                raise InputError(
+                    f"{shown}: no metric columns found (columns: {', '.join(fl.header or list(fl.mapping) + fl.ignored)}){why}; "
+                    "a metric is a numeric column other than the run fields"
+                )
+            if set_aside:
+                # sort the keys through temporary files, so that memory stays flat however large the table
+                conn.exec_driver_sql("PRAGMA temp_store = FILE")
+                try:
+                    for name, sql in set_aside:
+                        conn.exec_driver_sql(sql)
+                except IntegrityError:
+                    raise _StartOver() from None
+                finally:
+                    conn.exec_driver_sql("PRAGMA temp_store = MEMORY")
+            rejected = len(fl.rejects)
+            read += fl.ragged
+            if skipped > 3:
+                fl.warnings.append(f"{skipped} runs in all were already in the campaign and were skipped")
+            conn.execute(update(S.imports).where(S.imports.c.id == import_id).values(
+                rows_read=read, rows_loaded=loaded, rows_rejected=rejected, rows_skipped=skipped))
+            if skipped:  # some rows did not go in: sum the cells from what was stored
+                cells.from_runs(conn, import_id, first_id, next_id - 1)
+            else:
+                cells.write_rows(conn, wh.dialect, summaries.rows(campaign_id, import_id))
+            report.rows_read, report.rows_loaded = read, loaded
+            report.rows_rejected, report.rows_skipped = rejected, skipped
+            report.import_id = import_id
+            report.mapping = dict(fl.mapping)
+            report.ignored = list(fl.ignored)
+            report.warnings = fl.warnings
+            if fl.undecided:
+                report.warnings.append(f"columns with no values were not read: {', '.join(sorted(fl.undecided))}")
+            if dry_run:
+                report.status = "checked"
+                report.import_id = None
+                trans.rollback()
+                report.message = f"would load {loaded} runs into campaign {campaign}; nothing was stored"
+                return report
+            if fl.rejects:
+                target = Path(rejects) if rejects else p.with_name(p.name + ".rejects.csv")
+                _write_rejects(target, fl.rejects, shown, fl.header)
+                report.rejects_file = str(target)
     parts = [f"{loaded} runs loaded into campaign {campaign}"]
     if report.rows_rejected:
         parts.append(f"{report.rows_rejected} rejected (see {report.rejects_file})")
@@ -629,14 +957,25 @@ def _db_reason(exc: Exception) -> str:
     return str(orig).strip().splitlines()[0]
 
 
-def _write_rejects(target: Path, rejects: list[dict]) -> None:
+def _write_rejects(target: Path, rejects: list[dict], shown: str, header: list[str] | None) -> None:
+    """The rejected records, in file order: line, the source's own columns, raw text, reason."""
     cols: dict[str, None] = {"line": None}
+    for c in header or []:
+        cols[c] = None
     for r in rejects:
         for k in r:
             cols.setdefault(k, None)
-    cols.pop("reason", None)
-    cols["reason"] = None
-    frame = pd.DataFrame(rejects, columns=list(cols)).sort_values("line", key=lambda s: pd.to_numeric(s, errors="coerce"))
+    for last in ("raw", "reason"):
+        if last in cols or last == "reason":
+            cols.pop(last, None)
+            cols[last] = None
+    ordered = sorted(rejects, key=lambda r: r["line"] if isinstance(r["line"], int) else 0)
     tmp = target.with_name(target.name + ".part")
-    frame.to_csv(tmp, index=False)
-    os.replace(tmp, target)
+    try:
+        with open(tmp, "w", newline="", encoding="utf-8") as fh:
+            w = csv.DictWriter(fh, fieldnames=list(cols), restval="", extrasaction="ignore")
+            w.writeheader()
+            w.writerows(ordered)
+        os.replace(tmp, target)
+    except OSError as exc:
+        raise InputError(f"cannot write the rejected rows of {shown} to {target}: {exc.strerror}; nothing was stored") from None

@@ -1,9 +1,10 @@
 """Reading result files: format detection, a byte-level first pass, and chunked readers.
 
-Every reader yields pandas DataFrames of text (one column per source column, '' for an empty
-field) plus a `_line` column with the line (or row) each record came from, so that every error
-can name its place. Parsing is done by pyarrow's CSV reader (strict about the number of fields,
-RFC 4180 quoting) and the json module for JSON Lines.
+Every reader yields `(table, lines)` pairs: a pyarrow Table with one column per source column and
+a numpy array with the line (or, for Parquet, the row) each record starts on, so that every error
+can name its place. CSV and TSV are parsed by pyarrow's CSV reader (RFC 4180 quoting, strict about
+the number of fields), JSON Lines by the json module, Parquet by pyarrow. Text columns stay Arrow
+strings all the way to the checks: no Python object per value on the hot path.
 """
 from __future__ import annotations
 
@@ -14,15 +15,18 @@ import hashlib
 import io
 import json
 import zlib
+from array import array
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterator
+from typing import Callable, Iterator
 
-import pandas as pd
+import numpy as np
+import pyarrow as pa
 
 from ..errors import InputError
 
-CHUNK_ROWS = 100_000
+CHUNK_ROWS = 100_000  # rows per chunk handed to the checks and the writer; memory stays flat
+BLOCK_BYTES = 1 << 20  # bytes of text the CSV parser reads at a time (it reads a few blocks ahead)
 FORMATS = {".csv": "csv", ".tsv": "tsv", ".tab": "tsv", ".jsonl": "jsonl", ".ndjson": "jsonl",
            ".parquet": "parquet", ".pq": "parquet"}
 
@@ -37,6 +41,10 @@ class SourceInfo:
     size: int
     lines: int  # physical lines of decoded text (0 for parquet)
     quote_count: int
+
+    @property
+    def delimited(self) -> bool:
+        return self.fmt in ("csv", "tsv")
 
 
 def detect_format(path: Path, shown: str) -> tuple[str, bool]:
@@ -60,24 +68,30 @@ def _line_of_offset(data: bytes, offset: int) -> int:
 
 
 def first_pass(path: Path, shown: str) -> SourceInfo:
-    """Hash the file's bytes and check the text decodes: UTF-8, no NUL byte, complete gzip."""
+    """Hash the file's bytes; count lines and quotes; refuse NUL bytes and incomplete gzip data.
+
+    Whether the text is UTF-8 is checked by the readers as they go (pyarrow checks every string);
+    `locate_bad_text` finds the line when one is not.
+    """
     fmt, gz = detect_format(path, shown)
+    if path.is_dir():
+        raise InputError(f"{shown}: is a folder, not a file")
     try:
         size = path.stat().st_size
     except FileNotFoundError:
         raise InputError(f"{shown}: no such file") from None
-    if path.is_dir():
-        raise InputError(f"{shown}: is a folder, not a file")
     sha = hashlib.sha256()
-    lines = 0
-    quotes = 0
-    decoder = codecs.getincrementaldecoder("utf-8")("strict")
-    inflate = zlib.decompressobj(wbits=47) if gz else None  # 47: gzip or zlib header, auto
-    consumed = 0  # decoded-text bytes seen so far, for error offsets
+    lines = quotes = 0
+    inflate = zlib.decompressobj(wbits=31) if gz else None  # 31: a gzip header and trailer
+    consumed = 0  # decoded-text bytes seen so far
     last_byte = b""
-    with open(path, "rb") as fh:
+    try:
+        fh = open(path, "rb")
+    except OSError as exc:
+        raise InputError(f"{shown}: cannot be opened ({exc.strerror})") from None
+    with fh:
         while True:
-            raw = fh.read(1 << 20)
+            raw = fh.read(1 << 22)
             if not raw:
                 break
             sha.update(raw)
@@ -89,38 +103,59 @@ def first_pass(path: Path, shown: str) -> SourceInfo:
                     data = inflate.decompress(raw)
                     while inflate.eof and inflate.unused_data:  # concatenated gzip members
                         rest = inflate.unused_data
-                        inflate = zlib.decompressobj(wbits=47)
+                        inflate = zlib.decompressobj(wbits=31)
                         data += inflate.decompress(rest)
                 except zlib.error as exc:
                     raise InputError(f"{shown}: not readable as gzip ({exc})") from None
-            _check_text(data, decoder, shown, lines)
+            if not data:
+                continue
+            nul = data.find(b"\x00")
+            if nul >= 0:
+                line = lines + _line_of_offset(data, nul)
+                raise InputError(f"{shown} line {line}: contains a NUL byte; this is not a text file or it is damaged")
             lines += data.count(b"\n")
-            quotes += data.count(b'"')
+            if fmt == "csv":
+                quotes += data.count(b'"')
             consumed += len(data)
-            if data:
-                last_byte = data[-1:]
+            last_byte = data[-1:]
     if fmt != "parquet":
         if inflate is not None and not inflate.eof:
             raise InputError(f"{shown}: the compressed data is cut short (truncated gzip file)")
-        try:
-            decoder.decode(b"", final=True)
-        except UnicodeDecodeError:
-            raise InputError(f"{shown} line {lines + 1}: the file ends inside a UTF-8 character") from None
         if consumed and last_byte != b"\n":
             lines += 1
     return SourceInfo(path, shown, fmt, gz, sha.hexdigest(), size, lines, quotes)
 
 
+def locate_bad_text(info: SourceInfo) -> InputError | None:
+    """The first place where the text is not UTF-8, as an error naming the line; None if it all is."""
+    decoder = codecs.getincrementaldecoder("utf-8")("strict")
+    opener = gzip.open if info.gzipped else open
+    lines = 0
+    with opener(info.path, "rb") as fh:
+        while True:
+            data = fh.read(1 << 20)
+            if not data:
+                break
+            try:
+                _check_text(data, decoder, info.name, lines)
+            except InputError as exc:
+                return exc
+            lines += data.count(b"\n")
+    try:
+        decoder.decode(b"", final=True)
+    except UnicodeDecodeError:
+        return InputError(f"{info.name} line {lines + 1}: the file ends inside a UTF-8 character; re-save the file as UTF-8")
+    return None
+
+
 def _check_text(data: bytes, decoder, shown: str, lines_before: int) -> None:
-    nul = data.find(b"\x00")
-    if nul >= 0:
-        line = lines_before + _line_of_offset(data, nul)
-        raise InputError(f"{shown} line {line}: contains a NUL byte; this is not a text file or it is damaged")
+    pending = len(decoder.getstate()[0])  # bytes of a character begun in the previous block
     try:
         decoder.decode(data)
     except UnicodeDecodeError as exc:
-        line = lines_before + _line_of_offset(data, exc.start)
-        bad = data[exc.start:exc.start + 4]
+        at = max(exc.start - pending, 0)
+        line = lines_before + _line_of_offset(data, at)
+        bad = data[at:at + 4]
         raise InputError(
             f"{shown} line {line}: bytes {bad!r} are not UTF-8; re-save the file as UTF-8"
         ) from None
@@ -134,14 +169,27 @@ def open_text(info: SourceInfo) -> io.TextIOBase:
 
 # --- CSV and TSV ------------------------------------------------------------------------------
 
-def read_header(info: SourceInfo) -> list[str]:
-    delim = "\t" if info.fmt == "tsv" else ","
-    with open_text(info) as fh:
-        reader = csv.reader(fh, delimiter=delim, quoting=csv.QUOTE_NONE if info.fmt == "tsv" else csv.QUOTE_MINIMAL)
-        for row in reader:
-            if any(c.strip() for c in row):
-                return [c.strip() for c in row]
+def _csv_reader(info: SourceInfo, fh):
+    if info.fmt == "tsv":
+        return csv.reader(fh, delimiter="\t", quoting=csv.QUOTE_NONE)
+    return csv.reader(fh, delimiter=",", quotechar='"', doublequote=True)
+
+
+def read_header(info: SourceInfo) -> tuple[list[str], int]:
+    """The header's column names and the physical line it is on (blank lines before it are allowed)."""
+    try:
+        with open_text(info) as fh:
+            reader = _csv_reader(info, fh)
+            for row in reader:
+                if any(c.strip() for c in row):
+                    return [c.strip() for c in row], reader.line_num
+    except UnicodeDecodeError:
+        raise _bad_text(info) from None
     raise InputError(f"{info.name}: the file is empty (no header and no data rows)")
+
+
+def _bad_text(info: SourceInfo) -> InputError:
+    return locate_bad_text(info) or InputError(f"{info.name}: the text is not UTF-8; re-save the file as UTF-8")
 
 
 def find_open_quote(info: SourceInfo) -> int:
@@ -156,53 +204,86 @@ def find_open_quote(info: SourceInfo) -> int:
     return opened_at
 
 
-class CsvLineMap:
-    """Maps record ordinals to physical lines, for messages only (it re-reads the file)."""
+class RecordLines:
+    """Data record number (0 = first record after the header) -> physical line it starts on.
 
-    def __init__(self, info: SourceInfo, width: int):
-        self.info, self.width, self._map = info, width, None
+    Needed only where records and lines part ways: line breaks inside quoted fields. (A blank line
+    is a record of empty fields to the parser too, so it keeps the count.) Built on first use by
+    reading the text once more with the csv module.
+    """
 
-    def line(self, approx: int) -> int:
-        if self.info.lines == 0:
-            return approx
-        if self._map is None:
-            self._map = []
-            delim = "\t" if self.info.fmt == "tsv" else ","
-            with open_text(self.info) as fh:
-                reader = csv.reader(fh, delimiter=delim)
-                start = 1
-                header_seen = False
-                for row in reader:
-                    if row and any(row):
-                        if not header_seen:
-                            header_seen = True
-                        elif len(row) == self.width:
-                            self._map.append(start)
-                    start = reader.line_num + 1
-        ordinal = approx - 2
-        if 0 <= ordinal < len(self._map):
-            return self._map[ordinal]
-        return approx
+    def __init__(self, info: SourceInfo):
+        self.info = info
+        self._starts: np.ndarray | None = None
+
+    def _build(self) -> np.ndarray:
+        starts = array("q")
+        with open_text(self.info) as fh:
+            reader = _csv_reader(self.info, fh)
+            header_seen = False
+            prev = 0
+            for row in reader:
+                if header_seen:
+                    starts.append(prev + 1)
+                elif any(c.strip() for c in row):
+                    header_seen = True
+                prev = reader.line_num
+        return np.frombuffer(starts, dtype=np.int64) if len(starts) else np.zeros(0, dtype=np.int64)
+
+    def of(self, records: np.ndarray) -> np.ndarray:
+        if self._starts is None:
+            self._starts = self._build()
+        starts = self._starts
+        records = np.asarray(records, dtype=np.int64)
+        inside = (records >= 0) & (records < len(starts))
+        out = records + 2  # fallback: one record per line after a one-line header
+        out[inside] = starts[records[inside]]
+        return out
 
 
-def read_delimited(info: SourceInfo, header: list[str], on_bad_row) -> Iterator[pd.DataFrame]:
-    import pyarrow as pa
+def read_delimited(info: SourceInfo, header: list[str], header_line: int,
+                   on_bad_row: Callable[[int, str, int, int], InputError | None]) -> Iterator[tuple[pa.Table, np.ndarray]]:
+    """Chunks of text columns named as in the header, and each record's physical line.
+
+    `on_bad_row(line, text, expected, actual)` is told of every row with the wrong number of
+    fields; it returns an error to stop the read, or None to skip the row.
+    """
     import pyarrow.csv as pacsv
 
     if info.fmt == "csv" and info.quote_count % 2:
         line = find_open_quote(info)
         raise InputError(f"{info.name} line {line}: a quote opens here and is never closed")
-    names = [f"c{i}" for i in range(len(header))]  # positional names; duplicates checked by caller
+    names = [f"c{i}" for i in range(len(header))]  # positional; duplicate names are refused earlier
+    exact = info.fmt == "csv" and info.quote_count > 0  # a quoted field may hold line breaks
+    records = RecordLines(info)
+    ragged: list[int] = []  # data record numbers of rows skipped for their field count
+    stop: list[InputError] = []
 
-    def handler(row):
-        on_bad_row(row.text, row.expected_columns, row.actual_columns)
+    def to_lines(recs: np.ndarray) -> np.ndarray:
+        return records.of(recs) if exact else recs + header_line + 1
+
+    def handler(row) -> str:
+        # pyarrow ignores what a handler raises, so errors are kept and raised after the read
+        try:
+            rec = (row.number - header_line - 1) if row.number is not None else -1
+            ragged.append(rec)
+            line = int(to_lines(np.array([rec]))[0]) if rec >= 0 else 0
+            err = on_bad_row(line, row.text, row.expected_columns, row.actual_columns)
+        except Exception as exc:  # noqa: BLE001 - handed on below
+            err = exc
+        if err is not None:
+            stop.append(err)
+            return "error"
         return "skip"
 
-    read_opts = pacsv.ReadOptions(column_names=names, skip_rows=1, block_size=8 << 20, use_threads=True)
+    read_opts = pacsv.ReadOptions(column_names=names, skip_rows=header_line, block_size=BLOCK_BYTES,
+                                  use_threads=False)  # one thread: in order, and row numbers for ragged rows
     parse_opts = pacsv.ParseOptions(
         delimiter="\t" if info.fmt == "tsv" else ",",
         quote_char=False if info.fmt == "tsv" else '"',
+        double_quote=True,
         newlines_in_values=info.fmt == "csv",
+        ignore_empty_lines=False,  # a blank line stays a (blank) record, so records keep counting lines
         invalid_row_handler=handler,
     )
     conv_opts = pacsv.ConvertOptions(
@@ -210,36 +291,54 @@ def read_delimited(info: SourceInfo, header: list[str], on_bad_row) -> Iterator[
         quoted_strings_can_be_null=False,
     )
     source = pa.input_stream(str(info.path), compression="gzip" if info.gzipped else None)
-    # skip_rows=1 skips the first physical row; a file that starts with blank lines is rare enough
-    # that the header reader above is the one that tolerates them.
+
+    def failed(exc: Exception) -> Exception:
+        if stop and not isinstance(stop[0], UnicodeDecodeError):
+            return stop[0]
+        if stop or "UTF8" in str(exc) or "UTF-8" in str(exc):
+            found = locate_bad_text(info)
+            if found is not None:
+                return found
+        return InputError(f"{info.name}: cannot be read as {info.fmt.upper()}: {_arrow_msg(exc)}")
+
     try:
         reader = pacsv.open_csv(source, read_options=read_opts, parse_options=parse_opts, convert_options=conv_opts)
     except pa.ArrowInvalid as exc:
         if "Empty CSV file" in str(exc):
             return
-        raise InputError(f"{info.name}: cannot be read as {info.fmt.upper()}: {_arrow_msg(exc)}") from None
-    ordinal = 0
-    buffer: list[pd.DataFrame] = []
+        raise failed(exc) from None
+    good = 0  # good records so far
+    buffer: list[pa.RecordBatch] = []
     buffered = 0
+
+    def flush() -> tuple[pa.Table, np.ndarray]:
+        nonlocal good, buffer, buffered
+        table = pa.Table.from_batches(buffer).rename_columns(header)
+        ordinals = np.arange(good, good + buffered, dtype=np.int64)
+        if ragged:
+            # the k-th good record is record k + (ragged records before it)
+            r = np.sort(np.asarray([x for x in ragged if x >= 0], dtype=np.int64))
+            q = r - np.arange(len(r))
+            ordinals = ordinals + np.searchsorted(q, ordinals, side="right")
+        good += buffered
+        buffer, buffered = [], 0
+        return table, to_lines(ordinals)
+
     while True:
         try:
             batch = reader.read_next_batch()
         except StopIteration:
             break
         except pa.ArrowInvalid as exc:
-            raise InputError(f"{info.name}: cannot be read as {info.fmt.upper()}: {_arrow_msg(exc)}") from None
-        df = batch.to_pandas()
-        df.columns = header
-        n = len(df)
-        df["_line"] = range(ordinal + 2, ordinal + 2 + n)
-        ordinal += n
-        buffer.append(df)
-        buffered += n
+            raise failed(exc) from None
+        if batch.num_rows == 0:
+            continue
+        buffer.append(batch)
+        buffered += batch.num_rows
         if buffered >= CHUNK_ROWS:
-            yield pd.concat(buffer, ignore_index=True) if len(buffer) > 1 else buffer[0]
-            buffer, buffered = [], 0
+            yield flush()
     if buffer:
-        yield pd.concat(buffer, ignore_index=True) if len(buffer) > 1 else buffer[0]
+        yield flush()
 
 
 def _arrow_msg(exc: Exception) -> str:
@@ -248,7 +347,14 @@ def _arrow_msg(exc: Exception) -> str:
 
 # --- JSON Lines -------------------------------------------------------------------------------
 
-def read_jsonl(info: SourceInfo) -> Iterator[pd.DataFrame]:
+def read_jsonl(info: SourceInfo) -> Iterator[tuple[pa.Table, np.ndarray]]:
+    try:
+        yield from _read_jsonl(info)
+    except UnicodeDecodeError:
+        raise _bad_text(info) from None
+
+
+def _read_jsonl(info: SourceInfo) -> Iterator[tuple[pa.Table, np.ndarray]]:
     rows: list[dict] = []
     lines: list[int] = []
     with open_text(info) as fh:
@@ -263,16 +369,13 @@ def read_jsonl(info: SourceInfo) -> Iterator[pd.DataFrame]:
             if not isinstance(obj, dict):
                 kind = "an array" if isinstance(obj, list) else f"a {type(obj).__name__}"
                 raise InputError(f"{info.name} line {n}: is {kind}; each line must be one JSON object")
-            for key, value in obj.items():
-                if isinstance(value, (dict, list)):
-                    raise InputError(f"{info.name} line {n}, field {key}: nested {type(value).__name__} values are not supported; flatten it")
             rows.append(obj)
             lines.append(n)
             if len(rows) >= CHUNK_ROWS:
-                yield _frame(rows, lines)
+                yield _json_table(info, rows, lines), np.asarray(lines, dtype=np.int64)
                 rows, lines = [], []
     if rows:
-        yield _frame(rows, lines)
+        yield _json_table(info, rows, lines), np.asarray(lines, dtype=np.int64)
 
 
 def _to_text(v) -> str:
@@ -285,33 +388,42 @@ def _to_text(v) -> str:
     return str(v)
 
 
-def _frame(rows: list[dict], lines: list[int]) -> pd.DataFrame:
+def _json_table(info: SourceInfo, rows: list[dict], lines: list[int]) -> pa.Table:
     keys: dict[str, None] = {}
     for r in rows:
         for k in r:
             keys.setdefault(k, None)
-    data = {k: [_to_text(r.get(k)) for r in rows] for k in keys}
-    df = pd.DataFrame(data)
-    df["_line"] = lines
-    return df
+    data = {}
+    for k in keys:
+        values = [r.get(k) for r in rows]
+        for j, v in enumerate(values):
+            if isinstance(v, (dict, list)):
+                raise InputError(
+                    f"{info.name} line {lines[j]}, field {k}: nested {'object' if isinstance(v, dict) else 'list'} "
+                    "values are not supported; flatten it")
+        data[k] = pa.array([v if type(v) is str else _to_text(v) for v in values], type=pa.string())
+    return pa.table(data)
 
 
 # --- Parquet ----------------------------------------------------------------------------------
 
-def read_parquet(info: SourceInfo) -> Iterator[pd.DataFrame]:
-    try:
-        import pyarrow.parquet as pq
-    except ImportError:  # pragma: no cover - pyarrow is a dependency
-        raise InputError(f"{info.name}: reading Parquet needs pyarrow: pip install 'blockyard[parquet]'") from None
+def read_parquet(info: SourceInfo) -> Iterator[tuple[pa.Table, np.ndarray]]:
+    """Parquet columns keep their types (numbers, timestamps); the checks accept them as they are."""
+    import pyarrow.parquet as pq
+
     try:
         pf = pq.ParquetFile(str(info.path))
     except Exception as exc:  # pyarrow raises several kinds for a damaged file
         raise InputError(f"{info.name}: not a readable Parquet file ({_arrow_msg(exc)})") from None
     start = 1
-    for batch in pf.iter_batches(batch_size=CHUNK_ROWS):
-        df = batch.to_pandas()
-        df = df.astype(object).where(df.notna(), "")
-        df = df.map(_to_text) if hasattr(df, "map") else df.applymap(_to_text)
-        df["_line"] = range(start, start + len(df))
-        start += len(df)
-        yield df
+    try:
+        for batch in pf.iter_batches(batch_size=CHUNK_ROWS):
+            table = pa.Table.from_batches([batch])
+            for i, f in enumerate(table.schema):
+                if pa.types.is_dictionary(f.type):
+                    table = table.set_column(i, f.name, table.column(i).cast(f.type.value_type))
+            n = table.num_rows
+            yield table, np.arange(start, start + n, dtype=np.int64)
+            start += n
+    except (OSError, pa.ArrowException) as exc:
+        raise InputError(f"{info.name}: not a readable Parquet file ({_arrow_msg(exc)})") from None

@@ -22,7 +22,7 @@ R = S.runs
 class Dims:
     """A snapshot of the small tables: what names exist, for resolving and for completion."""
 
-    solvers: dict[int, tuple[str, str, str]]  # id -> (name, version, build)
+    solvers: dict[int, tuple[str, str, str, str]]  # id -> (name, version, build, parameter set)
     campaigns: dict[int, str]
     families: dict[int, str]
     groups: dict[int, tuple[int, str]]  # id -> (family id, name)
@@ -32,7 +32,7 @@ class Dims:
     @staticmethod
     def load(conn) -> "Dims":
         return Dims(
-            solvers={r.id: (r.name, r.version, r.build) for r in conn.execute(select(S.solvers))},
+            solvers={r.id: (r.name, r.version, r.build, r.params) for r in conn.execute(select(S.solvers))},
             campaigns={r.id: r.name for r in conn.execute(select(S.campaigns.c.id, S.campaigns.c.name))},
             families={r.id: r.name for r in conn.execute(select(S.families))},
             groups={r.id: (r.family_id, r.name) for r in conn.execute(select(S.groups))},
@@ -41,12 +41,17 @@ class Dims:
         )
 
     def treatment(self, solver_id: int) -> str:
-        name, version, build = self.solvers[solver_id]
+        """NAME@VERSION, with +BUILD and [PARAMETERS] where they tell treatments of that name apart."""
+        name, version, build, params = self.solvers[solver_id]
         label = f"{name}@{version}" if version else name
         if build:
             same = [s for s in self.solvers.values() if s[0] == name and s[1] == version]
-            if len(same) > 1:
+            if len({s[2] for s in same}) > 1:
                 label += f"+{build}"
+        if params:
+            same = [s for s in self.solvers.values() if s[0] == name and s[1] == version and s[2] == build]
+            if len({s[3] for s in same}) > 1:
+                label += f"[{params}]"
         return label
 
     def block(self, group_id: int) -> str:
@@ -107,30 +112,32 @@ def _version_ok(op: str, value: str, version: str) -> bool:
     return {"<": c < 0, "<=": c <= 0, ">": c > 0, ">=": c >= 0}[op]
 
 
-def _term_condition(term: Term, n: int, dims: Dims, conn):
+def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
     neg = term.op == "!="
     key = term.key
     if key == "treatment":
         wanted = set()
         for v in term.values:
             name, _, version = v.partition("@")
-            ids = [i for i, s in dims.solvers.items() if s[0] == name and s[1] == version]
+            # NAME@VERSION takes in every build and parameter set; a label as peek shows it
+            # (NAME@VERSION+BUILD, NAME@VERSION[PARAMETERS]) names just that one
+            ids = [i for i, s in dims.solvers.items() if (s[0] == name and s[1] == version) or dims.treatment(i) == v]
             if not ids:
                 raise SliceError(f"slice term {n} '{term.text()}': no treatment '{v}' in this warehouse{_suggest(v, dims.values('treatment'))}")
             wanted.update(ids)
-        return R.c.solver_id.in_(sorted(wanted))
+        return T.c.solver_id.in_(sorted(wanted))
     if key == "solver":
-        return _in(R.c.solver_id, _ids({i: s[0] for i, s in dims.solvers.items()}, term, n, "solver"), neg)
+        return _in(T.c.solver_id, _ids({i: s[0] for i, s in dims.solvers.items()}, term, n, "solver"), neg)
     if key == "version":
         if term.op in ("<", "<=", ">", ">="):
             ids = [i for i, s in dims.solvers.items() if s[1] and _version_ok(term.op, term.values[0], s[1])]
-            return _in(R.c.solver_id, ids, False)
-        return _in(R.c.solver_id, _ids({i: s[1] for i, s in dims.solvers.items()}, term, n, "version"), neg)
+            return _in(T.c.solver_id, ids, False)
+        return _in(T.c.solver_id, _ids({i: s[1] for i, s in dims.solvers.items()}, term, n, "version"), neg)
     if key == "campaign":
-        return _in(R.c.campaign_id, _ids(dims.campaigns, term, n, "campaign"), neg)
+        return _in(T.c.campaign_id, _ids(dims.campaigns, term, n, "campaign"), neg)
     if key == "host":
-        cond = _in(R.c.host_id, _ids(dims.hosts, term, n, "host"), neg)
-        return or_(cond, R.c.host_id.is_(None)) if neg else cond
+        cond = _in(T.c.host_id, _ids(dims.hosts, term, n, "host"), neg)
+        return or_(cond, T.c.host_id.is_(None)) if neg else cond
     if key in ("family", "group"):
         if key == "family":
             fam_ids = set(_ids(dims.families, term, n, "family"))
@@ -145,7 +152,7 @@ def _term_condition(term: Term, n: int, dims: Dims, conn):
             positive = "~" if term.op == "~" else "="
             gids = [g for g in dims.groups if _match(positive, term.values, short[g]) or _match(positive, term.values, full[g])]
         sub = select(S.instances.c.id).where(S.instances.c.group_id.in_(gids or [-1]))
-        return not_(R.c.instance_id.in_(sub)) if neg else R.c.instance_id.in_(sub)
+        return not_(T.c.instance_id.in_(sub)) if neg else T.c.instance_id.in_(sub)
     if key == "instance":
         if term.op == "~":
             names = [r[0] for r in conn.execute(select(S.instances.c.name).distinct())]
@@ -153,28 +160,33 @@ def _term_condition(term: Term, n: int, dims: Dims, conn):
             sub = select(S.instances.c.id).where(S.instances.c.name.in_(hits or ["\x00"]))
         else:
             sub = select(S.instances.c.id).where(S.instances.c.name.in_(list(term.values)))
-        return not_(R.c.instance_id.in_(sub)) if neg else R.c.instance_id.in_(sub)
+        return not_(T.c.instance_id.in_(sub)) if neg else T.c.instance_id.in_(sub)
     if key == "status":
         positive = "~" if term.op == "~" else "="
         codes = [S.STATUS_CODES[s] for s in STATUSES if _match(positive, term.values, s)]
-        return _in(R.c.status, codes, neg)
+        return _in(T.c.status, codes, neg)
     if key == "seed":
         if term.op == "~":
             raise SliceError(f"slice term {n} '{term.text()}': seeds are numbers; use = != < <= > >=")
         vals = [int(v) for v in term.values]
         if term.op in ("=", "!="):
-            return _in(R.c.seed, vals, neg)
-        col = R.c.seed
+            return _in(T.c.seed, vals, neg)
+        col = T.c.seed
         return {"<": col < vals[0], "<=": col <= vals[0], ">": col > vals[0], ">=": col >= vals[0]}[term.op]
     if key == "since":
-        return R.c.finished_at >= parse_when(term.values[0], "since")
+        return T.c.finished_at >= parse_when(term.values[0], "since")
     if key == "until":
-        return R.c.finished_at < parse_when(term.values[0], "until")
+        return T.c.finished_at < parse_when(term.values[0], "until")
     raise SliceError(f"slice term {n}: key {key} is not handled")  # pragma: no cover
 
 
-def condition(sl: Slice, dims: Dims, conn, retracted: str | None = None):
-    """The WHERE condition on runs for a slice. Retracted runs are out unless the slice asks."""
+def condition(sl: Slice, dims: Dims, conn, retracted: str | None = None, table=None):
+    """The WHERE condition on runs for a slice. Retracted runs are out unless the slice asks.
+
+    With `table` (the cell summaries, which hold live runs only) the same terms apply to its
+    columns; see `cells_can_answer`.
+    """
+    T = R if table is None else table
     arms = []
     n = 0
     for arm in sl.arms:
@@ -185,11 +197,19 @@ def condition(sl: Slice, dims: Dims, conn, retracted: str | None = None):
             if term.key == "retracted":
                 want = want or term.values[0]
                 continue
-            parts.append(_term_condition(term, n, dims, conn))
+            parts.append(_term_condition(term, n, dims, conn, T))
         want = want or "no"
-        if want == "no":
+        if T is R and want == "no":  # (cell summaries hold live runs only)
             parts.append(R.c.retraction_id.is_(None))
-        elif want == "yes":
+        elif T is R and want == "yes":
             parts.append(R.c.retraction_id.is_not(None))
         arms.append(and_(true(), *parts))
     return arms[0] if len(arms) == 1 else or_(*arms)
+
+
+CELL_KEYS = {"treatment", "solver", "version", "campaign", "family", "group", "instance", "host"}
+
+
+def cells_can_answer(sl: Slice) -> bool:
+    """True when every term of the slice is one the cell summaries carry (and no retracted runs)."""
+    return all(t.key in CELL_KEYS for arm in sl.arms for t in arm)

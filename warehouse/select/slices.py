@@ -80,8 +80,14 @@ class Slice:
 
 
 def _quote(v: str) -> str:
-    if v == "" or re.search(r"[\s,|'\"]", v):
-        return "'" + v + "'" if '"' in v else '"' + v + '"'
+    # quote what would otherwise split the term, or read as part of the operator
+    if v == "" or re.search(r"[\s,|'\"]", v) or v[0] in "=<>!~":
+        if '"' not in v:
+            return '"' + v + '"'
+        if "'" not in v:
+            return "'" + v + "'"
+        # both kinds of quote: runs of double quotes go inside single quotes, the rest inside double
+        return "".join("'" + part + "'" if part[0] == '"' else '"' + part + '"' for part in re.findall(r'"+|[^"]+', v))
     return v
 
 
@@ -115,6 +121,7 @@ def _split(text: str) -> list[list[str]]:
 
 def _values(raw: str, where: str) -> tuple[str, ...]:
     vals, buf, quote, quoted = [], [], None, False
+    empty_unquoted = False  # an alternative with no characters and no quotes (a=,b)
     for ch in raw:
         if quote:
             if ch == quote:
@@ -125,12 +132,14 @@ def _values(raw: str, where: str) -> tuple[str, ...]:
         if ch in "'\"":
             quote, quoted = ch, True
         elif ch == ",":
+            empty_unquoted = empty_unquoted or (not buf and not quoted)
             vals.append("".join(buf))
             buf, quoted = [], False
         else:
             buf.append(ch)
+    empty_unquoted = empty_unquoted or (not buf and not quoted)
     vals.append("".join(buf))
-    if any(v == "" for v in vals) and not quoted:
+    if empty_unquoted:
         raise SliceError(f"{where}: a value is empty; write key=value (commas separate alternatives)")
     return tuple(vals)
 
@@ -148,17 +157,32 @@ def parse_when(value: str, key: str, now: float | None = None) -> int:
     m = _RELATIVE.match(value)
     if m:
         n, unit = int(m.group(1)), m.group(2)
-        return int(now - n * {"h": 3600, "d": 86400, "w": 7 * 86400}[unit])
+        epoch = int(now - n * {"h": 3600, "d": 86400, "w": 7 * 86400}[unit])
+        try:  # it must name a real moment, so that it can be stored as one
+            datetime.fromtimestamp(epoch, tz=timezone.utc)
+        except (OverflowError, OSError, ValueError):
+            raise SliceError(f"{key}={value}: that reaches back before any calendar date; use a smaller count") from None
+        return epoch
     try:
         dt = datetime.fromisoformat(value.replace("Z", "+00:00"))
-    except ValueError:
+        if dt.tzinfo is None:
+            dt = dt.replace(tzinfo=timezone.utc)
+        epoch = int(dt.timestamp())
+    except (ValueError, OverflowError):
         raise SliceError(f"{key}={value}: not a date; use an ISO date (2026-10-01), a date and time, or 7d / 4w / 12h") from None
-    if dt.tzinfo is None:
-        dt = dt.replace(tzinfo=timezone.utc)
-    epoch = int(dt.timestamp())
-    if key == "until" and len(value) == 10:  # a whole day: up to its end
+    if key == "until" and _date_only(value):  # a whole day: up to its end
         epoch += 86400
     return epoch
+
+
+def _date_only(value: str) -> bool:
+    from datetime import date
+
+    try:
+        date.fromisoformat(value)
+    except ValueError:
+        return False
+    return True
 
 
 def parse(text: str | None) -> Slice:
@@ -200,27 +224,29 @@ def _term(raw: str, n: int) -> Term:
     if value_text == "":
         raise SliceError(f"{where}: no value after '{op}'")
     vals = _values(value_text, where)
+    if key in EQ_ONLY and op != "=":
+        raise SliceError(f"{where}: {key} takes '=' only")
     if op in ("<", "<=", ">", ">=") and key not in ORDERED:
         raise SliceError(f"{where}: '{op}' does not apply to {key}; use = != or ~")
     if op in ("<", "<=", ">", ">=") and len(vals) > 1:
         raise SliceError(f"{where}: '{op}' takes one value")
-    if key in EQ_ONLY and op != "=":
-        raise SliceError(f"{where}: {key} takes '=' only")
     if key in ("since", "until"):
         if len(vals) > 1:
             raise SliceError(f"{where}: {key} takes one date")
         try:
             parse_when(vals[0], key)
         except SliceError as exc:
-            raise SliceError(f"slice term {n} {exc}") from None
+            raise SliceError(f"{where}: {str(exc).removeprefix(f'{key}={vals[0]}: ')}") from None
     if key == "seed" and op != "~":
         for v in vals:
             if not re.fullmatch(r"-?\d+", v):
                 raise SliceError(f"{where}: seed '{v}' is not a whole number")
+            if not -2**63 <= int(v) < 2**63:
+                raise SliceError(f"{where}: seed '{v}' is out of range (seeds are stored as 64-bit whole numbers)")
     if key == "status" and op != "~":
         for v in vals:
             if v not in STATUSES:
                 raise SliceError(f"{where}: status '{v}' is not one of {', '.join(STATUSES)}{_suggest(v, STATUSES)}")
-    if key == "retracted" and vals[0] not in ("yes", "no", "any"):
-        raise SliceError(f"{where}: retracted takes yes, no or any")
+    if key == "retracted" and (len(vals) > 1 or vals[0] not in ("yes", "no", "any")):
+        raise SliceError(f"{where}: retracted takes one of yes, no or any")
     return Term(key, op, vals)

@@ -19,10 +19,11 @@ from sqlalchemy import (
     Table,
     Text,
     UniqueConstraint,
+    text,
 )
 
 # The alembic revision this module describes; a test checks it equals the migrations' head.
-SCHEMA_REVISION = "0002"
+SCHEMA_REVISION = "0003"
 
 NAME = 255  # longest name accepted for solvers, instances, groups, hosts, metrics
 
@@ -149,6 +150,9 @@ runs = Table(
     Index("ux_runs_key", "campaign_id", "solver_id", "instance_id", "seed", "replicate", unique=True),
     Index("ix_runs_solver_instance", "solver_id", "instance_id"),
     Index("ix_runs_finished", "finished_at"),
+    # withdrawn runs are few: a partial index finds them without costing the loads anything
+    Index("ix_runs_withdrawn", "retraction_id", sqlite_where=text("retraction_id IS NOT NULL"),
+          postgresql_where=text("retraction_id IS NOT NULL")),
 )
 
 # --- the ledger (revision 0002) ---------------------------------------------------------------
@@ -179,4 +183,35 @@ claims = Table(
     Column("text", Text, nullable=False),
     Column("tags", Text, nullable=False, server_default=""),
     Column("created_at", BigInteger, nullable=False),
+)
+
+# --- cell summaries (revision 0003) -----------------------------------------------------------
+# One row per import, solver, instance, host and metric slot, summing that cell's live (not
+# retracted) runs. A slice that names only treatments, campaigns, instances and hosts collapses
+# from these rows instead of the runs: the work grows with the number of cells, not of runs.
+# The loader writes them with the runs; retraction and its undo rebuild the cells they touch.
+
+cell_stats = Table(
+    "cell_stats",
+    metadata,
+    Column("campaign_id", Integer, ForeignKey("campaigns.id"), nullable=False),
+    Column("import_id", Integer, ForeignKey("imports.id"), nullable=False),
+    Column("solver_id", Integer, ForeignKey("solvers.id"), nullable=False),
+    Column("instance_id", Integer, ForeignKey("instances.id"), nullable=False),
+    Column("host_id", Integer, ForeignKey("hosts.id"), nullable=True),
+    Column("slot", SmallInteger, nullable=False),
+    Column("n", BigInteger, nullable=False),
+    Column("n_ok", BigInteger, nullable=False),
+    Column("sum_ok", Float, nullable=True),
+    Column("sq_ok", Float, nullable=True),
+    Column("min_ok", Float, nullable=True),
+    Column("max_ok", Float, nullable=True),
+    Column("n_fail", BigInteger, nullable=False),
+    Column("n_fail_v", BigInteger, nullable=False),
+    Column("sum_fail_v", Float, nullable=True),
+    Column("id_sum", BigInteger, nullable=False),
+    Column("id_max", BigInteger, nullable=False),
+    Index("ix_cells_campaign", "campaign_id", "slot", "solver_id", "instance_id"),
+    Index("ix_cells_solver", "solver_id", "slot", "instance_id"),
+    Index("ix_cells_import", "import_id", "solver_id", "instance_id"),
 )

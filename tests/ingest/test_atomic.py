@@ -1,0 +1,112 @@
+"""One file, one transaction: a failure anywhere leaves no trace; big loads keep every check."""
+from __future__ import annotations
+
+import pytest
+
+from conftest import ON_POSTGRES
+from warehouse.ingest import loader, sources
+
+from .kit import everything, load_json, query, refusal, write
+
+H = "solver,version,family,group,instance,seed,status,finished_at,host,pallets\n"
+
+
+def big_csv(path, n: int, bad_line: int | None = None, dup_of: int | None = None):
+    """n made-up runs (line k+2 holds run k); optionally a bad value on one line, or a repeat of a run."""
+    lines = []
+    for k in range(n):
+        line = k + 2
+        seed = k // 400
+        inst = k % 400
+        pallets = "oops" if line == bad_line else str(20 + k % 7)
+        if dup_of is not None and line == n + 1:  # the last line repeats the run on line dup_of
+            seed, inst = (dup_of - 2) // 400, (dup_of - 2) % 400
+        lines.append(f"stacker,1.6,fam{inst % 4},g{inst % 20},i{inst},{seed},ok,2026-11-09T10:00:00Z,rack-a,{pallets}\n")
+    path.write_text(H + "".join(lines), encoding="utf-8")
+    return path
+
+
+def indexes(location):
+    if ON_POSTGRES:
+        return sorted(r[0] for r in query(location, "SELECT indexname FROM pg_indexes WHERE tablename = 'runs'"))
+    return sorted(r[0] for r in query(location, "SELECT name FROM sqlite_master WHERE type = 'index' AND tbl_name = 'runs'"))
+
+
+def test_bad_row_past_the_first_chunk_leaves_no_trace(cli, location, tmp_path):
+    n, bad = 200_000, 150_000
+    assert sources.CHUNK_ROWS < bad - 1  # the bad line is in a later chunk than the first
+    load_json(cli, write(tmp_path / "seed.csv", H + "other,1,f,g,x,1,ok,,rack-z,1\n"), campaign="base")
+    before, kept = everything(location), indexes(location)
+    path = big_csv(tmp_path / "big.csv", n, bad_line=bad)
+    line = refusal(cli, path, campaign="nov")
+    assert line.startswith(f"blockyard: {path} line {bad}, field pallets: 'oops' is not a number"), line
+    assert everything(location) == before  # runs, imports, solvers, instances, groups, hosts, campaigns
+    assert indexes(location) == kept
+    assert query(location, "SELECT count(*) FROM campaigns WHERE name = 'nov'") == [(0,)]
+
+
+def test_large_load_with_a_repeated_run_names_both_lines(cli, location, tmp_path):
+    # large enough for the SQLite fast path (indexes rebuilt at the end); the repeat is caught there
+    # and the load starts over to name the lines
+    n = loader.BULK_MIN_ROWS + 2_000
+    path = big_csv(tmp_path / "big.csv", n, dup_of=7)
+    before, kept = everything(location), indexes(location)
+    line = refusal(cli, path)
+    assert f"{path}: lines 7 and {n + 1} hold the same run (stacker@1.6, instance i5, seed 0, replicate 0)" in line
+    assert everything(location) == before
+    assert indexes(location) == kept
+
+
+def test_large_load_stores_everything_and_keeps_the_indexes(cli, location, tmp_path):
+    n = loader.BULK_MIN_ROWS + 2_000
+    kept = indexes(location)
+    rep = load_json(cli, big_csv(tmp_path / "big.csv", n))
+    assert rep["rows_loaded"] == n
+    assert indexes(location) == kept
+    assert query(location, "SELECT count(*), count(DISTINCT instance_id), min(source_line), max(source_line) FROM runs") == \
+        [(n, 400, 2, n + 1)]
+    if not ON_POSTGRES:
+        assert query(location, "PRAGMA foreign_key_check") == []
+        assert query(location, "PRAGMA integrity_check") == [("ok",)]
+
+
+def test_large_load_over_stored_runs_skips_them(cli, location, tmp_path):
+    n = loader.BULK_MIN_ROWS + 2_000
+    first = big_csv(tmp_path / "a.csv", 3_000)
+    load_json(cli, first)
+    rep = load_json(cli, big_csv(tmp_path / "b.csv", n))
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (n - 3_000, 3_000)
+    assert everything(location)["runs"] == n
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="SQLite's own storage classes")
+def test_sqlite_stores_integers_as_integers_and_missing_values_as_null(cli, location, tmp_path):
+    # SQLite datatypes (section 2, storage classes): whole numbers are INTEGER, metrics REAL, gaps NULL
+    path = write(tmp_path / "t.csv", H + "s,1,f,g,a,1,ok,2026-11-09T10:00:00Z,rack-a,3.5\ns,1,f,g,a,2,timeout,,,\n")
+    load_json(cli, path)
+    got = query(location, "SELECT typeof(id), typeof(seed), typeof(status), typeof(finished_at), typeof(host_id), "
+                          "typeof(source_line), typeof(v1) FROM runs ORDER BY seed")
+    assert got == [("integer", "integer", "integer", "integer", "integer", "integer", "real"),
+                   ("integer", "integer", "integer", "null", "null", "integer", "null")]
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="a SQLite connection setting")
+def test_foreign_keys_are_back_on_after_a_load(wh, tmp_path):
+    path = write(tmp_path / "t.csv", H + "s,1,f,g,a,1,ok,,,3\n")
+    loader.load_file(wh, path, "c")
+    with pytest.raises(Exception):
+        loader.load_file(wh, write(tmp_path / "bad.csv", H + "s,1,f,g,a,1,ok,,,x\n"), "c")
+    with wh.engine.connect() as c:
+        assert c.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
+
+
+def test_huge_seeds_are_kept_exactly(cli, location, tmp_path):
+    # 2**63 - 1 is the largest seed a BIGINT holds (ISO/IEC 9075 exact numeric, 64-bit)
+    path = write(tmp_path / "t.csv", H + "s,1,f,g,a,9223372036854775807,ok,,,3\ns,1,f,g,a,-9007199254740993,ok,,,3\n")
+    load_json(cli, path)
+    assert sorted(r[0] for r in query(location, "SELECT seed FROM runs")) == [-9007199254740993, 9223372036854775807]
+
+
+def test_seed_past_64_bits_is_refused(cli, location, tmp_path):
+    path = write(tmp_path / "t.csv", H + "s,1,f,g,a,9223372036854775808,ok,,,3\n")
+    assert "line 2, field seed: '9223372036854775808' is not a whole number" in refusal(cli, path)

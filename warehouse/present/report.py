@@ -1,0 +1,577 @@
+"""A stored analysis as a self-contained report: HTML (figures inline) or Markdown (figures beside it).
+
+The report is built once as a short list of plain blocks (headings, paragraphs, key-value lists,
+tables, figures) and then written out by one of two small renderers, so both formats always carry
+the same content: the claims, the state of the analysis, what was analysed, the result tables,
+the figures, the cautions, the coverage and the provenance.
+
+Every value taken from the warehouse is data: the HTML renderer escapes all of it with
+html.escape, the Markdown renderer escapes Markdown punctuation and HTML-significant characters.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import time
+from dataclasses import dataclass, field
+from urllib.parse import quote
+
+import pandas as pd
+
+from ..errors import BlockyardError
+from .text import num, pval, signed
+
+STATE_MEANING = {
+    "fresh": "the stored record is intact and none of the runs it used has been retracted since it was made. "
+             "Runs loaded later are not part of it.",
+    "stale": "{n} runs this analysis stood on have been retracted since it was made, so the numbers below may no "
+             "longer hold. They are shown as they were kept; blockyard recheck {id} re-runs the analysis on today's data.",
+    "tampered": "the stored record no longer matches the digest written when it was kept: it has been changed "
+                "outside Blockyard. Do not rely on the numbers below.",
+}
+
+
+_METHODS = {"dunnett": "Dunnett", "paired-t": "paired t", "wilcoxon": "Wilcoxon signed-rank"}
+
+
+# --- the document model ------------------------------------------------------------------------
+
+@dataclass
+class Heading:
+    text: str
+    level: int = 2
+
+
+@dataclass
+class Para:
+    text: str
+    kind: str = ""  # "" | "note"
+
+
+@dataclass
+class KV:
+    pairs: list[tuple[str, str]]
+
+
+@dataclass
+class Table:
+    headers: list[str]
+    rows: list[list[str]]
+    numeric: list[bool] = field(default_factory=list)  # right-align these columns
+
+
+@dataclass
+class Items:
+    items: list  # str, or (text, [tags])
+
+
+@dataclass
+class Fig:
+    key: str
+    title: str
+    caption: str
+
+
+@dataclass
+class State:
+    state: str
+    meaning: str
+
+
+@dataclass
+class FigureItem:
+    key: str
+    title: str
+    caption: str
+    png: bytes
+
+
+@dataclass
+class ReportData:
+    stored: object  # ledger.Stored
+    imports: list[dict]  # file_name, campaign, sha256, loaded_at
+    exported_at: float
+    figures: list[FigureItem] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)  # figures not drawn, provenance not found, ...
+
+    @property
+    def title(self) -> str:
+        return report_title(self.stored)
+
+
+def _utc(stamp) -> str:
+    try:
+        return time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime(float(stamp)))
+    except (TypeError, ValueError, OverflowError):
+        return "-"
+
+
+def better_words(sense: str | None) -> str:
+    return "higher is better" if sense == "max" else "lower is better"
+
+
+def report_title(st) -> str:
+    if st.claims:
+        return str(st.claims[0]["text"])
+    r = st.result or {}
+    metric = st.metric or r.get("metric") or "the metric"
+    if st.kind == "versus":
+        return f"{metric}: every treatment against {r.get('baseline', 'the baseline')}"
+    if st.kind == "blocktest":
+        return f"{metric}: blocked comparison of {r.get('treatments', 'the')} treatments"
+    if st.kind == "plan":
+        return "sample-size plan"
+    return f"{st.kind} of {metric}"
+
+
+# --- figures -----------------------------------------------------------------------------------
+
+def draw_figures(st) -> tuple[list[FigureItem], list[str]]:
+    """The figures a stored analysis supports, drawn from its stored observations only."""
+    from . import figures as F
+
+    r = st.result or {}
+    obs = pd.DataFrame(st.observations or [])
+    metric = st.metric or r.get("metric") or "value"
+    sense = r.get("sense") or "min"
+    order = r.get("treatment_names") or None
+    made: list[FigureItem] = []
+    notes: list[str] = []
+    tr = r.get("transform") if st.kind == "blocktest" else None
+    scale = "" if not tr or (tr.get("name") or "none") == "none" else f" on the {tr['name']} scale the analysis used"
+
+    plan = []
+    if st.kind == "versus" and r.get("comparisons"):
+        plan.append(("differences", "differences from the baseline",
+                     f"Each treatment minus {r.get('baseline')} in {metric}, with its "
+                     f"{_pct(r.get('confidence'))} % interval ({_METHODS.get(r.get('method'), r.get('method'))}); "
+                     "intervals that do not cross zero mark a clear difference.",
+                     lambda: F.baseline_differences(r["comparisons"], r.get("baseline", "baseline"), metric, sense,
+                                                    r.get("confidence") or 0.95)))
+    if not obs.empty:
+        plan.append(("profile", "block profile",
+                     f"{metric} per block and treatment, blocks ordered by their mean: lines that keep their order "
+                     "across blocks mean a consistent difference; crossing lines mean the ranking depends on the block.",
+                     lambda: F.block_profile(obs, sense, metric, order)))
+        plan.append(("qq", "residual Q-Q plot",
+                     f"Residuals of the additive treatment + block model{scale} against normal quantiles (Blom "
+                     "plotting positions): points near the line support the normal-theory tests.",
+                     lambda: F.residual_qq(F.analysis_scale(obs, tr), metric)))
+        if st.kind == "blocktest":
+            plan.append(("residuals", "residuals against fitted values",
+                         f"Residuals{scale} against fitted values: a funnel means the spread grows with the level "
+                         "(try a log transform); a curve means treatment and block effects do not add up.",
+                         lambda: F.residuals_vs_fitted(F.analysis_scale(obs, tr), metric, order)))
+    for key, title, caption, draw in plan:
+        try:
+            fig = draw()
+        except (BlockyardError, ValueError, KeyError, TypeError) as exc:
+            notes.append(f"the {title} was not drawn: {exc}")
+            continue
+        made.append(FigureItem(key, title, caption, F.png_bytes(fig)))
+    return made, notes
+
+
+# --- the content -------------------------------------------------------------------------------
+
+def _settings_pairs(st) -> list[tuple[str, str]]:
+    r = st.result or {}
+    out = [("kind", st.kind), ("slice", st.slice_text or "(everything)")]
+    if st.metric:
+        out.append(("metric", f"{st.metric} ({better_words(r.get('sense'))})"))
+    if st.kind == "versus":
+        out.append(("baseline", str(r.get("baseline", "-"))))
+    if st.kind == "blocktest" and r.get("design"):
+        out.append(("design", f"{r.get('treatments', '-')} treatments x {r.get('blocks', '-')} blocks, {r['design']}"))
+    elif r.get("blocks") is not None:
+        out.append(("blocks", str(r.get("blocks"))))
+    col = (st.settings or {}).get("collapse") or {}
+    if col:
+        out.append(("collapse", f"replicates {col.get('replicates', '-')}, instances {col.get('instances', '-')}, "
+                                f"failed runs {col.get('failures', '-')}, blocks with holes {col.get('holes', '-')}"))
+    opts = (st.settings or {}).get("options") or {}
+    if opts:
+        out.append(("options", ", ".join(f"{k} {_plain(v)}" for k, v in sorted(opts.items()))))
+    tr = r.get("transform")
+    if isinstance(tr, dict) and (tr.get("name") or "none") != "none":
+        extra = f", shifted by {num(tr['shift'])}" if tr.get("shift") else ""
+        lam = f", lambda {num(tr['boxcox_lambda'], 3)}" if tr.get("boxcox_lambda") is not None else ""
+        out.append(("scale", f"analysed on the {tr['name']} scale{extra}{lam}"))
+    c = r.get("collapse") or {}
+    if c.get("runs_in_slice") is not None:
+        out.append(("runs", f"{c.get('runs_used', '-')} of {c.get('runs_in_slice')} runs in the slice used, "
+                            f"on {c.get('instances_used', '-')} instances"))
+    for note in c.get("notes") or []:
+        out.append(("collapse note", str(note)))
+    return out
+
+
+def _plain(v) -> str:
+    if v is None:
+        return "(default)"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, float):
+        return f"{v:g}"
+    return str(v)
+
+
+def _p_eq(p) -> str:
+    s = pval(p)
+    return s if s.startswith("<") or s == "-" else f"= {s}"
+
+
+def _yes(p, level: float) -> str:
+    return "-" if p is None else ("yes" if p >= level else "no")
+
+
+def _blocktest_blocks(r: dict) -> list:
+    from ..analyze.blocked import CHECK_LEVEL
+
+    out: list = [Heading("analysis of variance", 3)]
+    rows = [[str(a.get("source", "")), _plain(a.get("df")), num(a.get("ss")), num(a.get("ms")),
+             num(a.get("f"), 3) if a.get("f") is not None else "", pval(a.get("p")) if a.get("p") is not None else ""]
+            for a in r.get("anova") or []]
+    out.append(Table(["source of variation", "df", "sum of squares", "mean square", "F", "p"], rows,
+                     [False, True, True, True, True, True]))
+    if r.get("relative_efficiency") is not None:
+        out.append(Para(f"r squared {num(r.get('r_squared'), 3)}; blocking was {num(r['relative_efficiency'], 3)} times "
+                        "as efficient as an unblocked design on these data"))
+    bal = r.get("balance")
+    if r.get("design") == "incomplete" and isinstance(bal, dict):
+        kind = "a balanced incomplete block design" if bal.get("bibd") else ("complete" if bal.get("complete") else "unbalanced")
+        out.append(Para(f"treatments adjusted for blocks (blocks entered first); the design is {kind}"))
+    rb = r.get("treatment_random_blocks")
+    if r.get("design") == "generalized" and isinstance(rb, dict):
+        out.append(Para(f"with blocks as a random sample: treatment against the interaction, F = {num(rb.get('f'), 3)} "
+                        f"on {rb.get('df1')} and {rb.get('df2')} df, p {_p_eq(rb.get('p'))}"))
+    means = r.get("treatment_means") or []
+    if means:
+        out.append(Heading("treatment means", 3))
+        ranks = {m["treatment"]: m.get("mean_rank") for m in ((r.get("friedman") or {}).get("mean_ranks") or [])}
+        adjusted = any("adjusted_mean" in m for m in means)
+        scale = tr_name if (tr_name := ((r.get("transform") or {}).get("name") or "none")) != "none" else ""
+        head = ["treatment", "blocks", f"mean ({scale} scale)" if scale else "mean"]
+        if adjusted:
+            head = ["treatment", "blocks", "mean", "adjusted mean"]
+        if ranks:
+            head.append("mean rank")
+        rows = []
+        for m in means:
+            row = [str(m.get("treatment")), _plain(m.get("n"))]
+            row += [num(m.get("raw_mean")), num(m.get("adjusted_mean"))] if adjusted else [num(m.get("mean"))]
+            if ranks:
+                row.append(num(ranks.get(m.get("treatment"))))
+            rows.append(row)
+        out.append(Table(head, rows, [False] + [True] * (len(head) - 1)))
+    d = r.get("diagnostics") or {}
+    if d:
+        out.append(Heading("checks", 3))
+        rows = []
+
+        def p_of(key):
+            return (d.get(key) or {}).get("p")
+
+        sh = p_of("shapiro")
+        rows.append(["residuals normal", f"Shapiro-Wilk p {_p_eq(sh)}", _yes(sh, CHECK_LEVEL)])
+        for chk in r.get("transform_checks") or []:
+            if chk.get("transform") in ("log", "boxcox") and sh is not None and sh < CHECK_LEVEL:
+                rows.append(["", f"after {chk['transform']}: Shapiro-Wilk p {_p_eq(chk.get('shapiro_p'))}",
+                             _yes(chk.get("shapiro_p"), CHECK_LEVEL)])
+                break
+        rows.append(["equal variances", f"Fligner-Killeen p {_p_eq(p_of('fligner'))}", _yes(p_of("fligner"), CHECK_LEVEL)])
+        rows.append(["", f"Brown-Forsythe p {_p_eq(p_of('brown_forsythe'))}", _yes(p_of("brown_forsythe"), CHECK_LEVEL)])
+        rows.append(["additive", f"Tukey non-additivity p {_p_eq(p_of('nonadditivity'))}",
+                     _yes(p_of("nonadditivity"), CHECK_LEVEL)])
+        outl = d.get("outliers") or []
+        rows.append(["no outliers", "; ".join(f"{o.get('treatment')} on {o.get('block')} (standardized residual "
+                                              f"{num(o.get('standardized'), 2)})" for o in outl[:8])
+                     or "none beyond 3 standardized residuals", "no" if outl else "yes"])
+        out.append(Table(["check", "test", "holds"], rows, [False, False, False]))
+        out.append(Para(f"a check holds when its p value is at least {CHECK_LEVEL:g} (common practice)", "note"))
+    f, q = r.get("friedman"), r.get("quade")
+    ranks = []
+    if isinstance(f, dict) and f.get("statistic") is not None:
+        ranks.append(f"Friedman chi2 = {num(f.get('statistic'), 3)} (ties corrected), p {_p_eq(f.get('p'))}; "
+                     f"Iman-Davenport F = {num(f.get('iman_davenport'), 3)}, p {_p_eq(f.get('p_f'))}")
+    if isinstance(q, dict) and q.get("statistic") is not None:
+        ranks.append(f"Quade F = {num(q.get('statistic'), 3)} on {q.get('df1')} and {q.get('df2')} df, p {_p_eq(q.get('p'))}")
+    if ranks:
+        out.append(Heading("rank tests", 3))
+        out.append(Items(ranks))
+    if r.get("advice"):
+        out.append(Heading("advice", 3))
+        out.append(Items([str(a) for a in r["advice"]]))
+    for p in r.get("pairs") or []:
+        name = {"tukey": "Tukey HSD on the block model", "nemenyi": "Nemenyi after Friedman",
+                "conover": f"Conover after Friedman ({p.get('adjust')} adjusted)"}.get(p.get("method"), str(p.get("method")))
+        out.append(Heading(f"all pairs: {name}", 3))
+        conf = p.get("confidence") or 0.95
+        out.append(Table(["pair", "diff", f"{_pct(conf)} % interval", "p adj"],
+                         [[f"{x.get('first')} - {x.get('second')}", signed(x.get("diff")),
+                           f"{_lo(x.get('ci_low'))} .. {_hi(x.get('ci_high'))}", pval(x.get("p_adjusted"))]
+                          for x in p.get("pairs") or []], [False, True, True, True]))
+    return out
+
+
+def _pct(conf) -> str:
+    return f"{float(conf or 0.95) * 100:g}"
+
+
+def _lo(x) -> str:
+    return "-inf" if x is None or x == float("-inf") else signed(x)
+
+
+def _hi(x) -> str:
+    return "+inf" if x is None or x == float("inf") else signed(x)
+
+
+def _versus_blocks(r: dict) -> list:
+    conf = r.get("confidence") or 0.95
+    method = _METHODS.get(r.get("method"), str(r.get("method")))
+    side = "two-sided" if r.get("alternative", "two-sided") == "two-sided" else f"one-sided ({r.get('alternative')})"
+    adj = "" if r.get("method") == "dunnett" else f", {r.get('adjust')} adjusted"
+    ms = (f", residual mean square {num(r['residual_ms'])} on {r.get('residual_df')} df"
+          if r.get("residual_ms") is not None else "")
+    out: list = [Heading("comparisons with the baseline", 3),
+                 Para(f"baseline {r.get('baseline')}; {method}, {side}, {_pct(conf)} % simultaneous intervals{adj}{ms}")]
+    rows = []
+    for c in r.get("comparisons") or []:
+        rel = c.get("relative_pct")
+        rows.append([str(c.get("treatment")), signed(c.get("diff")), f"{_lo(c.get('ci_low'))} .. {_hi(c.get('ci_high'))}",
+                     f"{signed(rel, 2)} %" if rel is not None else "-", pval(c.get("p_adjusted")),
+                     f"{c.get('wins', '-')} / {c.get('ties', '-')} / {c.get('losses', '-')}",
+                     str(c.get("verdict") or "")])
+    out.append(Table(["treatment", "diff", f"{_pct(conf)} % interval", "change", "p adj", "wins / ties / losses",
+                      "verdict"], rows, [False, True, True, True, True, True, False]))
+    out.append(Para("diff = treatment - baseline, in the metric's units; change is relative to the baseline; wins, ties "
+                    "and losses count blocks where the treatment did better than, the same as, or worse than the baseline",
+                    "note"))
+    return out
+
+
+def _plan_blocks(r: dict) -> list:
+    pairs = [(str(k).replace("_", " "), _plain(v) if not isinstance(v, (list, dict)) else ", ".join(_plain(x) for x in v)
+              if isinstance(v, list) else "; ".join(f"{a} {_plain(b)}" for a, b in v.items()))
+             for k, v in sorted(r.items()) if k not in ("warnings", "analysis_id")]
+    return [Heading("plan", 3), KV(pairs)]
+
+
+def _coverage_blocks(st) -> list:
+    r = st.result or {}
+    obs = pd.DataFrame(st.observations or [])
+    out: list = [Heading("coverage")]
+    if obs.empty:
+        out.append(Para("this analysis holds no observation table"))
+        return out
+    treatments = [t for t in (r.get("treatment_names") or []) if t in set(obs["treatment"])]
+    treatments += [t for t in dict.fromkeys(obs["treatment"]) if t not in treatments]
+    blocks = sorted(set(obs["block"]))
+    cell = {(o["block"], o["treatment"]): o for o in obs.to_dict("records")}
+    rows = []
+    for b in blocks:
+        row = [str(b)]
+        runs = failed = 0
+        for t in treatments:
+            o = cell.get((b, t))
+            if o is None:
+                row.append(".")
+                continue
+            row.append(num(o.get("value")))
+            runs += int(o.get("runs") or 0)
+            failed += int(o.get("failed") or 0)
+        rows.append(row + [str(runs), str(failed)])
+    out.append(Para(f"the observation table the analysis used: one value per treatment and block "
+                    f"({len(treatments)} treatments x {len(blocks)} blocks); . marks a hole"))
+    out.append(Table(["block", *treatments, "runs", "failed runs"], rows, [False] + [True] * (len(treatments) + 2)))
+    dropped = r.get("dropped_blocks") or []
+    if dropped:
+        out.append(Para(f"{len(dropped)} blocks were left out because they miss a treatment:"))
+        out.append(Items([f"{d.get('block')}: no value for {', '.join(d.get('missing') or [])}" for d in dropped]))
+    else:
+        out.append(Para("no block was left out"))
+    return out
+
+
+def _provenance_blocks(data: ReportData) -> list:
+    st = data.stored
+    out: list = [Heading("provenance"),
+                 KV([("analysis", str(st.id)),
+                     ("fingerprint", str(st.fingerprint)),
+                     ("runs", f"ids up to {st.max_run_id}; {getattr(st, 'stale_runs', 0)} of the runs it stood on retracted since"
+                      if st.max_run_id else "none: this analysis stands on no runs of its own"),
+                     ("record", "intact (matches its digest)" if st.intact else "changed since it was kept (digest mismatch)"),
+                     ("analysed at", _utc(st.created_at)),
+                     ("exported at", _utc(data.exported_at))])]
+    out.append(Heading("imports the slice drew on", 3))
+    if data.imports:
+        out.append(Table(["file", "campaign", "sha256", "loaded at"],
+                         [[str(i.get("file_name")), str(i.get("campaign")), str(i.get("sha256")), _utc(i.get("loaded_at"))]
+                          for i in data.imports], [False, False, False, False]))
+        out.append(Para("every import holding a run under the stored slice with an id up to the analysis's last run, "
+                        "retracted runs included", "note"))
+    else:
+        out.append(Para("no import found for this analysis's slice"))
+    out.append(Heading("software", 3))
+    out.append(Table(["package", "version"], [[str(k), str(v)] for k, v in sorted((st.software or {}).items())],
+                     [False, False]))
+    return out
+
+
+def content(data: ReportData) -> list:
+    st = data.stored
+    r = st.result or {}
+    blocks: list = [Heading(data.title, 1),
+                    Para(f"analysis {st.id}, a {st.kind}" + (f" of {st.metric}" if st.metric else "")
+                         + f", made {_utc(st.created_at)}; report exported {_utc(data.exported_at)}", "note"),
+                    State(st.state, STATE_MEANING[st.state].format(id=st.id, n=getattr(st, 'stale_runs', 0)))]
+    blocks.append(Heading("claims"))
+    if st.claims:
+        blocks.append(Items([(f"{c['text']} (claim {c['id']}, kept {_utc(c.get('created_at'))})", list(c.get("tags") or []))
+                             for c in st.claims]))
+    else:
+        blocks.append(Para(f"no claim has been kept with this analysis (blockyard keep \"...\" --analysis {st.id})"))
+    blocks.append(Heading("what was analysed"))
+    blocks.append(KV(_settings_pairs(st)))
+    blocks.append(Heading("result"))
+    if st.kind == "blocktest":
+        blocks += _blocktest_blocks(r)
+    elif st.kind == "versus":
+        blocks += _versus_blocks(r)
+    else:
+        blocks += _plan_blocks(r)
+    blocks.append(Heading("cautions"))
+    warnings = [str(w) for w in r.get("warnings") or []]
+    blocks.append(Items(warnings) if warnings else Para("no cautions were recorded with this analysis"))
+    if data.figures or data.notes:
+        blocks.append(Heading("figures"))
+        for f in data.figures:
+            blocks.append(Fig(f.key, f.title, f.caption))
+        for n in data.notes:
+            blocks.append(Para(n, "note"))
+    blocks += _coverage_blocks(st)
+    blocks += _provenance_blocks(data)
+    return blocks
+
+
+# --- HTML --------------------------------------------------------------------------------------
+
+CSS = """
+body { font-family: "Source Sans 3", "Segoe UI", "Helvetica Neue", Arial, sans-serif; color: #26323b;
+       background: #f7f8f6; margin: 0; line-height: 1.45; }
+main { max-width: 68rem; margin: 0 auto; padding: 1.5rem 2rem 3rem; background: #ffffff; }
+h1 { font-size: 1.7rem; margin: 0.4rem 0 0.2rem; }
+h2 { font-size: 1.2rem; margin: 2rem 0 0.6rem; padding-bottom: 0.2rem; border-bottom: 2px solid #dde3e8; }
+h3 { font-size: 1rem; margin: 1.2rem 0 0.4rem; color: #1f5f8b; }
+p.note { color: #55606a; font-size: 0.9rem; }
+.state { margin: 1rem 0; padding: 0.8rem 1rem; border-left: 0.5rem solid; border-radius: 0.2rem; }
+.state strong { font-size: 1.25rem; letter-spacing: 0.04em; margin-right: 0.6rem; text-transform: uppercase; }
+.state-fresh { border-color: #2f7a5a; background: #eaf4ee; }
+.state-stale { border-color: #a8861c; background: #fbf4df; }
+.state-tampered { border-color: #a8432b; background: #f9e7e2; }
+table { border-collapse: collapse; margin: 0.4rem 0 0.8rem; font-size: 0.92rem; }
+th, td { padding: 0.25rem 0.7rem; border-bottom: 1px solid #e4e8eb; vertical-align: top; }
+th { text-align: left; background: #eef1f3; font-weight: 600; }
+td.n, th.n { text-align: right; font-variant-numeric: tabular-nums; }
+dl { display: grid; grid-template-columns: max-content 1fr; gap: 0.2rem 1.2rem; margin: 0.4rem 0; }
+dt { color: #55606a; }
+dd { margin: 0; overflow-wrap: anywhere; }
+.tag { display: inline-block; font-size: 0.8rem; padding: 0 0.45rem; margin-left: 0.3rem; border-radius: 0.7rem;
+       background: #e3ecf3; color: #1f5f8b; }
+figure { margin: 1rem 0 1.6rem; }
+figure img { max-width: 100%; height: auto; border: 1px solid #e4e8eb; }
+figcaption { font-size: 0.9rem; color: #55606a; max-width: 48rem; }
+.wide { overflow-x: auto; }
+"""
+
+
+def _e(x) -> str:
+    return html.escape(str(x), quote=True)
+
+
+def to_html(data: ReportData) -> str:
+    pngs = {f.key: f.png for f in data.figures}
+    parts = ["<!DOCTYPE html>", '<html lang="en">', "<head>", '<meta charset="utf-8">',
+             '<meta name="viewport" content="width=device-width, initial-scale=1">',
+             f"<title>{_e(data.title)}</title>", f"<style>{CSS}</style>", "</head>", "<body>", "<main>"]
+    for b in content(data):
+        if isinstance(b, Heading):
+            parts.append(f"<h{b.level}>{_e(b.text)}</h{b.level}>")
+        elif isinstance(b, Para):
+            cls = f' class="{_e(b.kind)}"' if b.kind else ""
+            parts.append(f"<p{cls}>{_e(b.text)}</p>")
+        elif isinstance(b, State):
+            parts.append(f'<div class="state state-{_e(b.state)}"><strong>{_e(b.state)}</strong> {_e(b.meaning)}</div>')
+        elif isinstance(b, KV):
+            parts.append("<dl>" + "".join(f"<dt>{_e(k)}</dt><dd>{_e(v)}</dd>" for k, v in b.pairs) + "</dl>")
+        elif isinstance(b, Items):
+            lis = []
+            for it in b.items:
+                if isinstance(it, tuple):
+                    text, tags = it
+                    lis.append(f"<li>{_e(text)}" + "".join(f'<span class="tag">{_e(t)}</span>' for t in tags) + "</li>")
+                else:
+                    lis.append(f"<li>{_e(it)}</li>")
+            parts.append("<ul>" + "".join(lis) + "</ul>")
+        elif isinstance(b, Table):
+            num_col = b.numeric or [False] * len(b.headers)
+
+            def cls(i):
+                return ' class="n"' if i < len(num_col) and num_col[i] else ""
+
+            head = "".join(f"<th{cls(i)}>{_e(h)}</th>" for i, h in enumerate(b.headers))
+            body = "".join("<tr>" + "".join(f"<td{cls(i)}>{_e(c)}</td>" for i, c in enumerate(row)) + "</tr>"
+                           for row in b.rows)
+            parts.append(f'<div class="wide"><table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table></div>')
+        elif isinstance(b, Fig):
+            src = "data:image/png;base64," + base64.b64encode(pngs[b.key]).decode("ascii")
+            parts.append(f'<figure><img src="{src}" alt="{_e(b.title)}"><figcaption><strong>{_e(b.title)}.</strong> '
+                         f"{_e(b.caption)}</figcaption></figure>")
+    parts += ["</main>", "</body>", "</html>"]
+    return "\n".join(parts) + "\n"
+
+
+# --- Markdown ----------------------------------------------------------------------------------
+
+_MD_SPECIAL = "\\`*_[]|#"
+
+
+def md(x) -> str:
+    """Text for Markdown: punctuation that would format is escaped, HTML-significant characters
+    become entities (a renderer would otherwise pass raw HTML through), line breaks become spaces."""
+    s = str(x).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+    s = "".join("\\" + ch if ch in _MD_SPECIAL else ch for ch in s)
+    return " ".join(s.split("\n")).replace("\r", " ")
+
+
+def to_markdown(data: ReportData, links: dict[str, str]) -> str:
+    """The report as Markdown; `links` maps a figure key to its path relative to the .md file."""
+    out: list[str] = []
+    for b in content(data):
+        if isinstance(b, Heading):
+            out += ["#" * b.level + " " + md(b.text), ""]
+        elif isinstance(b, Para):
+            out += [f"*{md(b.text)}*" if b.kind == "note" else md(b.text), ""]
+        elif isinstance(b, State):
+            out += [f"> **state: {md(b.state).upper()}** - {md(b.meaning)}", ""]
+        elif isinstance(b, KV):
+            out += [f"- **{md(k)}**: {md(v)}" for k, v in b.pairs] + [""]
+        elif isinstance(b, Items):
+            for it in b.items:
+                if isinstance(it, tuple):
+                    text, tags = it
+                    out.append(f"- {md(text)}" + (" - tags: " + ", ".join(f"`{t.replace('`', '')}`" for t in tags) if tags else ""))
+                else:
+                    out.append(f"- {md(it)}")
+            out.append("")
+        elif isinstance(b, Table):
+            num_col = b.numeric or [False] * len(b.headers)
+            out.append("| " + " | ".join(md(h) for h in b.headers) + " |")
+            out.append("|" + "|".join(" ---: " if i < len(num_col) and num_col[i] else " --- "
+                                      for i in range(len(b.headers))) + "|")
+            for row in b.rows:
+                out.append("| " + " | ".join(md(c) if str(c) != "" else " " for c in row) + " |")
+            out.append("")
+        elif isinstance(b, Fig):
+            out += [f"![{md(b.title)}]({quote(links[b.key])})", "", f"*{md(b.title)}.* {md(b.caption)}", ""]
+    return "\n".join(out).rstrip() + "\n"

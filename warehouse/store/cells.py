@@ -1,0 +1,171 @@
+"""Keeping the cell summaries (schema.cell_stats) in step with the runs.
+
+The loader adds each file's cells from the chunks it writes (pandas, no second pass over the
+runs); retraction and its undo rebuild the cells they touch from the live runs, in SQL.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import and_, case, delete, func, insert, select
+
+from . import schema as S
+
+R = S.runs
+C = S.cell_stats
+KEY = ["solver_id", "instance_id", "host_id"]
+SUMS = ["n", "n_ok", "sum_ok", "sq_ok", "n_fail", "n_fail_v", "sum_fail_v", "id_sum"]
+COLUMNS = ["campaign_id", "import_id", "solver_id", "instance_id", "host_id", "slot", "n", "n_ok", "sum_ok",
+           "sq_ok", "min_ok", "max_ok", "n_fail", "n_fail_v", "sum_fail_v", "id_sum", "id_max"]
+
+
+def run_aggregates(v, status=R.c.status, ident=R.c.id):
+    """The per-cell aggregates of metric column v over runs (also used straight on a slice)."""
+    ok = (status == 0) & v.is_not(None)
+    bad = status != 0
+    return [
+        func.count().label("n"),
+        func.sum(case((ok, 1), else_=0)).label("n_ok"),
+        func.sum(case((ok, v), else_=None)).label("sum_ok"),
+        func.sum(case((ok, v * v), else_=None)).label("sq_ok"),
+        func.min(case((ok, v), else_=None)).label("min_ok"),
+        func.max(case((ok, v), else_=None)).label("max_ok"),
+        func.sum(case((bad, 1), else_=0)).label("n_fail"),
+        func.sum(case((bad & v.is_not(None), 1), else_=0)).label("n_fail_v"),
+        func.sum(case((bad & v.is_not(None), v), else_=None)).label("sum_fail_v"),
+        func.sum(ident).label("id_sum"),
+        func.max(ident).label("id_max"),
+    ]
+
+
+def cell_aggregates():
+    """The same aggregates, summed again over cell rows."""
+    return [func.sum(C.c.n).label("n"), func.sum(C.c.n_ok).label("n_ok"), func.sum(C.c.sum_ok).label("sum_ok"),
+            func.sum(C.c.sq_ok).label("sq_ok"), func.min(C.c.min_ok).label("min_ok"),
+            func.max(C.c.max_ok).label("max_ok"), func.sum(C.c.n_fail).label("n_fail"),
+            func.sum(C.c.n_fail_v).label("n_fail_v"), func.sum(C.c.sum_fail_v).label("sum_fail_v"),
+            func.sum(C.c.id_sum).label("id_sum"), func.max(C.c.id_max).label("id_max")]
+
+
+class Accumulator:
+    """Collects a file's cell sums chunk by chunk; `rows()` gives the final cell rows."""
+
+    def __init__(self):
+        self.parts: list[pd.DataFrame] = []
+
+    def add(self, ids: np.ndarray, solver: np.ndarray, instance: np.ndarray, host: np.ndarray,
+            status: np.ndarray, values: dict[int, np.ndarray]) -> None:
+        """One chunk's written runs: ids, keys, status codes, and the metric values per slot."""
+        if len(ids) == 0:
+            return
+        base = pd.DataFrame({"solver_id": solver, "instance_id": instance,
+                             "host_id": np.where(np.isnan(host), -1, host).astype(np.int64),
+                             "id": ids.astype(np.int64)})
+        ok_status = status == 0
+        for slot, v in values.items():
+            v = np.asarray(v, dtype=float)
+            has = ~np.isnan(v)
+            ok = ok_status & has
+            bad = ~ok_status
+            f = base.assign(
+                slot=slot, n=1, n_ok=ok.astype(np.int64), sum_ok=np.where(ok, v, 0.0),
+                sq_ok=np.where(ok, v * v, 0.0), min_ok=np.where(ok, v, np.inf), max_ok=np.where(ok, v, -np.inf),
+                n_fail=bad.astype(np.int64), n_fail_v=(bad & has).astype(np.int64),
+                sum_fail_v=np.where(bad & has, v, 0.0))
+            g = f.groupby(["slot", *KEY], sort=False).agg(
+                n=("n", "sum"), n_ok=("n_ok", "sum"), sum_ok=("sum_ok", "sum"), sq_ok=("sq_ok", "sum"),
+                min_ok=("min_ok", "min"), max_ok=("max_ok", "max"), n_fail=("n_fail", "sum"),
+                n_fail_v=("n_fail_v", "sum"), sum_fail_v=("sum_fail_v", "sum"), id_sum=("id", "sum"),
+                id_max=("id", "max"))
+            self.parts.append(g)
+
+    def rows(self, campaign_id: int, import_id: int) -> list[tuple]:
+        if not self.parts:
+            return []
+        allp = pd.concat(self.parts)
+        g = allp.groupby(level=[0, 1, 2, 3], sort=False).agg(
+            {**{c: "sum" for c in SUMS}, "min_ok": "min", "max_ok": "max", "id_max": "max"}).reset_index()
+        g["host_id"] = g["host_id"].astype(object).where(g["host_id"] >= 0, None)
+        for c in ("sum_ok", "sq_ok", "min_ok", "max_ok"):
+            g[c] = g[c].astype(object).where(g["n_ok"] > 0, None)
+        g["sum_fail_v"] = g["sum_fail_v"].astype(object).where(g["n_fail_v"] > 0, None)
+        g["campaign_id"] = campaign_id
+        g["import_id"] = import_id
+        out = g[COLUMNS]
+        cols = [out[c].tolist() for c in COLUMNS]
+        ints = {"campaign_id", "import_id", "solver_id", "instance_id", "slot", "n", "n_ok", "n_fail", "n_fail_v",
+                "id_sum", "id_max"}
+        for i, c in enumerate(COLUMNS):
+            if c in ints:
+                cols[i] = [int(x) for x in cols[i]]
+            elif c == "host_id":
+                cols[i] = [None if x is None else int(x) for x in cols[i]]
+            else:
+                cols[i] = [None if x is None else float(x) for x in cols[i]]
+        return list(zip(*cols))
+
+
+def write_rows(conn, dialect: str, rows: list[tuple]) -> None:
+    if not rows:
+        return
+    raw = conn.connection.driver_connection
+    cols = ", ".join(COLUMNS)
+    if dialect == "sqlite":
+        raw.executemany(f"INSERT INTO cell_stats ({cols}) VALUES ({', '.join('?' * len(COLUMNS))})", rows)
+    else:
+        cur = raw.cursor()
+        with cur.copy(f"COPY cell_stats ({cols}) FROM STDIN") as cp:
+            for r in rows:
+                cp.write_row(r)
+
+
+def touched(conn, run_condition) -> list[tuple]:
+    """The (import, solver, instance) keys of the cells holding runs that match the condition."""
+    return conn.execute(select(R.c.import_id, R.c.solver_id, R.c.instance_id).where(run_condition).distinct()).all()
+
+
+def rebuild(conn, keys: list[tuple]) -> int:
+    """Recompute the cells of these (import, solver, instance) keys from the live runs."""
+    if not keys:
+        return 0
+    imports = sorted({k[0] for k in keys})
+    solvers = sorted({k[1] for k in keys})
+    instances = sorted({k[2] for k in keys})
+    touched = 0
+    for i in range(0, len(instances), 5000):
+        part = instances[i:i + 5000]
+        rect_c = and_(C.c.import_id.in_(imports), C.c.solver_id.in_(solvers), C.c.instance_id.in_(part))
+        rect_r = and_(R.c.import_id.in_(imports), R.c.solver_id.in_(solvers), R.c.instance_id.in_(part))
+        slots = [r[0] for r in conn.execute(select(C.c.slot).where(rect_c).distinct())]
+        conn.execute(delete(C).where(rect_c))
+        for slot in slots:
+            v = R.c[f"v{int(slot)}"]
+            q = (select(R.c.campaign_id, R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.host_id,
+                        _literal(slot),
+                        *run_aggregates(v))
+                 .where(rect_r, R.c.retraction_id.is_(None))
+                 .group_by(R.c.campaign_id, R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.host_id))
+            touched += conn.execute(insert(C).from_select(COLUMNS, q)).rowcount or 0
+    return touched
+
+
+def _literal(slot: int):
+    from sqlalchemy import literal
+
+    return literal(int(slot), S.SmallInteger).label("slot")
+
+
+def from_runs(conn, import_id: int, lo: int, hi: int) -> None:
+    """The cells of one import, summed from its stored runs (ids lo..hi), in SQL."""
+    slots = [r[0] for r in conn.execute(select(S.metrics.c.slot))]
+    rng = and_(R.c.id.between(lo, hi), R.c.import_id == import_id, R.c.retraction_id.is_(None))
+    conn.execute(delete(C).where(C.c.import_id == import_id))
+    for slot in slots:
+        v = R.c[f"v{int(slot)}"]
+        has = conn.execute(select(func.count()).select_from(R).where(rng, v.is_not(None))).scalar()
+        if not has:
+            continue
+        q = (select(R.c.campaign_id, R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.host_id, _literal(slot),
+                    *run_aggregates(v)).where(rng)
+             .group_by(R.c.campaign_id, R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.host_id))
+        conn.execute(insert(C).from_select(COLUMNS, q))
