@@ -15,7 +15,7 @@ from prompt_toolkit.document import Document
 from prompt_toolkit.input import create_pipe_input
 from prompt_toolkit.output import DummyOutput
 
-from warehouse.commands import REGISTRY, Command, Done
+from warehouse.commands import REGISTRY, Command
 from warehouse.session import Session
 from warehouse.shell import Shell, run_shell
 
@@ -212,6 +212,37 @@ def test_the_start_up_count_runs_in_the_background(loaded):
     sh.session.close()
 
 
+def test_the_focus_count_from_cell_summaries_equals_the_count_on_runs(loaded, cli):
+    from warehouse.select.resolve import Dims, condition
+    from warehouse.select.slices import parse
+
+    sh = shell_on(loaded)
+    slices = ["", "family=fam-b", "solver=stacker host=rack-a", "stacker@1.5 | packer@2.0 group=g2",
+              "campaign=autumn instance=fam-a-g1-1"]
+
+    def both():
+        with sh.session.warehouse().engine.connect() as conn:
+            dims = Dims.load(conn)
+            for text in slices:
+                sl = parse(text)
+                yield text, Shell._count_cells(conn, sl, dims), Shell._count_runs(conn, condition(sl, dims, conn))
+
+    for text, cells, runs in both():
+        assert cells == runs, text
+    assert dict((t, r) for t, _, r in both())["family=fam-b"] == (3, 3, 36)
+    if "retract" in REGISTRY:
+        assert cli("retract", "--slice", "family=fam-b group=g1", "--reason", "bad batch").code == 0
+        for text, cells, runs in both():
+            assert cells == runs, text
+        assert dict((t, r) for t, _, r in both())["family=fam-b"] == (3, 2, 24)
+    # a term the cell summaries do not carry is counted on the runs
+    with sh.session.warehouse().engine.connect() as conn:
+        assert Shell._count_cells(conn, parse("status=ok"), Dims.load(conn)) is None
+    sh.execute("focus status=timeout")
+    assert sh.summary == "1 treatment x 1 block, 1 run"
+    sh.session.close()
+
+
 # --- completion ----------------------------------------------------------------------------------
 
 def test_completion_offers_warehouse_values(loaded):
@@ -247,6 +278,8 @@ def test_completion_of_commands_options_and_metrics(loaded):
     assert completions(sh, "versus stacker@1.4 --metric pallets --slice fam") == ["family="]
     assert completions(sh, "help ver") == ["versus"]
     assert completions(sh, "inventory so") == ["solvers"]
+    if "recall" in REGISTRY:
+        assert completions(sh, "recall --solver pa") == ["packer", "packer@2.0"]
     sh.session.close()
 
 

@@ -143,14 +143,6 @@ def _split_words(text: str) -> tuple[list[str], str]:
     return words, "".join(buf)
 
 
-def _unquote(word: str) -> str:
-    try:
-        parts = shlex.split(word)
-    except ValueError:
-        return word.strip("'\"")
-    return parts[0] if len(parts) == 1 else word
-
-
 def _sense_words(sense: str) -> str:
     return "higher is better" if sense == "max" else "lower is better"
 
@@ -258,7 +250,8 @@ class Shell:
         self.warehouse_name = self._name()
 
     @staticmethod
-    def _count(conn, cond) -> tuple[int, int, int]:
+    def _count_runs(conn, cond) -> tuple[int, int, int]:
+        """(treatments, blocks, runs) of a slice, counted on the runs themselves."""
         from sqlalchemy import func, select
 
         from .store import schema as S
@@ -270,6 +263,31 @@ class Shell:
         runs, treatments, blocks = conn.execute(q).one()
         return int(treatments), int(blocks), int(runs)
 
+    @staticmethod
+    def _count_cells(conn, sl, dims) -> tuple[int, int, int] | None:
+        """The same from the cell summaries (one metric slot per import counts its live runs), or
+        None when they cannot answer: a term they do not carry, or a file with runs but no cells."""
+        from sqlalchemy import and_, exists, func, select
+
+        from .select.resolve import cells_can_answer, condition
+        from .store import schema as S
+
+        if not cells_can_answer(sl):
+            return None
+        cs, im = S.cell_stats, S.imports
+        uncovered = conn.execute(select(func.count()).select_from(im).where(
+            im.c.rows_loaded > 0, ~exists().where(cs.c.import_id == im.c.id))).scalar()
+        if uncovered:
+            return None
+        first = select(cs.c.import_id, func.min(cs.c.slot).label("slot")).group_by(cs.c.import_id).subquery()
+        q = (select(func.coalesce(func.sum(cs.c.n), 0), func.count(func.distinct(cs.c.solver_id)),
+                    func.count(func.distinct(S.instances.c.group_id)))
+             .select_from(cs.join(first, and_(first.c.import_id == cs.c.import_id, first.c.slot == cs.c.slot))
+                          .join(S.instances, S.instances.c.id == cs.c.instance_id))
+             .where(condition(sl, dims, conn, table=cs)))
+        runs, treatments, blocks = conn.execute(q).one()
+        return int(treatments), int(blocks), int(runs)
+
     def _summary_of(self, text: str) -> tuple[int, int, int]:
         from .select.resolve import Dims, condition
         from .select.slices import parse
@@ -277,7 +295,12 @@ class Shell:
         sl = parse(text)
         with self.session.warehouse().engine.connect() as conn:
             dims = Dims.load(conn)
-            return self._count(conn, condition(sl, dims, conn))
+            cond = condition(sl, dims, conn)  # resolves every name, or raises SliceError
+            try:
+                quick = self._count_cells(conn, sl, dims)
+            except (ImportError, AttributeError):  # a warehouse layer without cell summaries
+                quick = None
+            return quick if quick is not None else self._count_runs(conn, cond)
 
     @staticmethod
     def _words(counts: tuple[int, int, int]) -> str:
@@ -663,6 +686,8 @@ class Shell:
             return self._from([str(c) for c in act.choices], current, act.dest)
         if metavar in ("BASELINE", "TREATMENT") or act.dest in ("baseline", "treatment"):
             return self._from(self.values.get("treatment", []), current, "treatment")
+        if act.dest == "solver":
+            return self._from([*self.values.get("solver", []), *self.values.get("treatment", [])], current, "solver")
         if "FILE" in metavar or metavar.endswith(".toml") or act.dest in ("layout", "rejects", "to"):
             return self._paths(current)
         return []

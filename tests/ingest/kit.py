@@ -5,7 +5,10 @@ The source files are test input invented inline; every check value is stated nex
 from __future__ import annotations
 
 import gzip
+import io
 import json
+import uuid
+from contextlib import contextmanager
 from pathlib import Path
 
 from sqlalchemy import text
@@ -106,3 +109,43 @@ def everything(location: str) -> dict:
     from conftest import run_counts
 
     return run_counts(location)
+
+
+@contextmanager
+def module_warehouse(tmp_path_factory):
+    """One initialised warehouse shared by the tests of a module (the ones that must leave it unchanged)."""
+    from conftest import ON_POSTGRES, TEST_URL, _pg_location
+    from warehouse.store.connect import init_warehouse
+
+    if not ON_POSTGRES:
+        loc = str(tmp_path_factory.mktemp("shared") / "shared.db")
+        init_warehouse(loc).close()
+        yield loc
+        return
+    from sqlalchemy import create_engine
+
+    schema = "t_" + uuid.uuid4().hex[:12]
+    admin = create_engine(TEST_URL.replace("postgresql://", "postgresql+psycopg://", 1))
+    with admin.begin() as c:
+        c.execute(text(f'CREATE SCHEMA "{schema}"'))
+    try:
+        loc = _pg_location(schema)
+        init_warehouse(loc).close()
+        yield loc
+    finally:
+        with admin.begin() as c:
+            c.execute(text(f'DROP SCHEMA "{schema}" CASCADE'))
+        admin.dispose()
+
+
+def cli_at(location: str):
+    """A `cli`-like runner for a given warehouse."""
+    from conftest import CliResult
+    from warehouse.cli import run
+
+    def _run(*argv: str, warehouse: str | None = None):
+        out, err = io.StringIO(), io.StringIO()
+        code = run(["-w", warehouse or location, *argv], out=out, err=err)
+        return CliResult(code, out.getvalue(), err.getvalue())
+
+    return _run

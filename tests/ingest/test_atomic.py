@@ -28,7 +28,7 @@ def big_csv(path, n: int, bad_line: int | None = None, dup_of: int | None = None
 
 def indexes(location):
     if ON_POSTGRES:
-        return sorted(r[0] for r in query(location, "SELECT indexname FROM pg_indexes WHERE tablename = 'runs'"))
+        return sorted(r[0] for r in query(location, "SELECT indexname FROM pg_indexes WHERE tablename = 'runs' AND schemaname = current_schema()"))
     return sorted(r[0] for r in query(location, "SELECT name FROM sqlite_master WHERE type = 'index' AND tbl_name = 'runs'"))
 
 
@@ -101,7 +101,8 @@ def test_foreign_keys_are_back_on_after_a_load(wh, tmp_path):
 
 
 def test_huge_seeds_are_kept_exactly(cli, location, tmp_path):
-    # 2**63 - 1 is the largest seed a BIGINT holds (ISO/IEC 9075 exact numeric, 64-bit)
+    # PostgreSQL documentation, numeric types: bigint runs from -9223372036854775808 to
+    # +9223372036854775807 (SQLite's INTEGER is the same 8-byte signed range)
     path = write(tmp_path / "t.csv", H + "s,1,f,g,a,9223372036854775807,ok,,,3\ns,1,f,g,a,-9007199254740993,ok,,,3\n")
     load_json(cli, path)
     assert sorted(r[0] for r in query(location, "SELECT seed FROM runs")) == [-9007199254740993, 9223372036854775807]

@@ -61,8 +61,11 @@ def test_postgresql_and_sqlite_hold_the_same_after_the_same_loads(cli, location,
     ]
     for where in (None, lite):
         for f in files:
-            cli("load", str(f), "--campaign", "c", "--skip-bad", "--rejects", str(tmp_path / "rej.csv"), warehouse=where)
-    assert _inventory(cli) == _inventory(cli, lite)
+            res = cli("load", str(f), "--campaign", "c", "--skip-bad", "--rejects", str(tmp_path / "rej.csv"), warehouse=where)
+            assert res.code == 0, res
+    inv = _inventory(cli)
+    assert inv["runs"] == 40 + 30 + 5 + 1 and inv["imports"] == 4
+    assert inv == _inventory(cli, lite)
     for kind in ("solvers", "groups", "imports", "metrics", "hosts"):
         pg = json.loads(cli("inventory", kind, "--json").out)[f"{kind}_list"]
         sl = json.loads(cli("inventory", kind, "--json", warehouse=lite).out)[f"{kind}_list"]

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import pytest
 
-from .kit import everything, jsonl_text, load_json, query, refusal, write
+from .kit import cli_at, everything, jsonl_text, load_json, module_warehouse, query, refusal, write
 
 # made up in the spirit of the demo's rack-b exporter: its own names, words and a path-like instance
 RACK_B = '''
@@ -181,12 +181,19 @@ LAYOUT_ERRORS = [
 ]
 
 
+@pytest.fixture(scope="module")
+def shared(tmp_path_factory):
+    with module_warehouse(tmp_path_factory) as loc:
+        yield loc, cli_at(loc)
+
+
 @pytest.mark.parametrize("name,text,says", LAYOUT_ERRORS, ids=[e[0] for e in LAYOUT_ERRORS])
-def test_layout_errors_are_one_line_naming_the_layout(cli, location, tmp_path, name, text, says):
+def test_layout_errors_are_one_line_naming_the_layout(shared, tmp_path, name, text, says):
+    location, run = shared
     lay = write(tmp_path / f"{name}.toml", text)
     path = write(tmp_path / "r.csv", "solver,group,instance,pallets\ns,g1,a,3\n")
     before = everything(location)
-    line = refusal(cli, path, "--layout", str(lay))
+    line = refusal(run, path, "--layout", str(lay))
     assert line.startswith(f"blockyard: layout {lay}: "), line
     assert says in line, line
     assert everything(location) == before

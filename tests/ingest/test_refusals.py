@@ -5,7 +5,7 @@ import gzip
 
 import pytest
 
-from .kit import everything, load_json, refusal, write
+from .kit import cli_at, everything, load_json, module_warehouse, refusal, write
 
 H = "solver,version,group,instance,seed,status,finished_at,pallets\n"
 GOOD = "stacker,1.6,g1,a,1,ok,2026-11-09T10:00:00Z,30\n"
@@ -47,10 +47,23 @@ CASES = [
 ]
 
 
+@pytest.fixture(scope="module")
+def shared(tmp_path_factory):
+    """One warehouse for all the cases below: each must leave it exactly as it was."""
+    with module_warehouse(tmp_path_factory) as loc:
+        run = cli_at(loc)
+        first = tmp_path_factory.mktemp("first") / "first.csv"
+        load_json(run, write(first, H + GOOD), campaign="base")
+        yield loc, run
+
+
 @pytest.mark.parametrize("name,content,says", CASES, ids=[c[0] for c in CASES])
-def test_bad_csv_is_refused_whole(cli, location, tmp_path, before, name, content, says):
+def test_bad_csv_is_refused_whole(shared, tmp_path, name, content, says):
+    location, run = shared
+    before = everything(location)
+    assert before["runs"] == 1
     path = write(tmp_path / f"{name}.csv", content)
-    line = refusal(cli, path)
+    line = refusal(run, path)
     assert line.startswith(f"blockyard: {path}{says}"), line
     assert everything(location) == before
 
@@ -98,7 +111,7 @@ def test_nul_byte_is_refused(cli, location, tmp_path, before):
 
 
 def test_truncated_gzip_is_refused(cli, location, tmp_path, before):
-    # RFC 1952 section 2.2: a member ends with CRC32 and ISIZE; cut those off and the data is incomplete
+    # RFC 1952 section 2.3: a member ends with CRC32 and ISIZE; cut those off and the data is incomplete
     full = gzip.compress((H + GOOD * 3).encode())
     path = write(tmp_path / "cut.csv.gz", full[:-12])
     assert f"{path}: the compressed data is cut short (truncated gzip file)" in refusal(cli, path)

@@ -72,13 +72,13 @@ def test_blank_lines_are_skipped_and_do_not_shift_line_numbers(cli, location, tm
     assert f"{path} line 5, field pallets" in refusal(cli, path)
 
 
-# ISO 8601-1:2019 section 5.4 (combined date and time), 5.3.4 (UTC designator Z and offsets
-# from UTC); expected values are POSIX seconds worked out by hand from 2026-11-09T00:00:00Z =
-# 1,794,182,400 (20,766 days x 86,400)
+# ISO 8601-1:2019, date and time of day combined, with the UTC designator Z or a difference from
+# UTC (+hh:mm, +hhmm); expected values are POSIX seconds worked out by hand from
+# 2026-11-09T00:00:00Z = 1,794,182,400 (20,766 days x 86,400)
 MIDNIGHT = 1794182400
 
 
-@pytest.mark.parametrize("written,expected", [
+TIMES = [
     ("2026-11-09T14:05:00Z", MIDNIGHT + 14 * 3600 + 5 * 60),
     ("2026-11-09T14:05:00+01:00", MIDNIGHT + 13 * 3600 + 5 * 60),  # 14:05 at UTC+1 is 13:05 UTC
     ("2026-11-09T14:05:00-05:30", MIDNIGHT + 19 * 3600 + 35 * 60),  # 14:05 at UTC-5:30 is 19:35 UTC
@@ -90,11 +90,24 @@ MIDNIGHT = 1794182400
     ("2026-11-09T14:05:00.75Z", MIDNIGHT + 14 * 3600 + 5 * 60),  # fractions of a second are dropped
     ("2026-11-09t14:05:00z", MIDNIGHT + 14 * 3600 + 5 * 60),  # RFC 3339 section 5.6: t and z may be lower case
     ("1969-12-31T23:59:59Z", -1),  # before the epoch
-])
-def test_iso8601_times_are_stored_as_utc_epoch_seconds(cli, location, tmp_path, written, expected):
-    path = write(tmp_path / "t.csv", f"solver,group,instance,finished_at,pallets\ns,g1,a,{written},3\n")
-    assert load_json(cli, path)["rows_loaded"] == 1
-    assert query(location, "SELECT finished_at FROM runs") == [(expected,)]
+]
+
+
+def test_iso8601_times_are_stored_as_utc_epoch_seconds(cli, location, tmp_path):
+    # one file, one form per line; the seed says which form a stored run came from
+    body = "".join(f"s,g1,a,{k},{written},3\n" for k, (written, _) in enumerate(TIMES))
+    path = write(tmp_path / "t.csv", "solver,group,instance,seed,finished_at,pallets\n" + body)
+    assert load_json(cli, path)["rows_loaded"] == len(TIMES)
+    got = dict(query(location, "SELECT seed, finished_at FROM runs"))
+    for k, (written, expected) in enumerate(TIMES):
+        assert got[k] == expected, written
+
+
+@pytest.mark.parametrize("written,expected", TIMES[:2])
+def test_a_file_of_one_time_form(cli, location, tmp_path, written, expected):
+    path = write(tmp_path / "t.csv", f"solver,group,instance,finished_at,pallets\ns,g1,a,{written},3\ns,g1,b,{written},3\n")
+    assert load_json(cli, path)["rows_loaded"] == 2
+    assert query(location, "SELECT DISTINCT finished_at FROM runs") == [(expected,)]
 
 
 def test_mixed_time_forms_in_one_file(cli, location, tmp_path):
@@ -105,8 +118,10 @@ def test_mixed_time_forms_in_one_file(cli, location, tmp_path):
     assert got == [("a", MIDNIGHT + 3600), ("b", MIDNIGHT), ("c", MIDNIGHT), ("d", None)]
 
 
-@pytest.mark.parametrize("written", ["2026-02-30T00:00:00Z", "09/11/2026", "yesterday", "2026-11-09T25:00:00Z"])
-def test_unreadable_times_are_refused_with_line_and_field(cli, location, tmp_path, written):
-    path = write(tmp_path / "t.csv", f"solver,group,instance,finished_at,pallets\ns,g1,a,2026-11-09,3\ns,g1,b,{written},3\n")
-    line = refusal(cli, path)
-    assert f"{path} line 3, field finished_at: '{written}' is not an ISO 8601 date and time" in line
+def test_unreadable_times_are_refused_with_line_and_field(cli, location, tmp_path):
+    # ISO 8601-1:2019 calendar dates: February 2026 has 28 days; time of day: no hour 25
+    for k, written in enumerate(["2026-02-30T00:00:00Z", "09/11/2026", "yesterday", "2026-11-09T25:00:00Z"]):
+        path = write(tmp_path / f"t{k}.csv", f"solver,group,instance,finished_at,pallets\ns,g1,a,2026-11-09,3\ns,g1,b,{written},3\n")
+        line = refusal(cli, path)
+        assert f"{path} line 3, field finished_at: '{written}' is not an ISO 8601 date and time" in line
+    assert query(location, "SELECT count(*) FROM runs") == [(0,)]

@@ -617,20 +617,33 @@ class _Writer:
         self.raw.executemany(self.sql_one, zip(*columns))
 
 
+@dataclass
+class _Holder:
+    import_id: int
+    source_line: int
+
+
 def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.ndarray, solver: np.ndarray,
                       instance: np.ndarray, campaign_id: int, import_id: int) -> tuple[int, int]:
     """After INSERT OR IGNORE: which rows did not go in, and why. Returns (loaded, skipped)."""
     lo, hi = int(ids[0]), int(ids[-1])
     stored = np.fromiter((r[0] for r in conn.execute(select(S.runs.c.id).where(S.runs.c.id.between(lo, hi)))), dtype=np.int64)
     kept = np.isin(ids, stored)
+    missing = np.flatnonzero(~kept)
+    # the stored run each missing one collides with: one query per batch of instances, not per run
+    holders: dict[tuple, tuple[int, int]] = {}
+    r = S.runs.c
+    inst_ids = sorted({int(i) for i in instance[missing]})
+    solver_ids = sorted({int(i) for i in solver[missing]})
+    for k in range(0, len(inst_ids), 500):
+        q = select(r.solver_id, r.instance_id, r.seed, r.replicate, r.import_id, r.source_line).where(
+            r.campaign_id == campaign_id, r.instance_id.in_(inst_ids[k:k + 500]), r.solver_id.in_(solver_ids))
+        for row in conn.execute(q):
+            holders[(row.solver_id, row.instance_id, row.seed, row.replicate)] = (row.import_id, row.source_line)
     skipped = 0
-    for j in np.flatnonzero(~kept).tolist():  # only the runs that did not go in
-        other = conn.execute(
-            select(S.runs.c.import_id, S.runs.c.source_line).where(
-                S.runs.c.campaign_id == campaign_id, S.runs.c.solver_id == int(solver[j]),
-                S.runs.c.instance_id == int(instance[j]), S.runs.c.seed == int(rows.seed[j]),
-                S.runs.c.replicate == int(rows.replicate[j]))
-        ).first()
+    for j in missing.tolist():  # only the runs that did not go in
+        found = holders.get((int(solver[j]), int(instance[j]), int(rows.seed[j]), int(rows.replicate[j])))
+        other = None if found is None else _Holder(*found)
         line = int(rows.lines[j])
         if other is not None and other.import_id == import_id:
             a, b = sorted((int(other.source_line), line))
@@ -644,7 +657,7 @@ def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.nd
             skipped += 1
             if skipped <= 3:
                 fl.warnings.append(
-                    f"{fl.where(line)}: this run ({rows.describe(j)}) is already in campaign "
+                    f"{fl.where(line)}: this run ({rows.describe(j)}) is already in this campaign "
                     f"(import {other.import_id if other else '?'}); skipped, the stored values are kept")
     return int(kept.sum()), skipped
 
@@ -937,13 +950,13 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                 report.status = "checked"
                 report.import_id = None
                 trans.rollback()
-                report.message = f"would load {loaded} runs into campaign {campaign}; nothing was stored"
+                report.message = f"would load {loaded} {'run' if loaded == 1 else 'runs'} into campaign {campaign}; nothing was stored"
                 return report
             if fl.rejects:
                 target = Path(rejects) if rejects else p.with_name(p.name + ".rejects.csv")
                 _write_rejects(target, fl.rejects, shown, fl.header)
                 report.rejects_file = str(target)
-    parts = [f"{loaded} runs loaded into campaign {campaign}"]
+    parts = [f"{loaded} {'run' if loaded == 1 else 'runs'} loaded into campaign {campaign}"]
     if report.rows_rejected:
         parts.append(f"{report.rows_rejected} rejected (see {report.rejects_file})")
     if skipped:
