@@ -58,6 +58,7 @@ def metric_of(session: Session, a) -> str | None:
 
 def _peek_args(p):
     add_slice(p)
+    p.add_argument("--limit", type=int, metavar="N", help="show at most N blocks (the JSON document has them all)")
     add_collapse(p)
     add_json(p)
 
@@ -65,6 +66,7 @@ def _peek_args(p):
 @dataclass
 class PeekResult:
     cov: object
+    limit: int | None = None
 
     def to_dict(self) -> dict:
         return self.cov.to_dict()
@@ -72,7 +74,7 @@ class PeekResult:
     def render(self) -> str:
         from .present.analysis import render_peek
 
-        return render_peek(self.cov)
+        return render_peek(self.cov, self.limit)
 
 
 @command("peek", "coverage of the slice: runs per treatment and block, holes, failures, cautions",
@@ -86,7 +88,7 @@ def cmd_peek(session: Session, a) -> PeekResult:
         settings = settings_of(session, a)
         if not getattr(a, "holes", None):
             settings = replace(settings, holes="keep")
-        return PeekResult(coverage(conn, slice_of(session, a), metric_of(session, a), settings))
+        return PeekResult(coverage(conn, slice_of(session, a), metric_of(session, a), settings), getattr(a, "limit", None))
 
 
 def _record(session: Session, result, sl, settings: Collapse) -> None:

@@ -4,19 +4,22 @@ from __future__ import annotations
 from .text import num, pairs, pval, signed, table
 
 
-def render_peek(cov) -> str:
+def render_peek(cov, limit: int | None = None) -> str:
     cells = cov.cells.set_index(["block", "treatment"])
     rows = []
-    for b in cov.blocks:
+    shown = cov.blocks if not limit or limit >= len(cov.blocks) else cov.blocks[:limit]
+    for b in shown:
         row = [b]
         for t in cov.treatments:
             if (b, t) in cells.index:
                 c = cells.loc[(b, t)]
-                row.append(f"{int(c['runs'])}{'!' if c['failed'] else ''}")
+                row.append(f"{int(c['runs'])}{'!' if c['failed'] else ' '}")
             else:
-                row.append(".")
+                row.append(". ")
         rows.append(row)
     out = [table(rows, ["block", *cov.treatments], align=["left"] + ["right"] * len(cov.treatments))]
+    if len(shown) < len(cov.blocks):
+        out.append(f"({len(cov.blocks) - len(shown)} more blocks not shown; raise --limit, or use --json)")
     f = cov.failures
     fails = ", ".join(f"{v} {k}{'s' if k == 'timeout' and v != 1 else ''}" for k, v in f.items() if v) or "none"
     out.append("runs per cell (seeds x instances); . no runs (a hole); ! some runs did not succeed")

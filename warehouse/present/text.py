@@ -50,7 +50,11 @@ def pval(p) -> str:
 def table(rows: Sequence[Sequence], headers: Sequence[str], align: Sequence[str] | None = None,
           width: int | None = None) -> str:
     """A borderless table; columns beyond the terminal width are cut, with a note saying so."""
-    text = tabulate(rows, headers=headers, tablefmt="plain", colalign=align, disable_numparse=True)
+    try:  # keep the cells' own spacing, so that markers after numbers line up
+        text = tabulate(rows, headers=headers, tablefmt="plain", colalign=align, disable_numparse=True,
+                        preserve_whitespace=True)
+    except TypeError:  # tabulate before 0.10 has the module-level switch only
+        text = tabulate(rows, headers=headers, tablefmt="plain", colalign=align, disable_numparse=True)
     if width is None and sys.stdout.isatty():
         width = shutil.get_terminal_size((120, 24)).columns
     lines = text.splitlines()
