@@ -12,29 +12,49 @@ def _common(p: argparse.ArgumentParser) -> None:
                    help="warehouse file or postgresql:// URL (default: $BLOCKYARD_WAREHOUSE, else ./blockyard.db)")
 
 
+class ArgumentMistake(Exception):
+    """An argument the parser refused; the message is already one line."""
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a mistake is one line naming the command and pointing at its help."""
+
+    def error(self, message: str):
+        import re
+
+        _, _, cmd = self.prog.partition(" ")
+        bad = re.match(r"argument COMMAND: invalid choice: '([^']*)'", message)
+        if bad:
+            from difflib import get_close_matches
+
+            from .commands import REGISTRY
+
+            near = get_close_matches(bad.group(1), list(REGISTRY), n=3)
+            hint = f" (did you mean {' or '.join(near)}?)" if near else ""
+            raise ArgumentMistake(f"blockyard: unknown command '{bad.group(1)}'{hint}; blockyard --help lists them")
+        where = f"{cmd}: " if cmd else ""
+        raise ArgumentMistake(f"blockyard: {where}{message} (see {self.prog} --help)")
+
+
 def build_parser():
     from . import __version__
     from .commands import REGISTRY
     from . import commands_all  # noqa: F401  (registers the analysis, ledger and shell commands)
 
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="blockyard",
         description="Blockyard: a results warehouse and blocked-analysis shell for solver benchmarks.",
         epilog="Run 'blockyard COMMAND --help' for a command's options; 'blockyard demo' builds a demo warehouse.",
     )
     parser.add_argument("--version", action="version", version=f"blockyard {__version__}")
     _common(parser)
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for cmd in REGISTRY.values():
         p = sub.add_parser(cmd.name, help=cmd.summary, description=f"{cmd.summary}.",
                            epilog=f"example: {cmd.example}")
         _common(p)
         cmd.configure(p)
     return parser
-
-
-class _Parser(argparse.ArgumentParser):
-    pass
 
 
 def run(argv: list[str] | None = None, out=None, err=None) -> int:
@@ -47,7 +67,10 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
     parser = build_parser()
     try:
         a = parser.parse_args(argv)
-    except SystemExit as exc:  # argparse already printed usage and the problem
+    except ArgumentMistake as exc:
+        err.write(f"{exc}\n")
+        return 2
+    except SystemExit as exc:  # --help and --version print and leave with 0
         return int(exc.code or 0) if exc.code in (0, None) else 2
     if not a.command:
         parser.print_help(out)

@@ -528,7 +528,7 @@ def test_generalized_matches_statsmodels_with_interaction(cells):
 
 
 def test_generalized_needs_replicated_cells_and_no_repeats():
-    with pytest.raises(DesignError, match="rcbd_anova"):
+    with pytest.raises(DesignError, match="no within-cell variation"):
         generalized_anova(invented_rcbd(1))
     obs = generalized_data(2)
     dup = pd.concat([obs, obs.iloc[[0]]], ignore_index=True)

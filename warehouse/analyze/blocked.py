@@ -1023,7 +1023,7 @@ def generalized_anova(obs: pd.DataFrame) -> GeneralizedResult:
             f"block {blocks[j]} has no value for {treatments[i]}: the generalized design needs every treatment "
             f"in every block; drop the blocks with holes")
     if counts.max() < 2:
-        raise DesignError("every cell holds one value: there is no within-cell variation; use rcbd_anova")
+        raise DesignError("every treatment x block cell holds one value, so there is no within-cell variation to test the interaction against; use the complete design (--design complete)")
     y = df["value"].to_numpy(dtype=float)
     rss0 = float(((y - y.mean()) ** 2).sum())
     one = np.ones((n, 1))
