@@ -137,7 +137,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
         query = _summary_query(condition(sl, dims, conn, table=S.cell_stats), slot)
     else:
         query = _cell_query(cond, v)
-    raw = pd.DataFrame(conn.execute(query).all(),
+    raw = rows_frame(conn.execute(query),
                        columns=["solver_id", "instance_id", "host_id", "campaign_id", "n", "n_ok", "sum_ok", "sq_ok",
                                 "min_ok", "max_ok", "n_fail", "n_fail_v", "sum_fail_v", "id_sum", "id_max"])
     if raw.empty:
@@ -216,13 +216,22 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
     )
 
 
+def rows_frame(result, columns: list[str]) -> pd.DataFrame:
+    """A query result as a frame, column by column (much quicker than row objects one by one)."""
+    rows = result.all()
+    if not rows:
+        return pd.DataFrame({c: [] for c in columns})
+    return pd.DataFrame(dict(zip(columns, zip(*rows))))
+
+
 def _instances(conn, ids: list[int]) -> pd.DataFrame:
     rows = []
     inst = S.instances
     for i in range(0, len(ids), 10_000):
         rows += conn.execute(select(inst.c.id, inst.c.group_id, inst.c.name, inst.c.content_hash)
                              .where(inst.c.id.in_(ids[i:i + 10_000]))).all()
-    return pd.DataFrame(rows, columns=["instance_id", "group_id", "instance", "content_hash"])
+    cols = ["instance_id", "group_id", "instance", "content_hash"]
+    return pd.DataFrame(dict(zip(cols, zip(*rows)))) if rows else pd.DataFrame({c: [] for c in cols})
 
 
 def _treatment_key(label: str):
@@ -273,7 +282,7 @@ def _policy_mean(agg: pd.DataFrame, st: dict, sense: str, notes: list[str]) -> n
 
 def _policy_values(conn, cond, v, agg: pd.DataFrame, st: dict, sense: str, notes: list[str]) -> np.ndarray:
     """Median or trimmed mean of replicates: read the slice's values and finish in pandas."""
-    rows = pd.DataFrame(conn.execute(select(R.c.solver_id, R.c.instance_id, R.c.status, v).where(cond)).all(),
+    rows = rows_frame(conn.execute(select(R.c.solver_id, R.c.instance_id, R.c.status, v).where(cond)),
                         columns=["solver_id", "instance_id", "status", "v"])
     rows["v"] = pd.to_numeric(rows["v"], errors="coerce").astype(float)
     ok = (rows["status"] == 0) & rows["v"].notna()

@@ -36,7 +36,7 @@ class Coverage:
 
 def coverage(conn, sl: Slice, metric: str | None = None, collapse_settings=None) -> Coverage:
     from .cautions import hash_pseudo_replication, host_caution, pseudo_replication
-    from .collapse import _treatment_key, collapse
+    from .collapse import _treatment_key, collapse, rows_frame
 
     dims = Dims.load(conn)
     cond = condition(sl, dims, conn)
@@ -45,7 +45,7 @@ def coverage(conn, sl: Slice, metric: str | None = None, collapse_settings=None)
                 *[func.sum(case((R.c.status == code, 1), else_=0)).label("n_" + name) for name, code in S.STATUS_CODES.items()])
          .join(S.instances, S.instances.c.id == R.c.instance_id).where(cond)
          .group_by(R.c.solver_id, S.instances.c.group_id))
-    frame = pd.DataFrame(conn.execute(q).all(), columns=["solver_id", "group_id", "runs", "instances", *("n_" + k for k in S.STATUS_CODES)])
+    frame = rows_frame(conn.execute(q), columns=["solver_id", "group_id", "runs", "instances", *("n_" + k for k in S.STATUS_CODES)])
     if frame.empty:
         raise DesignError(f"no runs in slice '{sl.text or '(everything)'}'; see blockyard inventory for what is stored")
     frame["treatment"] = [dims.treatment(s) for s in frame["solver_id"]]

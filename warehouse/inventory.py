@@ -72,14 +72,17 @@ def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) 
             inv.headers = ["campaign", "runs", "created"]
             inv.rows = [[a, int(b), _when(c)] for a, b, c in conn.execute(q)]
         elif kind == "solvers":
+            from .select.resolve import Dims
+
+            dims = Dims.load(conn)
             per = select(cells.c.solver_id, func.sum(cells.c.n).label("n")).group_by(cells.c.solver_id).subquery()
-            q = (select(S.solvers.c.name, S.solvers.c.version, S.solvers.c.build, func.coalesce(per.c.n, 0))
+            q = (select(S.solvers.c.id, S.solvers.c.build, S.solvers.c.params, func.coalesce(per.c.n, 0))
                  .select_from(S.solvers.outerjoin(per, per.c.solver_id == S.solvers.c.id)))
-            rows = [[f"{a}@{b}" if b else a, c, int(d)] for a, b, c, d in conn.execute(q)]
+            rows = [[dims.treatment(i), b, p, int(n)] for i, b, p, n in conn.execute(q)]
             from .select.versions import version_key
 
             rows.sort(key=lambda x: (x[0].split("@")[0], version_key(x[0].split("@", 1)[1] if "@" in x[0] else "")))
-            inv.headers = ["treatment", "build", "runs"]
+            inv.headers = ["treatment", "build", "parameters", "runs"]
             inv.rows = rows
         elif kind == "families":
             q = (select(S.families.c.name, func.count(func.distinct(S.groups.c.id)), func.count(func.distinct(S.instances.c.id)))

@@ -29,6 +29,7 @@ from ..store import cells
 from ..store import schema as S
 from ..store.connect import Warehouse
 from . import values as V
+from .cellsums import CellSums
 from .layout import FIELDS, NAME_LIMIT, Layout
 from .sources import SourceInfo, first_pass, read_delimited, read_header, read_jsonl, read_parquet
 
@@ -859,7 +860,7 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                     conn.exec_driver_sql(f'DROP INDEX "{name}"')
             writer = None
             read = loaded = skipped = 0
-            summaries = cells.Accumulator()
+            summaries = CellSums()
             first_id = next_id
             chunks = _checked(fl, _readers(fl))
             if info.fmt != "jsonl":  # pyarrow parses without Python's lock: read ahead in a helper thread
@@ -891,7 +892,7 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                 ids = np.arange(next_id, next_id + m, dtype=np.int64)
                 next_id += m
                 writer.write(ids, rows, solver, instance, host, has_host, {s: k for k, s in metric_slots.items()})
-                summaries.add(ids, solver, instance, np.where(has_host, host, np.nan), rows.status,
+                summaries.add(ids, solver, instance, np.where(has_host, host, -1), rows.status,
                               {s: rows.metrics[k] for k, s in metric_slots.items()})
                 if set_aside:
                     loaded += m  # no key to collide on until the indexes are back; checked there
