@@ -36,6 +36,9 @@ def upgrade() -> None:
     op.create_index("ix_cells_campaign", "cell_stats", ["campaign_id", "slot", "solver_id", "instance_id"])
     op.create_index("ix_cells_solver", "cell_stats", ["solver_id", "slot", "instance_id"])
     op.create_index("ix_cells_import", "cell_stats", ["import_id", "solver_id", "instance_id"])
+    # slices by solver and instance are answered by the cell summaries now; the runs keep only the
+    # unique key (campaign, solver, instance, seed, replicate) and the time index, which loads faster
+    op.drop_index("ix_runs_solver_instance", "runs")
     op.create_index("ix_runs_withdrawn", "runs", ["retraction_id"],
                     sqlite_where=sa.text("retraction_id IS NOT NULL"), postgresql_where=sa.text("retraction_id IS NOT NULL"))
     # a warehouse upgraded from 0002 gets its summaries from the runs it already holds
@@ -59,4 +62,5 @@ def upgrade() -> None:
 
 def downgrade() -> None:
     op.drop_index("ix_runs_withdrawn", "runs")
+    op.create_index("ix_runs_solver_instance", "runs", ["solver_id", "instance_id"])
     op.drop_table("cell_stats")

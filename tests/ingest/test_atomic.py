@@ -88,6 +88,10 @@ def test_sqlite_stores_integers_as_integers_and_missing_values_as_null(cli, loca
                           "typeof(source_line), typeof(v1) FROM runs ORDER BY seed")
     assert got == [("integer", "integer", "integer", "integer", "integer", "integer", "real"),
                    ("integer", "integer", "integer", "null", "null", "integer", "null")]
+    cells = query(location, "SELECT typeof(solver_id), typeof(host_id), typeof(n), typeof(n_ok), typeof(sum_ok), "
+                            "typeof(id_sum) FROM cell_stats ORDER BY host_id")
+    assert cells == [("integer", "null", "integer", "integer", "null", "integer"),
+                     ("integer", "integer", "integer", "integer", "real", "integer")]
 
 
 @pytest.mark.skipif(ON_POSTGRES, reason="a SQLite connection setting")

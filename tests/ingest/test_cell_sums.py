@@ -9,7 +9,7 @@ from warehouse.ingest.cellsums import MERGE_AT, CellSums
 from warehouse.store import cells
 from warehouse.store import schema as S
 
-from .kit import load_json, write
+from .kit import write
 
 
 def _cells(conn) -> dict:
@@ -78,3 +78,20 @@ def test_merging_keeps_the_sums(monkeypatch):
         assert all(_close(x, y) for x, y in zip(a[k], b[k]))
     # the counts add up to the runs: every run is in exactly one cell
     assert sum(r[6] for r in a.values()) == n
+
+
+def test_the_loader_writes_cells_in_the_store_s_column_order():
+    from warehouse.ingest import cellsums
+
+    assert cellsums.COLUMNS == cells.COLUMNS
+
+
+def test_keys_too_wide_for_one_number_are_grouped_the_same():
+    import numpy as np
+
+    from warehouse.ingest.cellsums import _groups
+
+    keys = np.array([[2**40, 5, -1], [1, 5, 2], [2**40, 5, -1], [1, 2**40, 2]], dtype=np.int64)
+    order, starts, distinct = _groups(keys)
+    assert sorted(map(tuple, distinct.tolist())) == sorted({tuple(k) for k in keys.tolist()})
+    assert len(starts) == 3

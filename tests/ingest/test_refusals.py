@@ -181,3 +181,42 @@ def test_a_refused_file_among_good_ones_keeps_the_good_ones(cli, location, tmp_p
                                              "map it in a layout ([missing] words) or use --skip-bad"]
     after = everything(location)
     assert after["runs"] == before["runs"] + 1 and after["imports"] == before["imports"] + 1
+
+
+def test_json_object_with_a_name_twice_is_refused(cli, location, tmp_path, before):
+    # RFC 8259 section 4: the names within an object SHOULD be unique; readers disagree on which
+    # value wins when they are not, so the line is refused instead of guessed at
+    text = ('{"solver": "s", "group": "g1", "instance": "a", "seed": 1, "pallets": 3}\n'
+            '{"solver": "s", "group": "g1", "instance": "a", "seed": 2, "pallets": 3, "pallets": 4}\n')
+    path = write(tmp_path / "twice.jsonl", text)
+    assert f"{path} line 2, field pallets: the name appears twice in this object" in refusal(cli, path)
+    assert everything(location) == before
+
+
+@pytest.mark.skipif(__import__("conftest").ON_POSTGRES, reason="a SQLite page limit stands in for a full disk")
+@pytest.mark.parametrize("rows", [2_000, 60_000])
+def test_a_full_disk_is_one_line_and_leaves_no_trace(location, tmp_path, before, rows):
+    from sqlalchemy import event
+
+    from warehouse.errors import StorageError
+    from warehouse.ingest.loader import load_file
+    from warehouse.store.connect import open_warehouse
+
+    body = "".join(f"stacker,1.6,g{k % 20},i{k % 300},{k // 300},ok,,{k % 50}\n" for k in range(rows))
+    path = write(tmp_path / "more.csv", H + body)
+    wh = open_warehouse(location)
+    try:
+        @event.listens_for(wh.engine, "connect")
+        def limit(dbapi_conn, _record):  # no room beyond the pages the file has now
+            n = dbapi_conn.execute("PRAGMA page_count").fetchone()[0]
+            dbapi_conn.execute(f"PRAGMA max_page_count = {n + 2}")
+
+        wh.engine.dispose()
+        with pytest.raises(StorageError) as err:
+            load_file(wh, path, "more")
+        assert str(err.value).startswith(f"cannot write to warehouse {wh.display}: database or disk is full; "
+                                         f"nothing from {path} was stored")
+        assert "\n" not in str(err.value)
+    finally:
+        wh.close()
+    assert everything(location) == before

@@ -3,14 +3,17 @@
 A cell is one (solver, instance, host) of one import, per metric slot. Each chunk is reduced to
 its cells at once (sorting by cell, then numpy's reduceat), and the reduced cells of successive
 chunks are merged again whenever they pile up, so memory follows the number of cells, never the
-number of runs. The rows are the ones store.cells.write_rows takes, column for column.
+number of runs. The rows are the ones store.cells.write_rows takes, column for column. (This
+module leaves store.cells, and with it pandas, unimported: a plain load does not need them.)
 """
 from __future__ import annotations
 
 import numpy as np
 
-from ..store import cells
+from ..store import schema as S
 
+# the cell_stats columns in table order (the order store.cells writes them in too)
+COLUMNS = [c.name for c in S.cell_stats.columns]
 INTS = ("n", "n_ok", "n_fail", "n_fail_v", "id_sum", "id_max")
 FLOATS = ("sum_ok", "sq_ok", "min_ok", "max_ok", "sum_fail_v")
 MERGE_AT = 200_000  # reduced cell rows kept per slot before they are merged again
@@ -18,12 +21,62 @@ MERGE_AT = 200_000  # reduced cell rows kept per slot before they are merged aga
 
 def _groups(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Sort order, group starts and the distinct key rows of an (n, 3) int64 key table."""
-    order = np.lexsort(keys.T[::-1])
-    sk = keys[order]
-    change = np.ones(len(sk), dtype=bool)
-    change[1:] = np.any(sk[1:] != sk[:-1], axis=1)
+    lo = keys.min(axis=0)
+    span = keys.max(axis=0) - lo + 1
+    if float(span[0]) * float(span[1]) * float(span[2]) < 2.0**62:  # one int64 key: one sort
+        k = keys - lo
+        code = (k[:, 0] * span[1] + k[:, 1]) * span[2] + k[:, 2]
+        order = np.argsort(code, kind="stable")
+        sc = code[order]
+        change = np.ones(len(sc), dtype=bool)
+        change[1:] = sc[1:] != sc[:-1]
+    else:
+        order = np.lexsort(keys.T[::-1])
+        sk = keys[order]
+        change = np.ones(len(sk), dtype=bool)
+        change[1:] = np.any(sk[1:] != sk[:-1], axis=1)
     starts = np.flatnonzero(change)
-    return order, starts, sk[starts]
+    return order, starts, keys[order[starts]]
+
+
+class Reduced:
+    """One chunk summed by cell: the cells' keys, counts and id sums, and the sums per value."""
+
+    __slots__ = ("keys", "common", "values")
+
+    def __init__(self, keys: np.ndarray, common: dict, values: dict):
+        self.keys, self.common, self.values = keys, common, values
+
+
+def reduce_chunk(keys: np.ndarray, ordinals: np.ndarray, status: np.ndarray, values: dict) -> Reduced:
+    """Sum one chunk by cell (needs no database: keys may be the chunk's own codes)."""
+    order, starts, cell_keys = _groups(keys)
+    ok_status = (status == 0)[order]
+    bad = ~ok_status
+    ords = ordinals.astype(np.int64)[order]
+    common = {
+        "n": np.diff(np.append(starts, len(order))).astype(np.int64),
+        "n_fail": np.add.reduceat(bad.astype(np.int64), starts),
+        "ord_sum": np.add.reduceat(ords, starts),
+        "ord_max": np.maximum.reduceat(ords, starts),
+    }
+    per_value = {}
+    for name, v in values.items():
+        v = np.asarray(v, dtype=np.float64)[order]
+        has = ~np.isnan(v)
+        ok = ok_status & has
+        failed_v = bad & has
+        v0 = np.where(has, v, 0.0)
+        per_value[name] = dict(
+            n_ok=np.add.reduceat(ok.astype(np.int64), starts),
+            n_fail_v=np.add.reduceat(failed_v.astype(np.int64), starts),
+            sum_ok=np.add.reduceat(np.where(ok, v0, 0.0), starts),
+            sq_ok=np.add.reduceat(np.where(ok, v0 * v0, 0.0), starts),
+            min_ok=np.minimum.reduceat(np.where(ok, v0, np.inf), starts),
+            max_ok=np.maximum.reduceat(np.where(ok, v0, -np.inf), starts),
+            sum_fail_v=np.add.reduceat(np.where(failed_v, v0, 0.0), starts),
+        )
+    return Reduced(cell_keys, common, per_value)
 
 
 class CellSums:
@@ -37,34 +90,28 @@ class CellSums:
         if len(ids) == 0:
             return
         keys = np.stack([solver.astype(np.int64), instance.astype(np.int64), host.astype(np.int64)], axis=1)
-        order, starts, cell_keys = _groups(keys)
-        ok_status = (status == 0)[order]
-        bad = ~ok_status
-        ids_o = ids.astype(np.int64)[order]
-        common = {
-            "n": np.diff(np.append(starts, len(order))).astype(np.int64),
-            "n_fail": np.add.reduceat(bad.astype(np.int64), starts),
-            "id_sum": np.add.reduceat(ids_o, starts),
-            "id_max": np.maximum.reduceat(ids_o, starts),
-        }
-        for slot, v in values.items():
-            v = np.asarray(v, dtype=np.float64)[order]
-            has = ~np.isnan(v)
-            ok = ok_status & has
-            failed_v = bad & has
-            v0 = np.where(has, v, 0.0)
-            stats = dict(common)
-            stats.update(
-                n_ok=np.add.reduceat(ok.astype(np.int64), starts),
-                n_fail_v=np.add.reduceat(failed_v.astype(np.int64), starts),
-                sum_ok=np.add.reduceat(np.where(ok, v0, 0.0), starts),
-                sq_ok=np.add.reduceat(np.where(ok, v0 * v0, 0.0), starts),
-                min_ok=np.minimum.reduceat(np.where(ok, v0, np.inf), starts),
-                max_ok=np.maximum.reduceat(np.where(ok, v0, -np.inf), starts),
-                sum_fail_v=np.add.reduceat(np.where(failed_v, v0, 0.0), starts),
-            )
-            self.parts.setdefault(slot, []).append((cell_keys, stats))
-            self.sizes[slot] = self.sizes.get(slot, 0) + len(cell_keys)
+        self.add_reduced(reduce_chunk(keys, ids.astype(np.int64), status, values), base=0)
+
+    def add_reduced(self, chunk: "Reduced", base: int, key_maps: tuple | None = None,
+                    slot_of: dict | None = None) -> None:
+        """A chunk reduced by `reduce_chunk`: its keys mapped to ids, its ordinals shifted by `base`.
+
+        `key_maps` are three arrays taking the chunk's codes to solver, instance and host ids (-1
+        for no host); `slot_of` takes the value names to metric slots.
+        """
+        keys = chunk.keys
+        if key_maps is not None:
+            keys = np.stack([np.asarray(m, dtype=np.int64)[keys[:, i]] for i, m in enumerate(key_maps)], axis=1)
+        common = dict(chunk.common)
+        ords_sum, ords_max = common.pop("ord_sum"), common.pop("ord_max")
+        common["id_sum"] = ords_sum + common["n"] * np.int64(base)
+        common["id_max"] = ords_max + np.int64(base)
+        for name, stats in chunk.values.items():
+            slot = slot_of[name] if slot_of is not None else name
+            full = dict(common)
+            full.update(stats)
+            self.parts.setdefault(slot, []).append((keys, full))
+            self.sizes[slot] = self.sizes.get(slot, 0) + len(keys)
             if self.sizes[slot] > MERGE_AT and len(self.parts[slot]) > 1:
                 self._merge(slot)
 
@@ -84,29 +131,80 @@ class CellSums:
         self.parts[slot] = [(cell_keys, merged)]
         self.sizes[slot] = len(cell_keys)
 
-    def rows(self, campaign_id: int, import_id: int) -> list[tuple]:
-        out: list[tuple] = []
+    def write_sqlite(self, raw, campaign_id: int, import_id: int) -> int:
+        """Insert the cells through a SQLite driver connection, many rows per statement.
+
+        As for runs: whole-valued REALs land as INTEGERs in the integer columns and NaN as NULL.
+        """
+        names = COLUMNS
+        width = len(names)
+        per = 200
+        one = "(" + ", ".join("?" * width) + ")"
+        head = f"INSERT INTO cell_stats ({', '.join(names)}) VALUES "
+        written = 0
         for slot in sorted(self.parts):
             self._merge(slot)
             keys, s = self.parts[slot][0]
             m = len(keys)
-
-            def maybe(values: np.ndarray, present: np.ndarray) -> list:
-                obj = values.astype(object)
-                obj[~present] = None
-                return obj.tolist()
-
+            if max(int(np.abs(s["id_sum"]).max(initial=0)), int(s["id_max"].max(initial=0))) >= 2**53:
+                raw.executemany(head + one, [r for r in self._slot_rows(slot, campaign_id, import_id)])
+                written += m
+                continue
+            t = np.empty((m, width), dtype=np.float64)
             has_ok = s["n_ok"] > 0
-            host = keys[:, 2]
-            columns = {
-                "campaign_id": [int(campaign_id)] * m, "import_id": [int(import_id)] * m,
-                "solver_id": keys[:, 0].tolist(), "instance_id": keys[:, 1].tolist(),
-                "host_id": maybe(host, host >= 0), "slot": [int(slot)] * m,
-                "sum_ok": maybe(s["sum_ok"], has_ok), "sq_ok": maybe(s["sq_ok"], has_ok),
-                "min_ok": maybe(s["min_ok"], has_ok), "max_ok": maybe(s["max_ok"], has_ok),
-                "sum_fail_v": maybe(s["sum_fail_v"], s["n_fail_v"] > 0),
-            }
-            for name in INTS:
-                columns[name] = s[name].tolist()
-            out.extend(zip(*(columns[c] for c in cells.COLUMNS)))
+            for i, name in enumerate(names):
+                if name == "campaign_id":
+                    t[:, i] = campaign_id
+                elif name == "import_id":
+                    t[:, i] = import_id
+                elif name == "solver_id":
+                    t[:, i] = keys[:, 0]
+                elif name == "instance_id":
+                    t[:, i] = keys[:, 1]
+                elif name == "host_id":
+                    t[:, i] = np.where(keys[:, 2] >= 0, keys[:, 2], np.nan)
+                elif name == "slot":
+                    t[:, i] = slot
+                elif name in ("sum_ok", "sq_ok", "min_ok", "max_ok"):
+                    t[:, i] = np.where(has_ok, s[name], np.nan)
+                elif name == "sum_fail_v":
+                    t[:, i] = np.where(s["n_fail_v"] > 0, s[name], np.nan)
+                else:
+                    t[:, i] = s[name]
+            full = m // per * per
+            if full:
+                raw.executemany(head + ", ".join([one] * per), t[:full].reshape(-1, per * width).tolist())
+            if m > full:
+                raw.executemany(head + one, t[full:].tolist())
+            written += m
+        return written
+
+    def rows(self, campaign_id: int, import_id: int) -> list[tuple]:
+        out: list[tuple] = []
+        for slot in sorted(self.parts):
+            out.extend(self._slot_rows(slot, campaign_id, import_id))
         return out
+
+    def _slot_rows(self, slot: int, campaign_id: int, import_id: int) -> list[tuple]:
+        self._merge(slot)
+        keys, s = self.parts[slot][0]
+        m = len(keys)
+
+        def maybe(values: np.ndarray, present: np.ndarray) -> list:
+            obj = values.astype(object)
+            obj[~present] = None
+            return obj.tolist()
+
+        has_ok = s["n_ok"] > 0
+        host = keys[:, 2]
+        columns = {
+            "campaign_id": [int(campaign_id)] * m, "import_id": [int(import_id)] * m,
+            "solver_id": keys[:, 0].tolist(), "instance_id": keys[:, 1].tolist(),
+            "host_id": maybe(host, host >= 0), "slot": [int(slot)] * m,
+            "sum_ok": maybe(s["sum_ok"], has_ok), "sq_ok": maybe(s["sq_ok"], has_ok),
+            "min_ok": maybe(s["min_ok"], has_ok), "max_ok": maybe(s["max_ok"], has_ok),
+            "sum_fail_v": maybe(s["sum_fail_v"], s["n_fail_v"] > 0),
+        }
+        for name in INTS:
+            columns[name] = s[name].tolist()
+        return list(zip(*(columns[c] for c in COLUMNS)))

@@ -6,6 +6,8 @@ distinct names touch the dimension tables, and runs are written with executemany
 runs table's secondary indexes aside inside the transaction and builds them again at the end
 (much cheaper than keeping them up to date row by row); if the rebuilt unique key finds a run
 twice, the load starts over the ordinary way so that the duplicates are reported one by one.
+Parsing and checking run in a helper thread (pyarrow and numpy let go of Python's lock) while
+the main thread writes; each chunk is also summed by cell there, for the cell summaries.
 """
 from __future__ import annotations
 
@@ -25,11 +27,10 @@ from sqlalchemy.exc import IntegrityError, OperationalError
 
 from .. import __version__
 from ..errors import InputError, StorageError
-from ..store import cells
 from ..store import schema as S
 from ..store.connect import Warehouse
 from . import values as V
-from .cellsums import CellSums
+from .cellsums import CellSums, reduce_chunk
 from .layout import FIELDS, NAME_LIMIT, Layout
 from .sources import SourceInfo, first_pass, read_delimited, read_header, read_jsonl, read_parquet
 
@@ -184,6 +185,7 @@ class Rows:
     has_finished: np.ndarray
     metrics: dict[str, np.ndarray]
     keys: dict[str, tuple[np.ndarray, list[tuple]]] = field(default_factory=dict)
+    cells: object = None  # the chunk summed by cell (cellsums.Reduced), keyed by the codes above
 
     def __len__(self) -> int:
         return len(self.lines)
@@ -203,6 +205,9 @@ class Rows:
         for what, cols in (("solver", ("solver", "version", "build", "params")),
                            ("instance", ("family", "group", "instance", "instance_hash")), ("host", ("host",))):
             self.keys[what] = V.factorize([self.names[f] for f in cols], m)
+        if m:
+            codes = np.stack([self.keys[w][0].astype(np.int64) for w in ("solver", "instance", "host")], axis=1)
+            self.cells = reduce_chunk(codes, np.arange(m, dtype=np.int64), self.status, self.metrics)
 
     def name(self, f: str, j: int) -> str:
         v = self.names[f]
@@ -545,7 +550,7 @@ class _Writer:
             marks = "(" + ", ".join(["?", str(int(campaign_id)), str(int(import_id))] + ["?"] * (len(self.cols) - 3)) + ")"
             self.width = len(self.cols) - 2
             limit = self.raw.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if hasattr(self.raw, "getlimit") else 999
-            self.per_statement = max(1, min(256, limit // self.width))
+            self.per_statement = max(1, min(4000, limit // self.width))
             head = f"INSERT OR IGNORE INTO runs ({names}) VALUES "
             self.sql_one = head + marks
             self.sql_many = head + ", ".join([marks] * self.per_statement)
@@ -828,10 +833,17 @@ def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | N
             return FileReport(file=shown, status="duplicate", campaign=campaign,
                               message="the same bytes were loaded by another process just now; nothing to do")
         raise StorageError(f"warehouse {wh.display} refused a write: {_db_reason(exc)}; nothing from {shown} was stored") from None
+    except Exception as exc:  # the driver's own cursor (bulk writes) raises its errors unwrapped
+        if not _is_driver_error(exc):
+            raise
+        raise StorageError(f"cannot write to warehouse {wh.display}: {_db_reason(exc)}; nothing from {shown} was stored") from None
     if report.status == "loaded" and wh.is_sqlite and report.rows_loaded >= 10_000:
-        with wh.write() as conn:
-            conn.exec_driver_sql("PRAGMA analysis_limit = 1000")
-            conn.exec_driver_sql("ANALYZE")
+        try:  # fresh statistics for the query planner; the load itself is already committed
+            with wh.write() as conn:
+                conn.exec_driver_sql("PRAGMA analysis_limit = 1000")
+                conn.exec_driver_sql("ANALYZE")
+        except (OperationalError, sqlite3.Error):
+            pass
     return report
 
 
@@ -882,18 +894,20 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                     writer = _Writer(conn, wh.dialect, slots, campaign_id, import_id)
                 m = len(rows)
                 codes, keys = rows.keys["solver"]
-                solver = np.asarray(dims.solver_ids(keys), dtype=np.int64)[codes]
+                solver_of = np.asarray(dims.solver_ids(keys), dtype=np.int64)
+                solver = solver_of[codes]
                 codes, keys = rows.keys["instance"]
-                instance = np.asarray(dims.instance_ids(keys, fl.warnings), dtype=np.int64)[codes]
+                instance_of = np.asarray(dims.instance_ids(keys, fl.warnings), dtype=np.int64)
+                instance = instance_of[codes]
                 codes, keys = rows.keys["host"]
-                hid = dims.host_ids([k[0] for k in keys])
-                host = np.asarray([h or 0 for h in hid], dtype=np.int64)[codes]
-                has_host = np.asarray([h is not None for h in hid], dtype=bool)[codes]
+                host_of = np.asarray([-1 if h is None else h for h in dims.host_ids([k[0] for k in keys])], dtype=np.int64)
+                host = host_of[codes]
+                has_host = host >= 0
                 ids = np.arange(next_id, next_id + m, dtype=np.int64)
                 next_id += m
                 writer.write(ids, rows, solver, instance, host, has_host, {s: k for k, s in metric_slots.items()})
-                summaries.add(ids, solver, instance, np.where(has_host, host, -1), rows.status,
-                              {s: rows.metrics[k] for k, s in metric_slots.items()})
+                summaries.add_reduced(rows.cells, base=int(ids[0]), key_maps=(solver_of, instance_of, host_of),
+                                      slot_of=metric_slots)
                 if set_aside:
                     loaded += m  # no key to collide on until the indexes are back; checked there
                 else:
@@ -936,9 +950,16 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
             conn.execute(update(S.imports).where(S.imports.c.id == import_id).values(
                 rows_read=read, rows_loaded=loaded, rows_rejected=rejected, rows_skipped=skipped))
             if skipped:  # some rows did not go in: sum the cells from what was stored
+                from ..store import cells
+
                 cells.from_runs(conn, import_id, first_id, next_id - 1)
             else:
-                cells.write_rows(conn, wh.dialect, summaries.rows(campaign_id, import_id))
+                if wh.is_sqlite:
+                    summaries.write_sqlite(conn.connection.driver_connection, campaign_id, import_id)
+                else:
+                    from ..store import cells
+
+                    cells.write_rows(conn, wh.dialect, summaries.rows(campaign_id, import_id))
             report.rows_read, report.rows_loaded = read, loaded
             report.rows_rejected, report.rows_skipped = rejected, skipped
             report.import_id = import_id
@@ -964,6 +985,14 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
         parts.append(f"{skipped} already stored, skipped")
     report.message = ", ".join(parts)
     return report
+
+
+def _is_driver_error(exc: BaseException) -> bool:
+    """sqlite3's errors, and psycopg's once a server was used (psycopg is not imported for this)."""
+    import sys
+
+    psycopg = sys.modules.get("psycopg")
+    return isinstance(exc, sqlite3.Error) or (psycopg is not None and isinstance(exc, psycopg.Error))
 
 
 def _db_reason(exc: Exception) -> str:

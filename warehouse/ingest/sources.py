@@ -363,9 +363,13 @@ def _read_jsonl(info: SourceInfo) -> Iterator[tuple[pa.Table, np.ndarray]]:
             if not text:
                 continue
             try:
-                obj = json.loads(text)
+                obj = json.loads(text, object_pairs_hook=_one_value_per_key)
             except json.JSONDecodeError as exc:
                 raise InputError(f"{info.name} line {n}: broken JSON ({exc.msg} at column {exc.colno})") from None
+            except _SameKeyTwice as exc:
+                raise InputError(
+                    f"{info.name} line {n}, field {exc.key}: the name appears twice in this object; "
+                    "which value is meant cannot be told, keep one") from None
             if not isinstance(obj, dict):
                 kind = "an array" if isinstance(obj, list) else f"a {type(obj).__name__}"
                 raise InputError(f"{info.name} line {n}: is {kind}; each line must be one JSON object")
@@ -376,6 +380,24 @@ def _read_jsonl(info: SourceInfo) -> Iterator[tuple[pa.Table, np.ndarray]]:
                 rows, lines = [], []
     if rows:
         yield _json_table(info, rows, lines), np.asarray(lines, dtype=np.int64)
+
+
+class _SameKeyTwice(Exception):
+    def __init__(self, key: str):
+        self.key = key
+
+
+def _one_value_per_key(pairs: list) -> dict:
+    # RFC 8259 section 4: names within an object SHOULD be unique; readers differ on which value
+    # wins when they are not, so such an object is refused rather than guessed at
+    obj = dict(pairs)
+    if len(obj) != len(pairs):
+        seen: set = set()
+        for k, _ in pairs:
+            if k in seen:
+                raise _SameKeyTwice(k)
+            seen.add(k)
+    return obj
 
 
 def _to_text(v) -> str:

@@ -1,12 +1,10 @@
 """Keeping the cell summaries (schema.cell_stats) in step with the runs.
 
-The loader adds each file's cells from the chunks it writes (pandas, no second pass over the
-runs); retraction and its undo rebuild the cells they touch from the live runs, in SQL.
+The loader adds each file's cells from the chunks it writes (ingest/cellsums.py, no second pass
+over the runs); retraction and its undo rebuild the cells they touch from the live runs, in SQL.
 """
 from __future__ import annotations
 
-import numpy as np
-import pandas as pd
 from sqlalchemy import and_, case, delete, func, insert, select
 
 from . import schema as S
@@ -47,64 +45,6 @@ def cell_aggregates():
             func.sum(C.c.id_sum).label("id_sum"), func.max(C.c.id_max).label("id_max")]
 
 
-class Accumulator:
-    """Collects a file's cell sums chunk by chunk; `rows()` gives the final cell rows."""
-
-    def __init__(self):
-        self.parts: list[pd.DataFrame] = []
-
-    def add(self, ids: np.ndarray, solver: np.ndarray, instance: np.ndarray, host: np.ndarray,
-            status: np.ndarray, values: dict[int, np.ndarray]) -> None:
-        """One chunk's written runs: ids, keys, status codes, and the metric values per slot."""
-        if len(ids) == 0:
-            return
-        base = pd.DataFrame({"solver_id": solver, "instance_id": instance,
-                             "host_id": np.where(np.isnan(host), -1, host).astype(np.int64),
-                             "id": ids.astype(np.int64)})
-        ok_status = status == 0
-        for slot, v in values.items():
-            v = np.asarray(v, dtype=float)
-            has = ~np.isnan(v)
-            ok = ok_status & has
-            bad = ~ok_status
-            f = base.assign(
-                slot=slot, n=1, n_ok=ok.astype(np.int64), sum_ok=np.where(ok, v, 0.0),
-                sq_ok=np.where(ok, v * v, 0.0), min_ok=np.where(ok, v, np.inf), max_ok=np.where(ok, v, -np.inf),
-                n_fail=bad.astype(np.int64), n_fail_v=(bad & has).astype(np.int64),
-                sum_fail_v=np.where(bad & has, v, 0.0))
-            g = f.groupby(["slot", *KEY], sort=False).agg(
-                n=("n", "sum"), n_ok=("n_ok", "sum"), sum_ok=("sum_ok", "sum"), sq_ok=("sq_ok", "sum"),
-                min_ok=("min_ok", "min"), max_ok=("max_ok", "max"), n_fail=("n_fail", "sum"),
-                n_fail_v=("n_fail_v", "sum"), sum_fail_v=("sum_fail_v", "sum"), id_sum=("id", "sum"),
-                id_max=("id", "max"))
-            self.parts.append(g)
-
-    def rows(self, campaign_id: int, import_id: int) -> list[tuple]:
-        if not self.parts:
-            return []
-        allp = pd.concat(self.parts)
-        g = allp.groupby(level=[0, 1, 2, 3], sort=False).agg(
-            {**{c: "sum" for c in SUMS}, "min_ok": "min", "max_ok": "max", "id_max": "max"}).reset_index()
-        g["host_id"] = g["host_id"].astype(object).where(g["host_id"] >= 0, None)
-        for c in ("sum_ok", "sq_ok", "min_ok", "max_ok"):
-            g[c] = g[c].astype(object).where(g["n_ok"] > 0, None)
-        g["sum_fail_v"] = g["sum_fail_v"].astype(object).where(g["n_fail_v"] > 0, None)
-        g["campaign_id"] = campaign_id
-        g["import_id"] = import_id
-        out = g[COLUMNS]
-        cols = [out[c].tolist() for c in COLUMNS]
-        ints = {"campaign_id", "import_id", "solver_id", "instance_id", "slot", "n", "n_ok", "n_fail", "n_fail_v",
-                "id_sum", "id_max"}
-        for i, c in enumerate(COLUMNS):
-            if c in ints:
-                cols[i] = [int(x) for x in cols[i]]
-            elif c == "host_id":
-                cols[i] = [None if x is None else int(x) for x in cols[i]]
-            else:
-                cols[i] = [None if x is None else float(x) for x in cols[i]]
-        return list(zip(*cols))
-
-
 def write_rows(conn, dialect: str, rows: list[tuple]) -> None:
     if not rows:
         return
@@ -120,14 +60,16 @@ def write_rows(conn, dialect: str, rows: list[tuple]) -> None:
 
 
 def touched(conn, run_condition) -> list[tuple]:
-    """The (import, solver, instance) keys of the cells holding runs that match the condition."""
-    return conn.execute(select(R.c.import_id, R.c.solver_id, R.c.instance_id).where(run_condition).distinct()).all()
+    """The (import, solver, instance, campaign) keys of the cells holding runs that match."""
+    return conn.execute(select(R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.campaign_id)
+                        .where(run_condition).distinct()).all()
 
 
 def rebuild(conn, keys: list[tuple]) -> int:
-    """Recompute the cells of these (import, solver, instance) keys from the live runs."""
+    """Recompute the cells of these (import, solver, instance, campaign) keys from the live runs."""
     if not keys:
         return 0
+    campaigns = sorted({k[3] for k in keys})
     imports = sorted({k[0] for k in keys})
     solvers = sorted({k[1] for k in keys})
     instances = sorted({k[2] for k in keys})
@@ -135,7 +77,9 @@ def rebuild(conn, keys: list[tuple]) -> int:
     for i in range(0, len(instances), 5000):
         part = instances[i:i + 5000]
         rect_c = and_(C.c.import_id.in_(imports), C.c.solver_id.in_(solvers), C.c.instance_id.in_(part))
-        rect_r = and_(R.c.import_id.in_(imports), R.c.solver_id.in_(solvers), R.c.instance_id.in_(part))
+        # campaign, solver, instance: the leading columns of the runs' unique key, so the index serves it
+        rect_r = and_(R.c.campaign_id.in_(campaigns), R.c.solver_id.in_(solvers), R.c.instance_id.in_(part),
+                      R.c.import_id.in_(imports))
         slots = [r[0] for r in conn.execute(select(C.c.slot).where(rect_c).distinct())]
         conn.execute(delete(C).where(rect_c))
         for slot in slots:

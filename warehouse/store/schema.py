@@ -148,7 +148,6 @@ runs = Table(
     Column("retraction_id", Integer, ForeignKey("retractions.id"), nullable=True),
     *[Column(name, Float, nullable=True) for name in VALUE_COLUMNS],
     Index("ux_runs_key", "campaign_id", "solver_id", "instance_id", "seed", "replicate", unique=True),
-    Index("ix_runs_solver_instance", "solver_id", "instance_id"),
     Index("ix_runs_finished", "finished_at"),
     # withdrawn runs are few: a partial index finds them without costing the loads anything
     Index("ix_runs_withdrawn", "retraction_id", sqlite_where=text("retraction_id IS NOT NULL"),
