@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import case, func, select
+from sqlalchemy import and_, case, func, select
 
 from .errors import DesignError, InputError
 from .select.resolve import Dims, cells_can_answer, condition
@@ -105,19 +105,31 @@ def _metric(dims: Dims, metric: str | None) -> tuple[str, int, str, str]:
     return metric, slot, sense, unit
 
 
-def _cell_query(cond, v):
+BASE_COLS = ["n", "n_ok", "sum_ok", "sq_ok", "n_fail", "id_sum", "id_max"]
+EXTREME_COLS = ["min_ok", "max_ok", "n_fail_v", "sum_fail_v"]  # only the penalize and worst policies need them
+
+
+def _pick(aggs, extremes: bool):
+    names = BASE_COLS + (EXTREME_COLS if extremes else [])
+    by = {a.name: a for a in aggs}
+    return [by[n] for n in names], names
+
+
+def _cell_query(cond, v, extremes: bool):
     from .store.cells import run_aggregates
 
-    return (select(R.c.solver_id, R.c.instance_id, R.c.host_id, R.c.campaign_id, *run_aggregates(v))
-            .where(cond).group_by(R.c.solver_id, R.c.instance_id, R.c.host_id, R.c.campaign_id))
+    cols, names = _pick(run_aggregates(v), extremes)
+    return (select(R.c.solver_id, R.c.instance_id, *cols).where(cond)
+            .group_by(R.c.solver_id, R.c.instance_id)), names
 
 
-def _summary_query(cond, slot: int):
+def _summary_query(cond, slot: int, extremes: bool):
     """The same cells from the cell summaries: work in proportion to cells, not runs."""
     from .store.cells import C, cell_aggregates
 
-    return (select(C.c.solver_id, C.c.instance_id, C.c.host_id, C.c.campaign_id, *cell_aggregates())
-            .where(cond, C.c.slot == slot).group_by(C.c.solver_id, C.c.instance_id, C.c.host_id, C.c.campaign_id))
+    cols, names = _pick(cell_aggregates(), extremes)
+    return (select(C.c.solver_id, C.c.instance_id, *cols).where(cond, C.c.slot == slot)
+            .group_by(C.c.solver_id, C.c.instance_id)), names
 
 
 def _trimmed(values: np.ndarray, share: float) -> float:
@@ -133,24 +145,27 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
     metric, slot, sense, unit = _metric(dims, metric)
     cond = condition(sl, dims, conn)
     v = R.c[f"v{slot}"]
+    extremes = st["failures"] != "drop"
     if st["replicates"] == "mean" and cells_can_answer(sl):
-        query = _summary_query(condition(sl, dims, conn, table=S.cell_stats), slot)
+        table = S.cell_stats
+        where = and_(condition(sl, dims, conn, table=table), table.c.slot == slot)
+        query, names = _summary_query(condition(sl, dims, conn, table=table), slot, extremes)
     else:
-        query = _cell_query(cond, v)
-    raw = rows_frame(conn.execute(query),
-                       columns=["solver_id", "instance_id", "host_id", "campaign_id", "n", "n_ok", "sum_ok", "sq_ok",
-                                "min_ok", "max_ok", "n_fail", "n_fail_v", "sum_fail_v", "id_sum", "id_max"])
-    if raw.empty:
+        table, where = R, cond
+        query, names = _cell_query(cond, v, extremes)
+    agg = rows_frame(conn.execute(query), columns=["solver_id", "instance_id", *names])
+    if agg.empty:
         raise DesignError(f"no runs in slice '{sl.text or '(everything)'}'; see blockyard inventory for what is stored")
-    for c in ("sum_ok", "sq_ok", "min_ok", "max_ok", "sum_fail_v"):
-        raw[c] = pd.to_numeric(raw[c], errors="coerce").astype(float)
-    hosts = {dims.treatment(s): sorted({dims.hosts.get(h, "(unknown)") if h is not None and not pd.isna(h) else "(unknown)"
-                                        for h in g["host_id"]}) for s, g in raw.groupby("solver_id")}
-    campaigns = {dims.treatment(s): sorted({dims.campaigns[c] for c in g["campaign_id"]}) for s, g in raw.groupby("solver_id")}
-    agg = raw.groupby(["solver_id", "instance_id"], as_index=False).agg(
-        n=("n", "sum"), n_ok=("n_ok", "sum"), sum_ok=("sum_ok", "sum"), sq_ok=("sq_ok", "sum"),
-        min_ok=("min_ok", "min"), max_ok=("max_ok", "max"), n_fail=("n_fail", "sum"),
-        n_fail_v=("n_fail_v", "sum"), sum_fail_v=("sum_fail_v", "sum"), id_sum=("id_sum", "sum"), id_max=("id_max", "max"))
+    for c in EXTREME_COLS:
+        if c not in agg:
+            agg[c] = np.nan
+    # which hosts and campaigns each treatment's runs came from: a small second query
+    seen = rows_frame(conn.execute(select(table.c.solver_id, table.c.host_id, table.c.campaign_id).where(where).distinct()),
+                      columns=["solver_id", "host_id", "campaign_id"])
+    hosts = {dims.treatment(int(s)): sorted({dims.hosts.get(int(h), "(unknown)") if not pd.isna(h) else "(unknown)"
+                                             for h in g["host_id"]}) for s, g in seen.groupby("solver_id")}
+    campaigns = {dims.treatment(int(s)): sorted({dims.campaigns[int(c)] for c in g["campaign_id"]})
+                 for s, g in seen.groupby("solver_id")}
     runs_in_slice = int(agg["n"].sum())
     max_run_id = int(agg["id_max"].max())
     notes: list[str] = []
@@ -164,8 +179,8 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
     # instance and block labels
     inst = _instances(conn, sorted(agg["instance_id"].unique().tolist()))
     agg = agg.merge(inst, on="instance_id", how="left")
-    agg["treatment"] = [dims.treatment(s) for s in agg["solver_id"]]
-    agg["block"] = [dims.block(g) for g in agg["group_id"]]
+    agg["treatment"] = agg["solver_id"].map({int(s): dims.treatment(int(s)) for s in agg["solver_id"].unique()})
+    agg["block"] = agg["group_id"].map({int(g): dims.block(int(g)) for g in agg["group_id"].unique()})
     conflicts = []
     dup = inst.groupby(["group_id", "instance"])["content_hash"].nunique()
     for (gid, name), k in dup[dup > 1].items():
@@ -217,11 +232,23 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
 
 
 def rows_frame(result, columns: list[str]) -> pd.DataFrame:
-    """A query result as a frame, column by column (much quicker than row objects one by one)."""
-    rows = result.all()
+    """A query result as a frame, column by column (much quicker than row objects one by one).
+
+    Numbers come back as the driver gives them (PostgreSQL sums of integers are Decimals), so
+    each column is made numeric where it can be.
+    """
+    rows = result.cursor.fetchall() if getattr(result, "cursor", None) is not None else result.all()
+    result.close()
     if not rows:
         return pd.DataFrame({c: [] for c in columns})
-    return pd.DataFrame(dict(zip(columns, zip(*rows))))
+    frame = pd.DataFrame(dict(zip(columns, (np.asarray(col) if not isinstance(col[0], (str, bytes)) else col
+                                            for col in zip(*rows)))))
+    for c in frame.columns:
+        if frame[c].dtype == object:
+            conv = pd.to_numeric(frame[c], errors="coerce")
+            if conv.notna().sum() == frame[c].notna().sum():
+                frame[c] = conv
+    return frame
 
 
 def _instances(conn, ids: list[int]) -> pd.DataFrame:
@@ -313,13 +340,25 @@ def _policy_values(conn, cond, v, agg: pd.DataFrame, st: dict, sense: str, notes
 
 
 def _fingerprint(agg: pd.DataFrame, st: dict, metric: str, sl: Slice) -> str:
-    """A hash over every contributing cell's runs (id sum, count) and values (sums), and the settings."""
-    cols = ["treatment", "block", "instance", "content_hash", "n", "n_ok", "n_fail", "id_sum"]
-    frame = agg[cols].copy()
-    for c in ("sum_ok", "sq_ok", "sum_fail_v"):
-        frame[c] = [None if pd.isna(x) else float(f"{x:.10g}") for x in agg[c]]
-    frame = frame.sort_values(["treatment", "block", "instance", "content_hash"])
-    payload = json.dumps({"metric": metric, "settings": st, "slice": sl.to_dict(),
-                          "cells": frame.astype(object).where(frame.notna(), None).values.tolist()},
-                         sort_keys=True, default=lambda o: o.item() if hasattr(o, "item") else str(o))
+    """A hash over the contributing runs and values: per treatment and block, the run counts, the
+    sums of run ids and instance ids (a changed content hash is another instance), and weighted
+    value sums of every cell; plus the settings and the slice.
+
+    Any run that arrives, leaves or changes value moves an id sum or a value sum; the work is
+    a few vectorized sums over the cells, however many there are.
+    """
+    f = agg[["treatment", "block", "instance_id", "n", "n_ok", "n_fail", "id_sum"]].copy()
+    w = (f["instance_id"].to_numpy(np.float64) % 9973) + 1.0
+    for c in ("sum_ok", "sq_ok"):
+        f[c] = np.nan_to_num(agg[c].to_numpy(np.float64))
+    f["w_sum"] = f["sum_ok"] * w
+    f["w_ids"] = f["id_sum"].to_numpy(np.float64) * w
+    g = f.groupby(["treatment", "block"], sort=True).agg(
+        n=("n", "sum"), n_ok=("n_ok", "sum"), n_fail=("n_fail", "sum"), id_sum=("id_sum", "sum"),
+        sum_ok=("sum_ok", "sum"), sq_ok=("sq_ok", "sum"), w_sum=("w_sum", "sum"), w_ids=("w_ids", "sum"),
+        cells=("instance_id", "count"), inst=("instance_id", "sum"))
+    rows = []
+    for (t, b), r in zip(g.index, g.itertuples(index=False)):
+        rows.append([t, b, int(r.n), int(r.n_ok), int(r.n_fail), int(r.id_sum), int(r.cells), int(r.inst), *(float(f"{x:.10g}") for x in (r.sum_ok, r.sq_ok, r.w_sum, r.w_ids))])
+    payload = json.dumps({"metric": metric, "settings": st, "slice": sl.to_dict(), "cells": rows}, sort_keys=True)
     return hashlib.sha256(payload.encode()).hexdigest()

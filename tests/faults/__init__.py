@@ -178,6 +178,16 @@ def another_location(tmp_path: Path, name: str):
         admin.dispose()
 
 
+@contextlib.contextmanager
+def fresh_warehouse(folder: Path, name: str):
+    """An initialised, empty warehouse outside the per-test fixtures, for a battery of tests to share."""
+    from warehouse.store.connect import init_warehouse
+
+    with another_location(folder, name) as location:
+        init_warehouse(location).close()
+        yield location
+
+
 def schema_of(location: str) -> str:
     """The schema a test's PostgreSQL location points at (its search_path option)."""
     from urllib.parse import unquote

@@ -79,12 +79,8 @@ def says_cannot_write(res) -> str:
 
 @sqlite_only
 @pytest.mark.parametrize("rows", [
-    pytest.param(2_000, id="small-load", marks=pytest.mark.xfail(strict=True, reason=(
-        "defect: SQLITE_FULL raised by the raw sqlite3 cursor in loader._Writer is not turned into "
-        "StorageError; the CLI prints 'internal error (OperationalError: database or disk is full)', exit 1"))),
-    pytest.param(60_000, id="large-load-indexes-set-aside", marks=pytest.mark.xfail(strict=True, reason=(
-        "defect: SQLITE_FULL raised by the raw sqlite3 cursor in loader._Writer is not turned into "
-        "StorageError; the CLI prints 'internal error (OperationalError: database or disk is full)', exit 1"))),
+    pytest.param(2_000, id="small-load"),
+    pytest.param(60_000, id="large-load-indexes-set-aside"),
 ])
 def test_a_load_onto_a_full_disk_is_refused_in_one_line(cli, location, tmp_path, stocked, rows):
     path = runs_csv(tmp_path / "more.csv", rows, seed=12)
@@ -99,9 +95,6 @@ def test_a_load_onto_a_full_disk_is_refused_in_one_line(cli, location, tmp_path,
 
 
 @sqlite_only
-@pytest.mark.xfail(strict=True, reason=(
-    "defect: load_file lets sqlite3.OperationalError ('database or disk is full') from the raw "
-    "cursor escape instead of raising StorageError"))
 def test_load_file_on_a_full_disk_raises_storage_error(location, tmp_path, stocked):
     from warehouse.errors import StorageError
     from warehouse.ingest.loader import load_file

@@ -22,7 +22,7 @@ from hypothesis import strategies as st
 
 from conftest import ON_POSTGRES, run_counts
 
-from . import in_process, one_line, raw_engine, runs_csv, sql, table_counts
+from . import fresh_warehouse, in_process, one_line, raw_engine, runs_csv, sql, table_counts
 
 FUZZ = dict(deadline=None, database=None, derandomize=True,
             suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow,
@@ -450,13 +450,11 @@ def argv_for(draw, name: str) -> list[str]:
     return argv
 
 
-@pytest.fixture
-def stocked(location, tmp_path, monkeypatch):
+@pytest.fixture(scope="module")
+def shared(tmp_path_factory):
     """A small warehouse with two treatments on two families, a kept analysis of each kind, a claim,
-    and the files a command might be pointed at; the working folder is the test's own."""
-    monkeypatch.chdir(tmp_path)
-    monkeypatch.setenv("BLOCKYARD_HISTORY", str(tmp_path / "history"))
-    monkeypatch.delenv("BLOCKYARD_WAREHOUSE", raising=False)
+    and the files a command might be pointed at; shared by the command fuzzers."""
+    folder = tmp_path_factory.mktemp("commands")
     rows = ["solver,version,family,group,instance,seed,pallets,seconds"]
     for fam in ("f1", "f2"):
         for g in range(1, 5):
@@ -464,13 +462,28 @@ def stocked(location, tmp_path, monkeypatch):
                 for seed in (1, 2):
                     for ver, shift in (("1.0", 0.0), ("2.0", -2.0)):
                         rows.append(f"stk,{ver},{fam},g{g},{inst},{seed},{30 + 2 * g + shift + 0.1 * seed},{1.0 + g}")
-    (tmp_path / "runs.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
-    (tmp_path / "layout.toml").write_text('[metrics.pallets]\nsense = "min"\n', encoding="utf-8")
-    for argv in (("load", "runs.csv", "--campaign", "c1"), ("blocktest", "--metric", "pallets"),
-                 ("versus", "stk@1.0", "--metric", "pallets"), ("keep", "2.0 is better", "--tag", "t")):
-        res = in_process(location, *argv)
-        assert res.code == 0, res
-    return location
+    (folder / "runs.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
+    (folder / "layout.toml").write_text('[metrics.pallets]\nsense = "min"\n', encoding="utf-8")
+    with fresh_warehouse(folder, "commands") as location:
+        for argv in (("load", str(folder / "runs.csv"), "--campaign", "c1"), ("blocktest", "--metric", "pallets"),
+                     ("versus", "stk@1.0", "--metric", "pallets"), ("keep", "2.0 is better", "--tag", "t")):
+            res = in_process(location, *argv)
+            assert res.code == 0, res
+        yield location, folder
+
+
+@pytest.fixture
+def stocked(shared, monkeypatch):
+    """The shared warehouse, with the working folder set to its own (relative file names land there);
+    afterwards every retraction a fuzzed command made is undone, so the next command finds the data."""
+    location, folder = shared
+    monkeypatch.chdir(folder)
+    monkeypatch.setenv("BLOCKYARD_HISTORY", str(folder / "history"))
+    monkeypatch.delenv("BLOCKYARD_WAREHOUSE", raising=False)
+    yield location
+    for (rid,) in sql(location, "SELECT id FROM retractions WHERE undone_at IS NULL ORDER BY id"):
+        assert in_process(location, "retract", "--undo", str(rid)).code == 0
+    assert sql(location, "SELECT count(*) FROM runs WHERE retraction_id IS NOT NULL") == [(0,)]
 
 
 def run_argv(location: str, argv: list[str], stdin_lines: list[str] | None = None) -> None:

@@ -13,7 +13,7 @@ import pytest
 
 from conftest import ON_POSTGRES, run_counts
 
-from . import one_line, runs_csv, sql, table_counts
+from . import fresh_warehouse, in_process, one_line, runs_csv, sql, table_counts
 
 H = "solver,version,family,group,instance,seed,status,finished_at,host,pallets\n"
 ROW = "stacker,1.6,mixed-sku,g{g},i{i},{seed},ok,2026-11-09T10:00:00Z,rack-a,{v}\n"
@@ -150,11 +150,25 @@ KNOWN_DEFECTS = {
 }
 
 
+def stock(location, folder) -> None:
+    res = in_process(location, "load", runs_csv(folder / "first.csv", 400, instances=20, seed=5), "--campaign", "base")
+    assert res.code == 0, res
+
+
+@pytest.fixture(scope="module")
+def shared(tmp_path_factory):
+    """One warehouse holding a campaign, shared by the battery: a refusal must leave it as it was,
+    so every case also checks that none before it changed anything."""
+    folder = tmp_path_factory.mktemp("malformed")
+    with fresh_warehouse(folder, "shared") as location:
+        stock(location, folder)
+        yield location
+
+
 @pytest.fixture
 def before(cli, location, tmp_path):
-    """A warehouse that already holds a campaign, so that 'unchanged' means something."""
-    res = cli("load", str(runs_csv(tmp_path / "first.csv", 400, instances=20, seed=5)), "--campaign", "base")
-    assert res.code == 0, res
+    """A warehouse of the test's own that already holds a campaign, so that 'unchanged' means something."""
+    stock(location, tmp_path)
     return table_counts(location)
 
 
@@ -165,7 +179,9 @@ def _params():
 
 
 @pytest.mark.parametrize("fname,content,layout,says", list(_params()))
-def test_malformed_input_is_refused_in_one_line(cli, location, tmp_path, before, fname, content, layout, says):
+def test_malformed_input_is_refused_in_one_line(shared, tmp_path, fname, content, layout, says):
+    location = shared
+    before = table_counts(location)
     path = tmp_path / "in" / fname
     path.parent.mkdir()
     path.write_bytes(content if isinstance(content, bytes) else content.encode("utf-8"))
@@ -175,7 +191,7 @@ def test_malformed_input_is_refused_in_one_line(cli, location, tmp_path, before,
         lay = tmp_path / "layout.toml"
         lay.write_bytes(layout if isinstance(layout, bytes) else layout.encode("utf-8"))
         args += ["--layout", str(lay)]
-    res = cli(*args)
+    res = in_process(location, *args)
     assert res.code == 2, res
     line = one_line(res.err)
     for part in says:
