@@ -1,7 +1,7 @@
 """A load killed at any moment leaves the warehouse as it was before, or with the whole file.
 
 Each test starts `python -m warehouse load BIG.csv` as a separate process and kills it with
-SIGKILL (no clean-up code runs) at a moment drawn from a seeded random generator, spread over the
+SIGKILL (POSIX, signal.h: SIGKILL cannot be caught or ignored, so no clean-up code runs) at a moment drawn from a seeded random generator, spread over the
 time the load holds its write transaction. Afterwards the file passes SQLite's own checks, the
 run count is the count before or before plus the whole file (never in between), a killed load is
 not remembered as done, and the same load then goes through.

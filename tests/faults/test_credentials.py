@@ -289,6 +289,19 @@ def test_each_documented_privilege_is_needed(location, tmp_path, stocked, role, 
     assert sql(location, "SELECT count(*) FROM runs WHERE retraction_id IS NOT NULL") == [(0,)]
 
 
+def test_someone_who_only_looks_needs_only_select(location, tmp_path, stocked, role):
+    schema = schema_of(location)
+    admin(f'GRANT USAGE ON SCHEMA "{schema}" TO {role}')
+    admin(f'GRANT SELECT ON ALL TABLES IN SCHEMA "{schema}" TO {role}')
+    looker = with_password(location, user=role)
+    for argv in (("inventory", "--json"), ("inventory", "solvers"), ("peek", "--metric", "pallets", "--json"),
+                 ("recall", "--json"), ("recall", str(stocked), "--json"), ("recheck", str(stocked), "--json"),
+                 ("export", str(stocked), "--to", str(tmp_path / "r.html"))):
+        res = in_process(looker, *argv)
+        assert res.code == 0, (argv, res)
+        never_shown(res)
+
+
 @pytest.mark.xfail(strict=True, reason=(
     "defect: a load by a role without INSERT ends in 'internal error (ProgrammingError: "
     "(psycopg.errors.InsufficientPrivilege) permission denied for table ... [SQL: ...])', exit 1, several lines"))

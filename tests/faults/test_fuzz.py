@@ -17,7 +17,7 @@ import json
 import shlex
 
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
 from conftest import ON_POSTGRES, run_counts
@@ -29,8 +29,13 @@ FUZZ = dict(deadline=None, database=None, derandomize=True,
                                    HealthCheck.data_too_large, HealthCheck.filter_too_much])
 
 
+# the quick runs report the first failing example as found (reproducible, being derandomized);
+# the slow runs also shrink it to a small one
+QUICK = dict(FUZZ, phases=(Phase.explicit, Phase.reuse, Phase.generate))
+
+
 def examples(quick: int, slow: int):
-    return settings(max_examples=quick, **FUZZ), settings(max_examples=slow, **FUZZ)
+    return settings(max_examples=quick, **QUICK), settings(max_examples=slow, **FUZZ)
 
 
 # --- the loaders -------------------------------------------------------------------------------
@@ -250,7 +255,8 @@ def near_valid_jsonl(draw) -> tuple[str, bytes]:
         for col in ("solver", "group", "instance", "pallets"):
             if col not in obj and draw(st.integers(0, 5)) > 0:
                 obj[col] = draw(GOOD[col])
-        text = json.dumps(obj)  # Python writes NaN and Infinity, which strict JSON does not allow
+        # Python writes NaN and Infinity, which JSON does not allow (RFC 8259 section 6)
+        text = json.dumps(obj)
         kind = draw(st.integers(0, 19))
         if kind == 0:
             text = text[: draw(st.integers(0, len(text)))]
@@ -466,7 +472,8 @@ def shared(tmp_path_factory):
     (folder / "layout.toml").write_text('[metrics.pallets]\nsense = "min"\n', encoding="utf-8")
     with fresh_warehouse(folder, "commands") as location:
         for argv in (("load", str(folder / "runs.csv"), "--campaign", "c1"), ("blocktest", "--metric", "pallets"),
-                     ("versus", "stk@1.0", "--metric", "pallets"), ("keep", "2.0 is better", "--tag", "t")):
+                     ("versus", "stk@1.0", "--metric", "pallets"), ("keep", "2.0 is better", "--tag", "t"),
+                     ("plan", "--effect", "0.5")):
             res = in_process(location, *argv)
             assert res.code == 0, res
         yield location, folder
@@ -504,13 +511,18 @@ def run_argv(location: str, argv: list[str], stdin_lines: list[str] | None = Non
 
 COMMAND_NAMES = [n for n in sorted(registry()) if n not in SKIP_COMMANDS]
 HEAVY = {"export": 6, "plot": 8}  # each call draws figures: fewer examples
+PLAN_IN_RECALL = ("defect: once a plan is kept, `blockyard recall TEXT` and `recall --solver S` end in 'internal "
+                  "error (TypeError: 'int' object is not iterable)': ledger.treatments_of iterates the plan "
+                  "result's 'comparisons', which is a number")
+FUZZ_DEFECTS = {"recall": PLAN_IN_RECALL}
 
 
-@pytest.mark.parametrize("name", COMMAND_NAMES)
+@pytest.mark.parametrize("name", [pytest.param(n, marks=[pytest.mark.xfail(strict=True, reason=FUZZ_DEFECTS[n])]
+                                               if n in FUZZ_DEFECTS else []) for n in COMMAND_NAMES])
 def test_every_command_with_random_arguments_answers_0_or_2(stocked, name, capsys):
     n = HEAVY.get(name, 15)
 
-    @settings(max_examples=n, **FUZZ)
+    @settings(max_examples=n, **QUICK)
     @given(argv=argv_for(name), script=st.lists(st.sampled_from(COMMAND_NAMES).flatmap(argv_for), max_size=3))
     def check(argv, script):
         # the shell reads commands from its input when that is not a terminal: feed it some
@@ -529,6 +541,15 @@ def test_every_command_with_random_arguments_many(stocked, name, capsys):
         run_argv(stocked, argv, [shlex.join(a) for a in script] if name == "shell" else None)
 
     check()
+
+
+@pytest.mark.xfail(strict=True, reason=PLAN_IN_RECALL)
+@pytest.mark.parametrize("argv", [("recall", "pallets"), ("recall", "--solver", "stk"), ("recall", "1", "--stale")])
+def test_recall_by_words_or_solver_with_a_kept_plan(cli, argv):
+    assert cli("plan", "--effect", "0.5").code == 0
+    res = cli(*argv)
+    assert res.code in (0, 2), res
+    assert "internal error" not in res.err
 
 
 def test_every_command_is_fuzzed():

@@ -105,6 +105,7 @@ CASES = [
      ["{path} line 5", "not UTF-8"]),  # RFC 3629 section 3: a lone 0xE9 followed by ',' is not UTF-8
     ("utf-8-then-latin-1-far-down", "a.csv", utf8_then_latin1(60_000, 50_001), None,
      ["{path} line 50001", "not UTF-8"]),
+    # common practice: a text file holds no NUL bytes; one means a binary or damaged file
     ("nul-byte", "a.csv", GOOD.encode() + b"stacker,1.6,f,g1,a\x00b,99,ok,,rack-a,3\n", None, ["{path} line 5", "NUL"]),
     ("quote-never-closed", "a.csv", GOOD + 'stacker,1.6,f,g1,"open,99,ok,,rack-a,3\n' + rows(2, start=200), None,
      ["{path} line 5", "quote"]),
@@ -117,6 +118,7 @@ CASES = [
     ("empty-file", "a.csv", "", None, ["{path}", "empty"]),
     ("unknown-extension", "a.xlsx", GOOD, None, ["{path}", "cannot tell the format"]),
     ("no-extension", "results", GOOD, None, ["{path}", "cannot tell the format"]),
+    # RFC 1952 section 2.2: a gzip member ends with CRC32 and ISIZE; without its last bytes it is incomplete
     ("truncated-gzip", "a.csv.gz", gzip.compress((GOOD * 50).encode())[:-30], None, ["{path}", "truncated"]),
     ("gz-name-but-not-gzip", "a.csv.gz", GOOD, None, ["{path}", "gzip"]),
     ("parquet-name-but-text", "a.parquet", GOOD, None, ["{path}", "Parquet"]),
@@ -125,6 +127,7 @@ CASES = [
     ("json-value-is-an-object", "a.jsonl", jl(JL, jl_with(seed=2, pallets={"mean": 3})), None,
      ["{path} line 2, field pallets", "nested"]),
     ("json-value-is-a-list", "a.jsonl", jl(JL, jl_with(seed=2, host=["a", "b"])), None, ["{path} line 2, field host"]),
+    # Python documentation, json: a number with a fraction or exponent goes through float(), and float('1e400') is inf
     ("json-metric-1e400", "a.jsonl", jl(JL, '{"solver": "stacker", "group": "g1", "instance": "a", "seed": 2, "pallets": 1e400}'),
      None, ["{path} line 2, field pallets", "finite"]),
     ("json-seed-400-digits", "a.jsonl", jl(JL, '{"solver": "stacker", "group": "g1", "instance": "a", "seed": %s, "pallets": 3}' % ("7" * 400)),
@@ -132,6 +135,7 @@ CASES = [
     ("json-seed-true", "a.jsonl", jl(JL, jl_with(seed=True)), None, ["{path} line 2, field seed"]),
     ("json-metric-a-word", "a.jsonl", jl(JL, jl_with(seed=2, pallets="many")), None,
      ["{path} line 2, field pallets", "'many' is not a number"]),
+    # RFC 8259 section 4: names within an object SHOULD be unique; readers differ on which value wins
     ("json-same-key-twice", "a.jsonl", jl(JL, '{"solver": "stacker", "group": "g1", "instance": "a", "seed": 2, "pallets": 3, "pallets": 4}'),
      None, ["{path} line 2", "pallets"]),
     ("layout-bad-toml", "a.csv", GOOD, "[columns]\nalgo = solver\n", ["{layout}", "TOML", "line 2"]),

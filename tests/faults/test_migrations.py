@@ -83,9 +83,9 @@ def campaign_rows(versions, rng: random.Random, host_of, seeds=(1, 2), timeouts=
     return out
 
 
-def build_twin(location: str, tmp_path: Path) -> dict:
+def build_twin(location: str, tmp_path: Path, seed: int = 2026) -> dict:
     """Through the command line: two imports, three kept analyses (one made stale by a retraction)."""
-    rng = random.Random(2026)
+    rng = random.Random(seed)
     steps = [
         ("load", write_csv(tmp_path / "nov.csv", campaign_rows(["1.0", "2.0", "3.0"], rng, lambda g: "rack-a" if g < 3 else "rack-b")),
          "--campaign", "nov"),
@@ -193,13 +193,13 @@ def cell_rows(location: str) -> list[tuple]:
 # --- the upgrade --------------------------------------------------------------------------------
 
 @pytest.fixture
-def pair(wh_location, tmp_path):
+def pair(wh_location, tmp_path, request):
     """(old warehouse at 0002 holding the twin's rows and ledger, the twin, the twin's analysis ids)."""
     from warehouse.store.connect import init_warehouse
 
     with another_location(tmp_path, "twin") as twin:
         init_warehouse(twin).close()
-        ids = build_twin(twin, tmp_path)
+        ids = build_twin(twin, tmp_path, seed=getattr(request, "param", 2026))
         build_old(wh_location, twin)
         yield wh_location, twin, ids
 
@@ -237,10 +237,17 @@ def test_upgrade_keeps_every_row_and_every_stored_analysis(pair):
     assert again.code == 0 and again.json()["status"] == "current", again
 
 
-@pytest.mark.xfail(ON_POSTGRES, strict=True, reason=(
-    "defect: collapse._fingerprint rounds cell sums to 10 significant digits, so the same runs summed in "
-    "another order (the 0003 upgrade's SQL vs the loader's numpy) can round apart: after `blockyard upgrade` "
-    "on PostgreSQL, `recheck` of the untouched 'fill' analysis says data-changed (twin says unchanged)"))
+ROUNDING_EDGE = ("defect: collapse._fingerprint rounds value sums to 10 significant digits, so the same runs "
+                 "summed in another order (the 0003 upgrade's SQL GROUP BY vs the loader's numpy) can round apart "
+                 "when a sum sits on a rounding edge: after `blockyard upgrade` on PostgreSQL, `recheck` of the "
+                 "untouched 'fill' analysis says data-changed where the twin says unchanged")
+
+
+@pytest.mark.parametrize("pair", [
+    pytest.param(2026, id="data-a"),
+    # these values put a sum of squares on a 10-digit rounding edge (found by searching data seeds)
+    pytest.param(10026, id="data-b", marks=pytest.mark.xfail(ON_POSTGRES, strict=True, reason=ROUNDING_EDGE)),
+], indirect=True)
 def test_after_the_upgrade_recheck_finds_nothing_changed(pair):
     old, twin, ids = pair
     assert in_process(old, "upgrade").code == 0
@@ -324,7 +331,7 @@ def test_upgrade_copies_the_file_aside_first(pair):
     assert revision(backup) == "0002"  # the copy opens as the old revision
     assert contents(backup, tables) == before
     assert "cell_stats" not in table_counts(backup)
-    assert backup in res.json()["backup"] and os.path.basename(backup).startswith(os.path.basename(old))
+    assert os.path.basename(backup).startswith(os.path.basename(old))
 
 
 # --- warehouses this Blockyard cannot use as they are ---------------------------------------------
@@ -426,7 +433,7 @@ def kill_upgrades(tmp_path: Path, kills: int, seed: int) -> None:
     res = blockyard("upgrade", "-w", probe)
     took = time.monotonic() - started
     assert res.code == 0, res
-    finished = 0
+    killed = 0
     for attempt in range(kills):
         proc = subprocess.Popen(command("upgrade", "-w", path), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                                 text=True, env=clean_env())
@@ -435,14 +442,15 @@ def kill_upgrades(tmp_path: Path, kills: int, seed: int) -> None:
         except subprocess.TimeoutExpired:
             proc.send_signal(signal.SIGKILL)
             proc.wait(timeout=120)
+            killed += 1
         sqlite_whole(path)
         rev = revision(str(path))
         assert rev in ("0002", "0003"), rev
         assert ("cell_stats" in table_counts(str(path))) == (rev == "0003")
         if rev == "0003":
-            finished += 1
             cells_agree(str(path))
             break
+    assert killed  # the test is about upgrades that died
     # left alone, the upgrade goes through, whatever copies a killed one left behind
     res = blockyard("upgrade", "-w", path, "--json")
     assert res.code == 0, res
@@ -450,8 +458,6 @@ def kill_upgrades(tmp_path: Path, kills: int, seed: int) -> None:
     sqlite_whole(path)
     cells_agree(str(path))
     assert contents(str(path), {"runs": ["id", "v1", "v2"]}) == runs_before
-    for leftover in tmp_path.glob("old.db.before-*"):
-        assert leftover.stat().st_size >= 0  # copies are kept, never in the way
 
 
 @pytest.mark.skipif(ON_POSTGRES, reason="a SQLite file: PRAGMA integrity_check after each kill")
