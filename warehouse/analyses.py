@@ -103,17 +103,16 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
     if chosen == "complete" and not c.complete:
         raise DesignError("the design has holes; use --holes keep with --design incomplete, or --holes drop")
     obs = c.obs[["treatment", "block", "value"]]
-    if chosen == "complete":
-        stats = rcbd_anova(obs, transform=transform)
-    elif chosen == "incomplete":
-        if transform != "none":
-            raise InputError("--transform applies to the complete design; the incomplete design is analysed as is")
-        stats = incomplete_anova(obs)
-    else:
-        if transform != "none":
-            raise InputError("--transform applies to the complete design; the generalized design is analysed as is")
-        cells = c.cells[c.cells["value"].notna()][["treatment", "block", "instance", "value"]]
-        stats = generalized_anova(cells)
+    if chosen != "complete" and transform != "none":
+        raise InputError(f"--transform applies to the complete design; the {chosen} design is analysed as is")
+    with _numeric_warnings(warnings):
+        if chosen == "complete":
+            stats = rcbd_anova(obs, transform=transform)
+        elif chosen == "incomplete":
+            stats = incomplete_anova(obs)
+        else:
+            cells = c.cells[c.cells["value"].notna()][["treatment", "block", "instance", "value"]]
+            stats = generalized_anova(cells)
     warnings += list(getattr(stats, "warnings", []))
     result_pairs = []
     if pairs:
@@ -123,7 +122,8 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
 
         # Tukey works on the scale the ANOVA used; the within-block ranks of Conover do not change
         scaled = obs if transform == "none" else stats.residuals[["treatment", "block", "value"]]
-        result_pairs = [tukey_hsd_blocked(scaled), conover_friedman(obs)]
+        with _numeric_warnings(warnings):
+            result_pairs = [tukey_hsd_blocked(scaled), conover_friedman(obs)]
         if transform != "none":
             warnings.append(f"Tukey differences and intervals are on the {transform} scale, like the ANOVA")
         k = len(c.treatments)
@@ -131,6 +131,28 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
                         "unadjusted p would overstate the evidence")
     return BlocktestResult(c, chosen, stats, result_pairs, _dedupe(warnings),
                            options={"transform": transform, "design": design, "pairs": pairs})
+
+
+class _numeric_warnings:
+    """Numerical warnings from the libraries (all values equal, say) become one caution, not noise."""
+
+    def __init__(self, cautions: list[str]):
+        self.cautions = cautions
+
+    def __enter__(self):
+        import warnings
+
+        self._ctx = warnings.catch_warnings(record=True)
+        self._seen = self._ctx.__enter__()
+        warnings.simplefilter("always", RuntimeWarning)
+        return self
+
+    def __exit__(self, *exc):
+        self._ctx.__exit__(*exc)
+        if any(issubclass(w.category, RuntimeWarning) for w in self._seen):
+            self.cautions.append("some statistics are undefined on these data (for example, identical values "
+                                 "everywhere) and are shown as '-': read them as missing, not as evidence")
+        return False
 
 
 def _dedupe(items: list[str]) -> list[str]:
@@ -245,12 +267,14 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
     alternative = "two-sided" if better is None else ("less" if better == "lower" else "greater")
     m = _margin(margin)
     obs = c.obs[["treatment", "block", "value"]]
-    if method == "dunnett":
-        stats = dunnett_vs_baseline(obs, baseline, alternative=alternative, confidence=confidence, better=word, margin=m)
-    else:
-        stats = paired_vs_baseline(obs, baseline, method=method, adjust=adjust, alternative=alternative,
-                                   confidence=confidence, better=word, margin=m)
-    warnings = list(design_cautions(c)) + host_caution(c, baseline) + pseudo_replication(c)
+    numeric: list[str] = []
+    with _numeric_warnings(numeric):
+        if method == "dunnett":
+            stats = dunnett_vs_baseline(obs, baseline, alternative=alternative, confidence=confidence, better=word, margin=m)
+        else:
+            stats = paired_vs_baseline(obs, baseline, method=method, adjust=adjust, alternative=alternative,
+                                       confidence=confidence, better=word, margin=m)
+    warnings = list(design_cautions(c)) + host_caution(c, baseline) + pseudo_replication(c) + numeric
     if c.dropped_blocks:
         missing_base = [d["block"] for d in c.dropped_blocks if baseline in d["missing"]]
         other = [d["block"] for d in c.dropped_blocks if baseline not in d["missing"]]
