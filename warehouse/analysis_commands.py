@@ -94,8 +94,17 @@ def cmd_peek(session: Session, a) -> PeekResult:
 def _record(session: Session, result, sl, settings: Collapse) -> None:
     from . import ledger
 
+    from .store.connect import database_trouble
+
     wh = session.warehouse()
-    result.analysis_id = ledger.record(wh, result, sl, {"collapse": settings.to_dict(), "options": result.options})
+    try:
+        result.analysis_id = ledger.record(wh, result, sl, {"collapse": settings.to_dict(), "options": result.options})
+    except Exception as exc:  # a read-only or full warehouse: the numbers still stand, unkept
+        trouble = database_trouble(exc, wh.display)
+        if trouble is None:
+            raise
+        result.warnings.append(f"this analysis was not kept in the ledger: {trouble}")
+        return
     session.last_analysis = result.analysis_id
 
 

@@ -97,6 +97,14 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
         err.write("blockyard: interrupted; nothing half-written was kept\n")
         return 130
     except Exception as exc:  # a defect of ours, not the user's: say so, keep the traceback on request
+        from .store.connect import database_trouble
+
+        from .store.connect import shown
+
+        trouble = database_trouble(exc, shown(session.where))
+        if trouble is not None:
+            err.write(f"blockyard: {trouble}\n")
+            return trouble.exit_status
         if os.environ.get("BLOCKYARD_DEBUG"):
             raise
         err.write(f"blockyard: internal error ({type(exc).__name__}: {exc}); "

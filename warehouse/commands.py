@@ -74,13 +74,13 @@ def _init_args(p):
          "blockyard init -w results.db", needs_warehouse=False)
 @args(_init_args)
 def cmd_init(session: Session, a) -> Done:
-    from .store.connect import init_warehouse
+    from .store.connect import init_warehouse, shown as shown_location
     from .store.schema import SCHEMA_REVISION
 
     wh = init_warehouse(session.location)
     shown = wh.display
     wh.close()
-    return Done(f"created warehouse {shown} (schema {SCHEMA_REVISION})\nnext: blockyard load FILE --campaign NAME -w {session.where}",
+    return Done(f"created warehouse {shown} (schema {SCHEMA_REVISION})\nnext: blockyard load FILE --campaign NAME -w {shown_location(session.where)}",
                 {"warehouse": shown, "schema": SCHEMA_REVISION, "status": "created"})
 
 

@@ -229,7 +229,9 @@ def treatments_of(doc: dict) -> list[str]:
     names = list(doc.get("treatment_names") or [])
     if doc.get("baseline"):
         names.append(doc["baseline"])
-    names += [r.get("treatment") for r in doc.get("comparisons", []) if r.get("treatment")]
+    rows = doc.get("comparisons")
+    if isinstance(rows, list):  # a plan's "comparisons" is a count, not rows
+        names += [r.get("treatment") for r in rows if isinstance(r, dict) and r.get("treatment")]
     return sorted(set(names))
 
 

@@ -447,6 +447,12 @@ class Shell:
         except BlockyardError as exc:
             self.fail(str(exc))
         except Exception as exc:  # a defect of ours: one line, and the shell stays
+            from .store.connect import database_trouble
+
+            trouble = database_trouble(exc)
+            if trouble is not None:
+                self.fail(str(trouble))
+                return True
             if os.environ.get("BLOCKYARD_DEBUG"):
                 import traceback
 

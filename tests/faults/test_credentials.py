@@ -98,15 +98,11 @@ CASES = [
     pytest.param(lambda loc, tmp, aid: (with_password(loc).replace("/test?", "/test?sslmode=nonsense&"), "inventory"),
                  id="bad-connection-option"),
     pytest.param(lambda loc, tmp, aid: (with_password(loc).replace("search_path%3D", "search_path%3Dno_such_"), "inventory"),
-                 id="schema-without-warehouse", marks=pytest.mark.xfail(strict=True, reason=HINT_LEAK)),
+                 id="schema-without-warehouse"),
     pytest.param(lambda loc, tmp, aid: (with_password(_fresh_schema(loc)), "init"),
-                 id="init-new-warehouse", marks=pytest.mark.xfail(strict=True, reason=(
-                     "defect: init's 'next: blockyard load FILE --campaign NAME -w ...' line repeats the "
-                     "password from the URL"))),
+                 id="init-new-warehouse"),
     pytest.param(lambda loc, tmp, aid: (with_password(_old_schema(loc)), "inventory"),
-                 id="older-schema", marks=pytest.mark.xfail(strict=True, reason=(
-                     "defect: 'run: blockyard upgrade -w ...' after 'has schema 0002, older than' repeats the "
-                     "password from the URL"))),
+                 id="older-schema"),
 ]
 
 _made: list[str] = []
@@ -148,9 +144,6 @@ def test_a_password_in_the_url_is_never_printed(shared, tmp_path, drop_made_sche
         one_line(res.err)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "defect: a URL whose port is not a number ends in 'internal error (ValueError: invalid literal for "
-    "int() with base 10: ...)', exit 1, instead of 'warehouse URL does not parse'"))
 def test_a_url_that_does_not_parse_is_one_line_without_the_password(location):
     where = with_password(location).replace("127.0.0.1/", "127.0.0.1:notaport/")
     res = in_process(where, "inventory")
@@ -289,8 +282,13 @@ def test_each_documented_privilege_is_needed(location, tmp_path, stocked, role, 
     more = runs_csv(tmp_path / "more.csv", 300, instances=50, seed=25)
     res = in_process(with_password(location, user=role), *[a.format(more=more) for a in argv])
     never_shown(res)
-    assert res.code != 0, res
-    assert "permission denied" in res.err, res
+    if argv[0] == "blocktest":
+        # the numbers still stand for a member who may not keep them: they print, with a caution
+        assert res.code == 0, res
+        assert "not kept in the ledger" in res.out and "permission denied" in res.out, res
+    else:
+        assert res.code != 0, res
+        assert "permission denied" in res.err, res
     assert {t: sql(location, f"SELECT count(*) FROM {t}")[0][0] for t in before} == before
     assert sql(location, "SELECT count(*) FROM runs WHERE retraction_id IS NOT NULL") == [(0,)]
 
@@ -308,9 +306,6 @@ def test_someone_who_only_looks_needs_only_select(location, tmp_path, stocked, r
         never_shown(res)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "defect: a load by a role without INSERT ends in 'internal error (ProgrammingError: "
-    "(psycopg.errors.InsufficientPrivilege) permission denied for table ... [SQL: ...])', exit 1, several lines"))
 def test_a_read_only_member_is_told_in_one_line_that_it_may_not_write(location, tmp_path, stocked, role):
     schema = schema_of(location)
     admin(f'GRANT USAGE ON SCHEMA "{schema}" TO {role}')
@@ -327,9 +322,6 @@ def test_a_read_only_member_is_told_in_one_line_that_it_may_not_write(location, 
     assert sql(location, "SELECT count(*) FROM runs")[0][0] == before
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "defect: `blockyard upgrade` by a role without CREATE ends in 'internal error (ProgrammingError: "
-    "(psycopg.errors.InsufficientPrivilege) permission denied for schema ...)', exit 1, several lines"))
 def test_upgrade_without_create_privilege_says_so_in_one_line(wh_location, role):
     from warehouse.store.connect import init_warehouse
 

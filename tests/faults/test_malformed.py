@@ -147,11 +147,7 @@ CASES = [
 ]
 assert len(CASES) >= 25
 
-KNOWN_DEFECTS = {
-    "no-data-rows-no-final-newline": "defect: a header-only CSV without a final newline is refused with pyarrow's "
-                                     "'cannot be read as CSV: Could not skip initial 1 rows from CSV file, either file "
-                                     "is too short or header is larger than block size' instead of 'no data rows'",
-}
+KNOWN_DEFECTS: dict[str, str] = {}
 
 
 def stock(location, folder) -> None:

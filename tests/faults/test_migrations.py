@@ -343,10 +343,6 @@ def test_a_warehouse_from_a_newer_blockyard_is_refused_in_one_line(location):
     assert "newer" in one_line(res.err)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "defect: `blockyard upgrade` on a warehouse from a newer Blockyard (alembic_version '0999') ends in "
-    "'internal error (CommandError: Can't locate revision ...)', exit 1, instead of one line saying to "
-    "upgrade Blockyard"))
 def test_upgrading_a_warehouse_from_a_newer_blockyard_says_upgrade_blockyard(location):
     sql(location, "UPDATE alembic_version SET version_num = '0999'")
     res = in_process(location, "upgrade")
@@ -358,13 +354,8 @@ def test_upgrading_a_warehouse_from_a_newer_blockyard_says_upgrade_blockyard(loc
 @pytest.mark.skipif(ON_POSTGRES, reason="SQLite files that are not warehouses")
 @pytest.mark.parametrize("kind", [
     "text",
-    pytest.param("empty-database", marks=pytest.mark.xfail(strict=True, reason=(
-        "defect: opening an empty file (touch results.db) writes a 4096-byte SQLite header into it (the "
-        "connect hook's PRAGMA journal_mode = WAL); then init refuses it ('already exists') while every other "
-        "command says 'create one with: blockyard init'"))),
-    pytest.param("other-database", marks=pytest.mark.xfail(strict=True, reason=(
-        "defect: pointing any command at someone else's SQLite database switches it to WAL mode (file header "
-        "byte 18 goes from 1 to 2) although Blockyard then refuses it as not a warehouse"))),
+    "empty-database",
+    "other-database",
 ])
 def test_a_file_that_is_not_a_warehouse_is_refused_in_one_line_and_left_alone(tmp_path, kind):
     # SQLite documentation, database file format, header offsets 18-19: 1 = rollback journal, 2 = WAL
@@ -378,11 +369,19 @@ def test_a_file_that_is_not_a_warehouse_is_refused_in_one_line_and_left_alone(tm
             con.commit()
         con.close()
     before = path.read_bytes()
-    for argv in (("inventory",), ("upgrade",), ("blocktest", "--metric", "m"), ("init",)):
+    # an empty file is where a warehouse may be made: the other commands point at init, and init works
+    commands = [("inventory",), ("upgrade",), ("blocktest", "--metric", "m")]
+    if kind != "empty-database":
+        commands.append(("init",))
+    for argv in commands:
         res = in_process(str(path), *argv)
         assert res.code == 2, (argv, res)
-        one_line(res.err)
+        line = one_line(res.err)
+        if kind == "empty-database" and argv != ("upgrade",):
+            assert "blockyard init" in line, line
     assert path.read_bytes() == before
+    if kind == "empty-database":
+        assert in_process(str(path), "init").code == 0
 
 
 # --- an upgrade killed half-way -----------------------------------------------------------------

@@ -304,8 +304,8 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
     try:
         reader = pacsv.open_csv(source, read_options=read_opts, parse_options=parse_opts, convert_options=conv_opts)
     except pa.ArrowInvalid as exc:
-        if "Empty CSV file" in str(exc):
-            return
+        if "Empty CSV file" in str(exc) or "Could not skip initial" in str(exc):
+            return  # a header and nothing else (with or without a final newline)
         raise failed(exc) from None
     good = 0  # good records so far
     buffer: list[pa.RecordBatch] = []

@@ -35,7 +35,11 @@ class Term:
     values: tuple[str, ...]
 
     def text(self) -> str:
-        vals = ",".join(_quote(v) for v in self.values)
+        if self.key == "treatment":  # a name with operator characters must be quoted to read back
+            vals = ",".join(_quote(v) if not re.search(r"[=<>!~]", v) or v[:1] in "'\"" else
+                            ('"' + v + '"' if '"' not in v else _quote(v)) for v in self.values)
+        else:
+            vals = ",".join(_quote(v) for v in self.values)
         return vals if self.key == "treatment" else f"{self.key}{self.op}{vals}"
 
     def to_dict(self) -> dict:
@@ -205,6 +209,10 @@ def parse(text: str | None) -> Slice:
 
 def _term(raw: str, n: int) -> Term:
     where = f"slice term {n} '{raw}'"
+    if raw[:1] in ("'", '"'):  # a quoted treatment: its name may hold operator characters
+        vals = _values(raw, where)
+        if all("@" in v and v.split("@")[0] and v.rpartition("@")[2] for v in vals):
+            return Term("treatment", "=", tuple(vals))
     m = _KEY.match(raw)
     rest = raw[m.end():] if m else raw
     op = next((o for o in OPS if rest.startswith(o)), None) if m else None

@@ -61,6 +61,16 @@ def _is_url(location: str) -> bool:
     return "://" in location
 
 
+def shown(location: str) -> str:
+    """The location as it may be printed: a URL's password replaced by ***."""
+    if not _is_url(location):
+        return location
+    try:
+        return make_url(location).render_as_string(hide_password=True)
+    except Exception:  # a URL that does not parse: show only its scheme
+        return location.split("://", 1)[0] + "://..."
+
+
 def _sqlite_engine(path: Path) -> Engine:
     engine = create_engine(f"sqlite:///{path}", future=True)
 
@@ -72,10 +82,8 @@ def _sqlite_engine(path: Path) -> Engine:
         cur = dbapi_conn.cursor()
         cur.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
         cur.execute("PRAGMA foreign_keys = ON")
-        try:
-            cur.execute("PRAGMA journal_mode = WAL")
-        except sqlite3.OperationalError:
-            pass  # read-only file or directory: keep whatever journal it has
+        # WAL is set once, when `init` creates the file (it persists); setting it here would
+        # rewrite the header of any SQLite file a command is pointed at, warehouse or not
         cur.execute("PRAGMA synchronous = NORMAL")
         cur.execute("PRAGMA temp_store = MEMORY")
         cur.execute("PRAGMA cache_size = -65536")
@@ -92,8 +100,9 @@ def _sqlite_engine(path: Path) -> Engine:
 def _server_engine(location: str) -> tuple[Engine, str]:
     try:
         url = make_url(location)
-    except ArgumentError as exc:
-        raise StorageError(f"warehouse URL does not parse: {exc}") from None
+        url.port  # noqa: B018  (a port that is not a number fails here, not later)
+    except (ArgumentError, ValueError):
+        raise StorageError(f"warehouse URL {shown(location)} does not parse; write postgresql://user@host:port/dbname") from None
     if url.drivername in ("postgresql", "postgres", "postgresql+psycopg"):
         url = url.set(drivername="postgresql+psycopg")
     else:
@@ -136,20 +145,22 @@ def open_warehouse(location: str | None = None) -> Warehouse:
     location = resolve_location(location)
     if not _is_url(location) and not Path(location).expanduser().exists():
         raise StorageError(
-            f"no warehouse at {location}; create one with: blockyard init -w {location} "
+            f"no warehouse at {location}; create one with: blockyard init -w {shown(location)} "
             "(or run blockyard demo)"
         )
+    if not _is_url(location) and Path(location).expanduser().stat().st_size == 0:
+        raise StorageError(f"{location} is an empty file, not a warehouse; create one there with: blockyard init -w {location}")
     wh = _make(location)
     rev = stored_revision(wh)
     if rev is None:
         wh.close()
-        raise StorageError(f"{wh.display} has no Blockyard schema; create one with: blockyard init -w {location}")
+        raise StorageError(f"{wh.display} has no Blockyard schema; create one with: blockyard init -w {shown(location)}")
     if rev != SCHEMA_REVISION:
         wh.close()
         if rev < SCHEMA_REVISION:
             raise StorageError(
                 f"warehouse {wh.display} has schema {rev}, older than this Blockyard's {SCHEMA_REVISION}; "
-                f"run: blockyard upgrade -w {location} (it copies the file aside first)"
+                f"run: blockyard upgrade -w {shown(location)} (it copies the file aside first)"
             )
         raise StorageError(
             f"warehouse {wh.display} has schema {rev}, newer than this Blockyard's {SCHEMA_REVISION}; "
@@ -197,6 +208,12 @@ def init_warehouse(location: str | None = None, revision: str = "head") -> Wareh
     if stored_revision(wh) is not None:
         wh.close()
         raise StorageError(f"{wh.display} already holds a Blockyard schema")
+    if wh.path is not None:
+        con = sqlite3.connect(str(wh.path))
+        try:
+            con.execute("PRAGMA journal_mode = WAL")  # readers never wait for a loader
+        finally:
+            con.close()
     try:
         migrate(wh, revision)
     except OperationalError as exc:
@@ -217,6 +234,10 @@ def upgrade_warehouse(location: str | None = None) -> tuple[Warehouse, str | Non
         raise StorageError(f"{wh.display} has no Blockyard schema; nothing to upgrade")
     if old == SCHEMA_REVISION:
         return wh, old, None
+    if old > SCHEMA_REVISION:
+        wh.close()
+        raise StorageError(f"warehouse {wh.display} has schema {old}, newer than this Blockyard's {SCHEMA_REVISION}; "
+                           "upgrade Blockyard instead")
     backup = None
     if wh.path is not None:
         stamp = time.strftime("%Y%m%d-%H%M%S")
@@ -233,3 +254,27 @@ def upgrade_warehouse(location: str | None = None) -> tuple[Warehouse, str | Non
     return wh, old, backup
 
 
+
+
+def database_trouble(exc: BaseException, where: str = "") -> StorageError | None:
+    """A database error a user can act on (disk full, read-only, locked, gone) as one plain line.
+
+    Returns None for anything that is not a database error, so callers can re-raise it.
+    """
+    from sqlalchemy.exc import DBAPIError
+
+    if not isinstance(exc, (DBAPIError, sqlite3.Error)) and type(exc).__module__.split(".")[0] != "psycopg":
+        return None
+    text_ = _reason(exc)
+    low = text_.lower()
+    if "full" in low:
+        why = "the disk (or the database's size limit) is full"
+    elif "readonly" in low or "read-only" in low or "read only" in low:
+        why = "it is read-only for this user"
+    elif "locked" in low:
+        why = "another process kept it locked too long; try again"
+    else:
+        place = f" {where}" if where else ""
+        return StorageError(f"warehouse{place}: the database refused the work ({text_}); nothing was changed")
+    place = f" {where}" if where else ""
+    return StorageError(f"cannot write to warehouse{place}: {why}; nothing was changed")
