@@ -67,6 +67,7 @@ class Loads:
         assert res.code in (0, 2), res
         after_runs, after_imports, last = self.counts()
         if "--json" in flags:
+            assert res.out.strip(), res  # --json always answers with a document
             doc = res.json()["imports"][0]
             status = doc["status"]
             assert (res.code == 2) == (status == "refused"), res
