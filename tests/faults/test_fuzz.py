@@ -104,6 +104,11 @@ def loads(location, tmp_path):
     box.close()
 
 
+UNDERFLOW = ("defect: on PostgreSQL a metric value near 1e-200 is accepted by the loader, but SQL that squares "
+             "it fails with 'value out of range: underflow' (PostgreSQL documentation, Floating-Point Types: "
+             "values too small cause an error, where IEEE 754 arithmetic gives 0): a load that also meets already-stored runs is refused (and with "
+             "--json prints no document at all), and blocktest --replicates median|trimmed:F fails")
+
 FLAGS = st.sampled_from([(), ("--json",), ("--skip-bad",), ("--skip-bad", "--json")])
 SUFFIX = st.sampled_from([".csv", ".tsv", ".jsonl", ".csv.gz", ".jsonl.gz", ".ndjson", ".tab"])
 
@@ -286,6 +291,31 @@ def test_near_valid_json_lines_load_whole_or_not_at_all(loads, case, flags):
 @given(case=near_valid_jsonl(), flags=FLAGS)
 def test_near_valid_json_lines_many(loads, case, flags):
     loads.load(case[0], case[1], flags)
+
+
+def test_a_tiny_metric_value_loads_beside_runs_already_stored(cli, tmp_path):
+    # found by test_near_valid_json_lines_many; 1e-200 is a finite IEEE 754 double (the smallest normal is
+    # about 2.2e-308), and its square underflows
+    first = tmp_path / "first.csv"
+    first.write_text("solver,group,instance,seed,pallets\ns,g,z,2,3\n", encoding="utf-8")
+    assert cli("load", str(first), "--campaign", "f").code == 0
+    both = tmp_path / "both.csv"
+    both.write_text("solver,group,instance,seed,pallets\ns,g,z,1,1e-200\ns,g,z,2,3\n", encoding="utf-8")
+    res = cli("load", str(both), "--campaign", "f", "--json")
+    assert res.code == 0, res
+    doc = res.json()["imports"][0]
+    assert (doc["status"], doc["rows_loaded"], doc["rows_skipped"]) == ("loaded", 1, 1)
+
+
+@pytest.mark.parametrize("replicates", ["median", "trimmed:0.1"])
+def test_a_tiny_metric_value_in_an_analysis(cli, tmp_path, replicates):
+    path = tmp_path / "tiny.csv"
+    rows = [f"{solver},g{g},a,{seed},{value}" for seed in (1, 2) for g in (1, 2)
+            for solver, value in (("s", "1e-200" if g == 1 else "1"), ("t", "2"))]
+    path.write_text("solver,group,instance,seed,pallets\n" + "\n".join(rows) + "\n", encoding="utf-8")
+    assert cli("load", str(path), "--campaign", "g").code == 0
+    res = cli("blocktest", "--metric", "pallets", "--replicates", replicates, "--json")
+    assert res.code == 0, res
 
 
 def test_the_fuzzers_reach_both_outcomes(loads):
@@ -509,9 +539,6 @@ def run_argv(location: str, argv: list[str], stdin_lines: list[str] | None = Non
 
 COMMAND_NAMES = [n for n in sorted(registry()) if n not in SKIP_COMMANDS]
 HEAVY = {"export": 6, "plot": 8}  # each call draws figures: fewer examples
-PLAN_IN_RECALL = ("defect: once a plan is kept, `blockyard recall TEXT` and `recall --solver S` end in 'internal "
-                  "error (TypeError: 'int' object is not iterable)': ledger.treatments_of iterates the plan "
-                  "result's 'comparisons', which is a number")
 FUZZ_DEFECTS: dict[str, str] = {}
 
 

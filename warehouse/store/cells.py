@@ -25,7 +25,8 @@ def run_aggregates(v, status=R.c.status, ident=R.c.id):
         func.count().label("n"),
         func.sum(case((ok, 1), else_=0)).label("n_ok"),
         func.sum(case((ok, v), else_=None)).label("sum_ok"),
-        func.sum(case((ok, v * v), else_=None)).label("sq_ok"),
+        # a square below the float range is 0 (PostgreSQL raises on underflow instead of rounding)
+        func.sum(case((ok & (func.abs(v) > 1e-150), v * v), (ok, 0.0), else_=None)).label("sq_ok"),
         func.min(case((ok, v), else_=None)).label("min_ok"),
         func.max(case((ok, v), else_=None)).label("max_ok"),
         func.sum(case((bad, 1), else_=0)).label("n_fail"),
