@@ -402,3 +402,62 @@ def test_a_run_belongs_to_one_retraction_and_undo_brings_back_just_its_own(campa
     assert inv["retracted"] == 24 and inv["runs"] == total - 24
     peek = cli("peek", "--slice", "family=f1", "--json").json()
     assert sum(c["runs"] for c in peek["cells"]) == 24  # seed 1 is back, seed 2 still withdrawn
+
+
+# --- the fingerprint does not depend on the order values were summed in --------------------------
+
+def _cells_frame(sum_ok):
+    import pandas as pd
+
+    return pd.DataFrame({
+        "treatment": ["a@1", "a@1", "b@1"], "block": ["f/g1", "f/g2", "f/g1"], "instance_id": [3, 4, 3],
+        "n": [4, 4, 4], "n_ok": [4, 3, 4], "n_fail": [0, 1, 0], "id_sum": [10, 26, 42],
+        "sum_ok": sum_ok, "sq_ok": [x * x / 4 for x in sum_ok],
+    })
+
+
+def test_the_fingerprint_is_the_same_for_sums_made_in_another_order():
+    # 0.1 + 0.2 + 0.3 summed left to right and right to left differ in the last bit (IEEE 754
+    # double rounding, common practice); the same runs must give the same fingerprint either way
+    from warehouse.collapse import _fingerprint, fingerprint_v1
+    from warehouse.select.slices import parse
+
+    left, right = (0.1 + 0.2) + 0.3, 0.1 + (0.2 + 0.3)
+    assert left != right
+    st, sl = {"replicates": "mean"}, parse("family=f")
+    a, b = _cells_frame([left, 2.0, 3.0]), _cells_frame([right, 2.0, 3.0])
+    assert _fingerprint(a, st, "pallets", sl) == _fingerprint(b, st, "pallets", sl)
+    # whereas a run more, or another run in its place, moves it
+    c = _cells_frame([left, 2.0, 3.0])
+    c.loc[1, "id_sum"] += 1
+    assert _fingerprint(c, st, "pallets", sl) != _fingerprint(a, st, "pallets", sl)
+    d = _cells_frame([left, 2.0, 3.0])
+    d.loc[1, ["n", "n_ok"]] += 1
+    assert _fingerprint(d, st, "pallets", sl) != _fingerprint(a, st, "pallets", sl)
+    # the 0.1 hash is kept for analyses kept by 0.1, and differs from the current one
+    assert fingerprint_v1(a, st, "pallets", sl) != _fingerprint(a, st, "pallets", sl)
+
+
+def test_an_analysis_kept_with_the_earlier_fingerprint_rechecks_unchanged(campaign, cli, location, tmp_path):
+    # an analysis kept by Blockyard 0.1 holds the 0.1 hash; on unchanged data it is still unchanged,
+    # and new runs under its slice still make it data-changed
+    from warehouse import ledger
+    from warehouse.session import Session
+
+    aid = blocktest(cli, "family=f1")["analysis_id"]
+    session = Session(location=location)
+    wh = session.warehouse()
+    st = ledger.get(wh, aid)
+    old_fp = ledger.rerun(wh, st).collapsed.fingerprint_v1
+    assert old_fp and old_fp != st.fingerprint
+    with wh.engine.begin() as conn:
+        row = conn.execute(text("SELECT kind, slice_text, settings, observations, result FROM analyses WHERE id = :i"),
+                           {"i": aid}).one()
+        dig = ledger.digest(row.kind, row.slice_text, row.settings, row.observations, old_fp, row.result)
+        conn.execute(text("UPDATE analyses SET fingerprint = :f, result_digest = :d WHERE id = :i"),
+                     {"f": old_fp, "d": dig, "i": aid})
+    session.close()
+    doc = recheck(cli, aid)
+    assert doc["status"] == "unchanged" and doc["stored_fingerprint"] == old_fp
+    load(cli, tmp_path, "more.csv", runs_of("1.0", "f1", 0.0, random.Random(99), seeds=(3,)))
+    assert recheck(cli, aid)["status"] in ("data-changed", "conclusion-changed")

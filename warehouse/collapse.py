@@ -48,6 +48,7 @@ class Collapsed:
     fingerprint: str
     max_run_id: int
     hash_conflicts: list[str] = field(default_factory=list)
+    fingerprint_v1: str = ""  # the 0.1 hash of the same runs, for analyses kept by 0.1
 
     @property
     def complete(self) -> bool:
@@ -187,6 +188,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
         conflicts.append(f"instance {dims.block(gid)}/{name} has {k} different content hashes in this slice; "
                          "its versions are kept apart and are not comparable")
     fingerprint = _fingerprint(agg, st, metric, sl)
+    earlier = fingerprint_v1(agg, st, metric, sl)
     # instances -> blocks: within a block, only instances every present treatment has a value for
     valid = agg[agg["value"].notna()]
     treatments = sorted(agg["treatment"].unique(), key=_treatment_key)
@@ -227,7 +229,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
         treatments=[t for t in treatments if t in set(obs["treatment"])] or treatments,
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=runs_in_slice, runs_used=runs_used,
         instances_used=int(used_cells["instance_id"].nunique()), notes=notes, hosts=hosts, campaigns=campaigns,
-        fingerprint=fingerprint, max_run_id=max_run_id, hash_conflicts=conflicts,
+        fingerprint=fingerprint, fingerprint_v1=earlier, max_run_id=max_run_id, hash_conflicts=conflicts,
     )
 
 
@@ -340,13 +342,33 @@ def _policy_values(conn, cond, v, agg: pd.DataFrame, st: dict, sense: str, notes
 
 
 def _fingerprint(agg: pd.DataFrame, st: dict, metric: str, sl: Slice) -> str:
-    """A hash over the contributing runs and values: per treatment and block, the run counts, the
-    sums of run ids and instance ids (a changed content hash is another instance), and weighted
-    value sums of every cell; plus the settings and the slice.
+    """A hash over the runs that contribute: per treatment and block, the run counts (all, with a
+    value, failed), the sum of run ids, a weighted sum of run ids, and the cells and instance ids
+    (a changed content hash is another instance); plus the metric, the settings and the slice.
 
-    Any run that arrives, leaves or changes value moves an id sum or a value sum; the work is
-    a few vectorized sums over the cells, however many there are.
+    Every part is a whole number summed exactly (the weighted sum wraps around 2**64, the same
+    in any order), so the same runs give the same hash whichever way their cells were summed:
+    by the loader in numpy, by SQL on another database, or from the runs themselves. Values
+    are not hashed: a stored run is never overwritten, so its id stands for its values, and any
+    run that arrives, leaves or comes back moves a count or an id sum.
     """
+    f = agg[["treatment", "block", "instance_id", "n", "n_ok", "n_fail", "id_sum"]].copy()
+    w = (f["instance_id"].to_numpy(np.int64) % 9973 + 1).astype(np.uint64)
+    with np.errstate(over="ignore"):
+        f["w_ids"] = f["id_sum"].to_numpy(np.int64).astype(np.uint64) * w
+    g = f.groupby(["treatment", "block"], sort=True).agg(
+        n=("n", "sum"), n_ok=("n_ok", "sum"), n_fail=("n_fail", "sum"), id_sum=("id_sum", "sum"),
+        w_ids=("w_ids", "sum"), cells=("instance_id", "count"), inst=("instance_id", "sum"))
+    rows = [[t, b, int(r.n), int(r.n_ok), int(r.n_fail), int(r.id_sum), int(r.w_ids), int(r.cells), int(r.inst)]
+            for (t, b), r in zip(g.index, g.itertuples(index=False))]
+    payload = json.dumps({"fingerprint": 2, "metric": metric, "settings": st, "slice": sl.to_dict(), "cells": rows},
+                         sort_keys=True)
+    return hashlib.sha256(payload.encode()).hexdigest()
+
+
+def fingerprint_v1(agg: pd.DataFrame, st: dict, metric: str, sl: Slice) -> str:
+    """The hash Blockyard 0.1 kept with its analyses (value sums to 10 digits; order-sensitive at
+    a rounding edge). Re-checks of analyses kept by 0.1 compare against it."""
     f = agg[["treatment", "block", "instance_id", "n", "n_ok", "n_fail", "id_sum"]].copy()
     w = (f["instance_id"].to_numpy(np.float64) % 9973) + 1.0
     for c in ("sum_ok", "sq_ok"):

@@ -457,7 +457,8 @@ def recheck(wh: Warehouse, analysis_id: int) -> Recheck:
         changes.insert(0, "the stored result does not match its digest: it was edited after it was kept")
     elif changes:
         status = "conclusion-changed"
-    elif (new_fp is not None and new_fp != st.fingerprint) or (new_fp is None and _canon(new_doc) != _canon(st.result)):
+    elif (new_fp is not None and st.fingerprint not in (new_fp, new.collapsed.fingerprint_v1)) or (
+            new_fp is None and _canon(new_doc) != _canon(st.result)):
         status = "data-changed"
     else:
         status = "unchanged"

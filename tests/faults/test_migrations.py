@@ -237,16 +237,14 @@ def test_upgrade_keeps_every_row_and_every_stored_analysis(pair):
     assert again.code == 0 and again.json()["status"] == "current", again
 
 
-ROUNDING_EDGE = ("defect: collapse._fingerprint rounds value sums to 10 significant digits, so the same runs "
-                 "summed in another order (the 0003 upgrade's SQL GROUP BY vs the loader's numpy) can round apart "
-                 "when a sum sits on a rounding edge: after `blockyard upgrade` on PostgreSQL, `recheck` of the "
-                 "untouched 'fill' analysis says data-changed where the twin says unchanged")
+# data-b puts a sum of squares on a 10-digit rounding edge (found by searching data seeds): the
+# fingerprint once rounded value sums there, and the upgrade's SQL sums and the loader's numpy sums
+# rounded apart on PostgreSQL; the fingerprint now hashes whole numbers only
 
 
 @pytest.mark.parametrize("pair", [
     pytest.param(2026, id="data-a"),
-    # these values put a sum of squares on a 10-digit rounding edge (found by searching data seeds)
-    pytest.param(10026, id="data-b", marks=pytest.mark.xfail(ON_POSTGRES, strict=True, reason=ROUNDING_EDGE)),
+    pytest.param(10026, id="data-b"),
 ], indirect=True)
 def test_after_the_upgrade_recheck_finds_nothing_changed(pair):
     old, twin, ids = pair

@@ -132,7 +132,11 @@ class CellSums:
         self.sizes[slot] = len(cell_keys)
 
     def write_sqlite(self, raw, campaign_id: int, import_id: int) -> int:
-        """Insert the cells through a SQLite driver connection, many rows per statement.
+        """Insert the cells through a SQLite driver connection, many rows per statement."""
+        return run_statements(raw, self.sqlite_statements(campaign_id, import_id))
+
+    def sqlite_statements(self, campaign_id: int, import_id: int) -> list[tuple[str, list, int]]:
+        """(statement, parameter rows, cells) to write the cells with, built without the database.
 
         As for runs: whole-valued REALs land as INTEGERs in the integer columns and NaN as NULL.
         """
@@ -141,14 +145,13 @@ class CellSums:
         per = 200
         one = "(" + ", ".join("?" * width) + ")"
         head = f"INSERT INTO cell_stats ({', '.join(names)}) VALUES "
-        written = 0
+        out: list[tuple[str, list, int]] = []
         for slot in sorted(self.parts):
             self._merge(slot)
             keys, s = self.parts[slot][0]
             m = len(keys)
             if max(int(np.abs(s["id_sum"]).max(initial=0)), int(s["id_max"].max(initial=0))) >= 2**53:
-                raw.executemany(head + one, [r for r in self._slot_rows(slot, campaign_id, import_id)])
-                written += m
+                out.append((head + one, list(self._slot_rows(slot, campaign_id, import_id)), m))
                 continue
             t = np.empty((m, width), dtype=np.float64)
             has_ok = s["n_ok"] > 0
@@ -173,11 +176,10 @@ class CellSums:
                     t[:, i] = s[name]
             full = m // per * per
             if full:
-                raw.executemany(head + ", ".join([one] * per), t[:full].reshape(-1, per * width).tolist())
+                out.append((head + ", ".join([one] * per), t[:full].reshape(-1, per * width).tolist(), full))
             if m > full:
-                raw.executemany(head + one, t[full:].tolist())
-            written += m
-        return written
+                out.append((head + one, t[full:].tolist(), m - full))
+        return out
 
     def rows(self, campaign_id: int, import_id: int) -> list[tuple]:
         out: list[tuple] = []
@@ -208,3 +210,73 @@ class CellSums:
         for name in INTS:
             columns[name] = s[name].tolist()
         return list(zip(*(columns[c] for c in COLUMNS)))
+
+
+def run_statements(raw, statements: list[tuple[str, list, int]]) -> int:
+    written = 0
+    for sql, params, cells in statements:
+        raw.executemany(sql, params)
+        written += cells
+    return written
+
+
+class Summing:
+    """A CellSums filled in a helper thread, so the sums are made while the runs are written.
+
+    The loading thread hands each chunk's reduced cells over with `add_reduced` and, after the
+    last chunk, asks with `finish` for the statements that write them; `result` waits for the
+    helper and raises whatever it raised. Numpy and the database's own work (inserting rows,
+    building indexes) let go of Python's lock, so the two threads run side by side.
+    """
+
+    def __init__(self):
+        import queue
+        import threading
+
+        self.sums = CellSums()
+        self.statements: list[tuple[str, list, int]] | None = None
+        self._error: BaseException | None = None
+        self._q: queue.Queue = queue.Queue()
+        self._thread = threading.Thread(target=self._run, name="blockyard-cells", daemon=True)
+        self._thread.start()
+
+    def add_reduced(self, chunk: Reduced, base: int, key_maps: tuple, slot_of: dict) -> None:
+        self._q.put(("add", (chunk, base, key_maps, slot_of)))
+
+    def finish(self, campaign_id: int | None = None, import_id: int | None = None) -> None:
+        """No more chunks; with ids, also build the SQLite statements that write the cells."""
+        self._q.put(("finish", (campaign_id, import_id)))
+
+    def result(self) -> CellSums:
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self.sums
+
+    def close(self) -> None:
+        """Stop the helper (a load that failed part-way); harmless after `result`."""
+        if self._thread.is_alive():
+            self._q.put(("stop", None))
+            self._thread.join()
+
+    def _run(self) -> None:
+        while True:
+            kind, arg = self._q.get()
+            if kind == "stop":
+                return
+            try:
+                if kind == "add":
+                    if self._error is None:
+                        self.sums.add_reduced(*arg)
+                    continue
+                campaign_id, import_id = arg
+                if self._error is None:
+                    for slot in list(self.sums.parts):
+                        self.sums._merge(slot)
+                    if campaign_id is not None:
+                        self.statements = self.sums.sqlite_statements(campaign_id, import_id)
+                return
+            except BaseException as exc:  # noqa: BLE001 - raised again by result()
+                self._error = exc
+                if kind != "add":
+                    return

@@ -6,8 +6,10 @@ distinct names touch the dimension tables, and runs are written with executemany
 runs table's secondary indexes aside inside the transaction and builds them again at the end
 (much cheaper than keeping them up to date row by row); if the rebuilt unique key finds a run
 twice, the load starts over the ordinary way so that the duplicates are reported one by one.
-Parsing and checking run in a helper thread (pyarrow and numpy let go of Python's lock) while
-the main thread writes; each chunk is also summed by cell there, for the cell summaries.
+Parsing and checking run in a helper thread (pyarrow and numpy let go of Python's lock), starting
+before the write transaction opens, while the main thread writes; each chunk is also summed by
+cell there, and a second helper merges those sums into the cell summaries while the runs go in
+and the indexes are rebuilt.
 """
 from __future__ import annotations
 
@@ -30,7 +32,7 @@ from ..errors import InputError, StorageError
 from ..store import schema as S
 from ..store.connect import Warehouse
 from . import values as V
-from .cellsums import CellSums, reduce_chunk
+from .cellsums import Summing, reduce_chunk, run_statements
 from .layout import FIELDS, NAME_LIMIT, Layout
 from .sources import SourceInfo, first_pass, read_delimited, read_header, read_jsonl, read_parquet
 
@@ -765,6 +767,11 @@ class _Prefetch:
                 except Exception:  # noqa: BLE001
                     pass
 
+    def close(self) -> None:
+        """Stop the helper and wait for it (also when the chunks were never asked for)."""
+        self._stop.set()
+        self._thread.join()
+
     def __iter__(self):
         try:
             while True:
@@ -853,6 +860,26 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
     report = FileReport(file=shown, status="loaded", campaign=campaign)
     fl = _FileLoad(wh, info, layout, skip_bad)
     total = max(info.lines - (1 if info.delimited else 0), 1)
+    with wh.engine.connect() as peek:  # the metrics known already (they are not guessed at)
+        fl.known_metrics = {r[0] for r in peek.execute(select(S.metrics.c.name))}
+    # The reading starts now, in a helper thread where it can, while the write transaction opens
+    chunks = _checked(fl, _readers(fl))
+    if info.fmt != "jsonl":  # pyarrow parses without Python's lock: read ahead in a helper thread
+        chunks = _Prefetch(chunks)
+    summing = Summing()
+    try:
+        return _write(wh, info, p, campaign, layout, fl, total, chunks, summing, report, dry_run, rejects,
+                      progress, allow_bulk)
+    finally:
+        summing.close()
+        if isinstance(chunks, _Prefetch):
+            chunks.close()
+
+
+def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layout, fl: "_FileLoad", total: int,
+           chunks, summing: "Summing", report: FileReport, dry_run: bool, rejects, progress,
+           allow_bulk: bool) -> FileReport:
+    shown = info.name
     with wh.write() as conn, _ForeignKeysOff(conn, wh.is_sqlite):
         with conn.begin() as trans:
             if wh.dialect == "postgresql":
@@ -863,7 +890,6 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                 rows_read=0, rows_loaded=0, rows_rejected=0, rows_skipped=0,
                 loaded_at=int(time.time()), tool_version=__version__)).inserted_primary_key[0]
             dims = Dimensions(conn)
-            fl.known_metrics = set(dims.metrics)
             next_id = (conn.execute(select(func.max(S.runs.c.id))).scalar() or 0) + 1
             set_aside: list[tuple[str, str]] = []
             if (allow_bulk and wh.is_sqlite and not dry_run and total >= BULK_MIN_ROWS and next_id - 1 <= total):
@@ -872,11 +898,7 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                     conn.exec_driver_sql(f'DROP INDEX "{name}"')
             writer = None
             read = loaded = skipped = 0
-            summaries = CellSums()
             first_id = next_id
-            chunks = _checked(fl, _readers(fl))
-            if info.fmt != "jsonl":  # pyarrow parses without Python's lock: read ahead in a helper thread
-                chunks = _Prefetch(chunks)
             for raw, rows, n_read in chunks:
                 read += n_read
                 if not report.preview:
@@ -906,8 +928,8 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                 ids = np.arange(next_id, next_id + m, dtype=np.int64)
                 next_id += m
                 writer.write(ids, rows, solver, instance, host, has_host, {s: k for k, s in metric_slots.items()})
-                summaries.add_reduced(rows.cells, base=int(ids[0]), key_maps=(solver_of, instance_of, host_of),
-                                      slot_of=metric_slots)
+                summing.add_reduced(rows.cells, base=int(ids[0]), key_maps=(solver_of, instance_of, host_of),
+                                    slot_of=metric_slots)
                 if set_aside:
                     loaded += m  # no key to collide on until the indexes are back; checked there
                 else:
@@ -933,6 +955,11 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                     f"{shown}: no metric columns found (columns: {', '.join(fl.header or list(fl.mapping) + fl.ignored)}){why}; "
                     "a metric is a numeric column other than the run fields"
                 )
+            # the cells are summed up in the helper while the indexes are built (that work lets go of the lock)
+            if wh.is_sqlite and not skipped:
+                summing.finish(campaign_id, import_id)
+            else:
+                summing.finish()
             if set_aside:
                 # sort the keys through temporary files, so that memory stays flat however large the table
                 conn.exec_driver_sql("PRAGMA temp_store = FILE")
@@ -949,13 +976,14 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
                 fl.warnings.append(f"{skipped} runs in all were already in the campaign and were skipped")
             conn.execute(update(S.imports).where(S.imports.c.id == import_id).values(
                 rows_read=read, rows_loaded=loaded, rows_rejected=rejected, rows_skipped=skipped))
+            summaries = summing.result()
             if skipped:  # some rows did not go in: sum the cells from what was stored
                 from ..store import cells
 
                 cells.from_runs(conn, import_id, first_id, next_id - 1)
             else:
                 if wh.is_sqlite:
-                    summaries.write_sqlite(conn.connection.driver_connection, campaign_id, import_id)
+                    run_statements(conn.connection.driver_connection, summing.statements or [])
                 else:
                     from ..store import cells
 

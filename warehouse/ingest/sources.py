@@ -26,6 +26,7 @@ import pyarrow as pa
 from ..errors import InputError
 
 CHUNK_ROWS = 100_000  # rows per chunk handed to the checks and the writer; memory stays flat
+FIRST_CHUNK_ROWS = 20_000  # the first chunk is smaller, so that the writer starts sooner
 BLOCK_BYTES = 1 << 20  # bytes of text the CSV parser reads at a time (it reads a few blocks ahead)
 FORMATS = {".csv": "csv", ".tsv": "tsv", ".tab": "tsv", ".jsonl": "jsonl", ".ndjson": "jsonl",
            ".parquet": "parquet", ".pq": "parquet"}
@@ -335,7 +336,7 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
             continue
         buffer.append(batch)
         buffered += batch.num_rows
-        if buffered >= CHUNK_ROWS:
+        if buffered >= (CHUNK_ROWS if good else min(FIRST_CHUNK_ROWS, CHUNK_ROWS)):
             yield flush()
     if buffer:
         yield flush()

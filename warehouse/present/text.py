@@ -6,8 +6,6 @@ import shutil
 import sys
 from typing import Iterable, Sequence
 
-from tabulate import tabulate
-
 
 def num(x, digits: int = 4) -> str:
     """A number with sensible precision: 4 significant digits, no exponent for ordinary sizes."""
@@ -50,6 +48,8 @@ def pval(p) -> str:
 def table(rows: Sequence[Sequence], headers: Sequence[str], align: Sequence[str] | None = None,
           width: int | None = None) -> str:
     """A borderless table; columns beyond the terminal width are cut, with a note saying so."""
+    from tabulate import tabulate  # here, not at the top: a load's message lines do not need it
+
     try:  # keep the cells' own spacing, so that markers after numbers line up
         text = tabulate(rows, headers=headers, tablefmt="plain", colalign=align, disable_numparse=True,
                         preserve_whitespace=True)
