@@ -135,8 +135,10 @@ class CellSums:
         """Insert the cells through a SQLite driver connection, many rows per statement."""
         return run_statements(raw, self.sqlite_statements(campaign_id, import_id))
 
-    def sqlite_statements(self, campaign_id: int, import_id: int) -> list[tuple[str, list, int]]:
+    def sqlite_statements(self, campaign_id: int, import_id: int) -> list[tuple[str, "list | np.ndarray", int]]:
         """(statement, parameter rows, cells) to write the cells with, built without the database.
+
+        The rows stay a float table until they are written (Python floats take four times the room).
 
         As for runs: whole-valued REALs land as INTEGERs in the integer columns and NaN as NULL.
         """
@@ -176,9 +178,9 @@ class CellSums:
                     t[:, i] = s[name]
             full = m // per * per
             if full:
-                out.append((head + ", ".join([one] * per), t[:full].reshape(-1, per * width).tolist(), full))
+                out.append((head + ", ".join([one] * per), t[:full].reshape(-1, per * width), full))
             if m > full:
-                out.append((head + one, t[full:].tolist(), m - full))
+                out.append((head + one, t[full:], m - full))
         return out
 
     def rows(self, campaign_id: int, import_id: int) -> list[tuple]:
@@ -212,10 +214,10 @@ class CellSums:
         return list(zip(*(columns[c] for c in COLUMNS)))
 
 
-def run_statements(raw, statements: list[tuple[str, list, int]]) -> int:
+def run_statements(raw, statements: list[tuple]) -> int:
     written = 0
     for sql, params, cells in statements:
-        raw.executemany(sql, params)
+        raw.executemany(sql, params.tolist() if isinstance(params, np.ndarray) else params)
         written += cells
     return written
 
@@ -234,7 +236,7 @@ class Summing:
         import threading
 
         self.sums = CellSums()
-        self.statements: list[tuple[str, list, int]] | None = None
+        self.statements: list[tuple] | None = None
         self._error: BaseException | None = None
         self._q: queue.Queue = queue.Queue()
         self._thread = threading.Thread(target=self._run, name="blockyard-cells", daemon=True)
