@@ -159,6 +159,9 @@ def main() -> None:
     print(f"   {small:,} runs:  script {n1:6.2f} s   blockyard {s:6.2f} s   ratio {s / n1:5.3f} (target <= 0.5)")
     print(f"   {small * nights:,} runs: script {n10:6.2f} s   blockyard {l:6.2f} s   ratio {l / n10:5.3f} (target <= 0.1)")
 
+    floor = best(lambda: timed([PY, "-c", "import pandas, scipy.stats, scipy.optimize, sqlalchemy"])[0], a.repeat)
+    print(f"   import floor: python -c 'import pandas, scipy.stats, scipy.optimize, sqlalchemy' {floor:5.2f} s, "
+          f"{floor / n1:5.3f} / {floor / n10:5.3f} of the script before a row is read")
     warm = {label: warm_blocktest(db, slice_, a.repeat) for label, db in (("small", small_db), ("large", large_db))}
     print(f"   in a running shell (the libraries already imported; the same command, timed inside one process):")
     print(f"   {small:,} runs:  {warm['small']:6.2f} s   ratio {warm['small'] / n1:5.3f}")

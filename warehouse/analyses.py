@@ -78,7 +78,10 @@ class BlocktestResult:
 
 
 def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, transform: str = "none",
-                  design: str = "auto", pairs: bool = False) -> BlocktestResult:
+                  design: str = "auto", pairs: bool = False, quick: bool = True) -> BlocktestResult:
+    """The blocked analysis of `metric` over slice `sl`. With `quick`, the collapse may run in SQL
+    and leave out the per-instance table (the generalized design needs it; re-checks of analyses
+    kept by Blockyard 0.1 need the pandas collapse for their fingerprint)."""
     from .analyze.blocked import generalized_anova, incomplete_anova, rcbd_anova
     from .cautions import design_cautions, host_caution, pseudo_replication
 
@@ -88,7 +91,7 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
         raise InputError(f"--design {design}: choose auto, complete, incomplete or generalized")
     if design == "incomplete" and settings.holes != "keep":
         settings = Collapse(settings.replicates, settings.instances, settings.failures, "keep")
-    c = collapse(conn, sl, metric, settings)
+    c = collapse(conn, sl, metric, settings, cells=design == "generalized" or not quick)
     if len(c.treatments) < 2:
         raise DesignError(f"the slice holds one treatment ({', '.join(c.treatments)}); a blocked comparison needs two or more")
     if c.obs.empty:
@@ -235,7 +238,7 @@ def _margin(margin: str | None):
 
 def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline: str, method: str = "dunnett",
                adjust: str = "holm", better: str | None = None, margin: str | None = None,
-               confidence: float = 0.95) -> VersusResult:
+               confidence: float = 0.95, quick: bool = True) -> VersusResult:
     from .analyze.baseline import dunnett_vs_baseline, paired_vs_baseline
     from .cautions import design_cautions, host_caution, pseudo_replication
 
@@ -251,7 +254,7 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
         raise InputError(f"baseline '{baseline}': name one treatment as NAME@VERSION, e.g. stacker@1.4")
     if settings.holes == "keep":
         raise InputError("versus compares on common blocks only; leave --holes at drop")
-    c = collapse(conn, sl, metric, settings)
+    c = collapse(conn, sl, metric, settings, cells=not quick)
     if baseline not in c.treatments:
         from difflib import get_close_matches
 

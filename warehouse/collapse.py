@@ -35,7 +35,7 @@ class Collapsed:
     unit: str
     settings: dict
     obs: pd.DataFrame  # treatment, block, value, instances, runs, failed
-    cells: pd.DataFrame  # treatment, block, instance, value, runs, ok, failed
+    _cells: pd.DataFrame | None  # treatment, block, instance, value, runs, ok, failed (see `cells`)
     treatments: list[str]
     blocks: list[str]  # blocks kept
     dropped_blocks: list[dict]  # {"block", "missing": [...]}
@@ -49,6 +49,13 @@ class Collapsed:
     max_run_id: int
     hash_conflicts: list[str] = field(default_factory=list)
     fingerprint_v1: str = ""  # the 0.1 hash of the same runs, for analyses kept by 0.1
+
+    @property
+    def cells(self) -> pd.DataFrame:
+        """One row per treatment, block and instance; only from collapse(..., cells=True)."""
+        if self._cells is None:
+            raise RuntimeError("this collapse left out the per-instance table; collapse with cells=True")
+        return self._cells
 
     @property
     def complete(self) -> bool:
@@ -139,11 +146,23 @@ def _trimmed(values: np.ndarray, share: float) -> float:
     return float(trim_mean(values, share)) if len(values) else math.nan
 
 
-def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collapsed:
-    """One observation per treatment and block for `metric` over the runs of slice `sl`."""
+def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: bool = True) -> Collapsed:
+    """One observation per treatment and block for `metric` over the runs of slice `sl`.
+
+    With `cells=False` the per-instance table is not needed: for the default settings (mean of
+    replicates and of instances, failures dropped) on a slice the cell summaries can answer, the
+    whole collapse then runs in SQL, and only the observations (one row per treatment and block)
+    come back. Both ways give the same observations, notes and fingerprint (the tests hold them
+    side by side); `Collapsed.cells` is then not available.
+    """
     st = parse_settings(settings)
     dims = Dims.load(conn)
     metric, slot, sense, unit = _metric(dims, metric)
+    if not cells and st["replicates"] == "mean" and st["instances"] == "mean" and st["failures"] == "drop" \
+            and cells_can_answer(sl):
+        quick = _collapse_in_sql(conn, sl, dims, metric, slot, sense, unit, st)
+        if quick is not None:
+            return quick
     cond = condition(sl, dims, conn)
     v = R.c[f"v{slot}"]
     extremes = st["failures"] != "drop"
@@ -160,13 +179,10 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
     for c in EXTREME_COLS:
         if c not in agg:
             agg[c] = np.nan
+    for c in ("n", "n_ok", "n_fail", "id_sum", "id_max"):  # whole numbers (PostgreSQL sums come as Decimals)
+        agg[c] = agg[c].astype(np.int64)
     # which hosts and campaigns each treatment's runs came from: a small second query
-    seen = rows_frame(conn.execute(select(table.c.solver_id, table.c.host_id, table.c.campaign_id).where(where).distinct()),
-                      columns=["solver_id", "host_id", "campaign_id"])
-    hosts = {dims.treatment(int(s)): sorted({dims.hosts.get(int(h), "(unknown)") if not pd.isna(h) else "(unknown)"
-                                             for h in g["host_id"]}) for s, g in seen.groupby("solver_id")}
-    campaigns = {dims.treatment(int(s)): sorted({dims.campaigns[int(c)] for c in g["campaign_id"]})
-                 for s, g in seen.groupby("solver_id")}
+    hosts, campaigns = _sources(conn, table, where, dims)
     runs_in_slice = int(agg["n"].sum())
     max_run_id = int(agg["id_max"].max())
     notes: list[str] = []
@@ -203,17 +219,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
     stat = "median" if st["instances"] == "median" else "mean"
     obs = used.groupby(["treatment", "block"], as_index=False).agg(
         value=("value", stat), instances=("instance_id", "nunique"), runs=("n", "sum"), failed=("n_fail", "sum"))
-    all_blocks = sorted(agg["block"].unique())
-    dropped = []
-    have = obs.groupby("block")["treatment"].apply(set).to_dict()
-    for b in all_blocks:
-        missing = [t for t in treatments if t not in have.get(b, set())]
-        if missing:
-            dropped.append({"block": b, "missing": missing})
-    if st["holes"] == "drop" and dropped:
-        gone = {d["block"] for d in dropped}
-        obs = obs[~obs["block"].isin(gone)]
-    obs = obs.reset_index(drop=True)
+    obs, dropped = _holes(obs, sorted(agg["block"].unique()), treatments, st)
     kept_blocks = sorted(obs["block"].unique())
     used_cells = used[used["block"].isin(kept_blocks)]
     if st["failures"] == "drop":
@@ -225,12 +231,144 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse) -> Collaps
     if fail_runs and st["failures"] == "drop":
         notes.insert(0, f"{fail_runs} failed runs dropped")
     return Collapsed(
-        slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, cells=cells,
+        slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, _cells=cells,
         treatments=[t for t in treatments if t in set(obs["treatment"])] or treatments,
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=runs_in_slice, runs_used=runs_used,
         instances_used=int(used_cells["instance_id"].nunique()), notes=notes, hosts=hosts, campaigns=campaigns,
         fingerprint=fingerprint, fingerprint_v1=earlier, max_run_id=max_run_id, hash_conflicts=conflicts,
     )
+
+
+def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense: str, unit: str,
+                     st: dict) -> Collapsed | None:
+    """The default collapse as one SQL statement over the cell summaries (see `collapse`).
+
+    Per treatment and block it returns the fingerprint's sums over every cell and, over the
+    instances every treatment present in the block has a value for, the observation. None when
+    the database cannot do it this way (the caller then collapses in pandas).
+    """
+    from sqlalchemy.exc import DBAPIError
+
+    C, I = S.cell_stats, S.instances
+    where = and_(condition(sl, dims, conn, table=C), C.c.slot == slot)
+    c = (select(C.c.solver_id, C.c.instance_id, func.sum(C.c.n).label("n"), func.sum(C.c.n_ok).label("n_ok"),
+                func.sum(C.c.sum_ok).label("sum_ok"), func.sum(C.c.n_fail).label("n_fail"),
+                func.sum(C.c.id_sum).label("id_sum"), func.max(C.c.id_max).label("id_max"))
+         .where(where).group_by(C.c.solver_id, C.c.instance_id)).cte("c")
+    v = (select(c.c.solver_id, I.c.group_id, c.c.instance_id, c.c.n, c.c.n_ok, c.c.n_fail, c.c.id_sum, c.c.id_max,
+                case((c.c.n_ok > 0, c.c.sum_ok * 1.0 / c.c.n_ok), else_=None).label("value"))
+         .join_from(c, I, I.c.id == c.c.instance_id)).cte("v")
+    valid = select(v.c.solver_id, v.c.group_id, v.c.instance_id).where(v.c.value.is_not(None)).cte("valid")
+    present = (select(valid.c.group_id, func.count(func.distinct(valid.c.solver_id)).label("k"))
+               .group_by(valid.c.group_id)).cte("present")
+    per_inst = (select(valid.c.group_id, valid.c.instance_id, func.count().label("k"))
+                .group_by(valid.c.group_id, valid.c.instance_id)).cte("per_inst")
+    common = (select(per_inst.c.group_id, per_inst.c.instance_id)
+              .join_from(per_inst, present, and_(present.c.group_id == per_inst.c.group_id,
+                                                 present.c.k == per_inst.c.k))).cte("common")
+    fp = (select(v.c.solver_id, v.c.group_id, func.sum(v.c.n).label("n"), func.sum(v.c.n_ok).label("n_ok"),
+                 func.sum(v.c.n_fail).label("n_fail"), func.sum(v.c.id_sum).label("id_sum"),
+                 func.sum((v.c.id_sum % W_MOD) * (v.c.instance_id % 9973 + 1) % W_MOD).label("w_ids"),
+                 func.count().label("cells"), func.sum(v.c.instance_id).label("inst"),
+                 func.max(v.c.id_max).label("id_max"),
+                 func.sum(case(((v.c.n_ok == 0) & (v.c.n_fail > 0), 1), else_=0)).label("lost"))
+          .group_by(v.c.solver_id, v.c.group_id)).cte("fp")
+    ob = (select(v.c.solver_id, v.c.group_id, func.avg(v.c.value).label("value"), func.count().label("instances"),
+                 func.sum(v.c.n).label("runs"), func.sum(v.c.n_fail).label("failed"), func.sum(v.c.n_ok).label("ok"))
+          .join_from(v, common, and_(common.c.group_id == v.c.group_id, common.c.instance_id == v.c.instance_id))
+          .where(v.c.value.is_not(None)).group_by(v.c.solver_id, v.c.group_id)).cte("ob")
+    valid_instances = select(func.count(func.distinct(valid.c.instance_id))).scalar_subquery()
+    query = (select(fp, ob.c.value, ob.c.instances, ob.c.runs, ob.c.failed, ob.c.ok,
+                    valid_instances.label("valid_instances"))
+             .join_from(fp, ob, and_(ob.c.solver_id == fp.c.solver_id, ob.c.group_id == fp.c.group_id), isouter=True))
+    try:
+        rows = conn.execute(query).all()
+    except DBAPIError:  # an integer sum past 64 bits, say: the pandas way has no such limit
+        conn.rollback()
+        return None
+    if not rows:
+        raise DesignError(f"no runs in slice '{sl.text or '(everything)'}'; see blockyard inventory for what is stored")
+    label = {int(sid): dims.treatment(int(sid)) for sid in {r.solver_id for r in rows}}
+    if len(set(label.values())) != len(label):
+        return None  # two solvers under one label: the pandas way groups them
+    block = {int(g): dims.block(int(g)) for g in {r.group_id for r in rows}}
+    conflicts = _hash_conflicts(conn, where, dims)
+    notes: list[str] = []
+    lost = sum(int(r.lost) for r in rows)
+    if lost:
+        notes.append(f"{lost} cells (treatment x instance) had no successful run and are missing")
+    fingerprint = _fingerprint_of([(label[int(r.solver_id)], block[int(r.group_id)], r.n, r.n_ok, r.n_fail, r.id_sum,
+                                    r.w_ids, r.cells, r.inst) for r in rows], st, metric, sl)
+    got = [r for r in rows if r.value is not None]
+    obs = pd.DataFrame({
+        "treatment": [label[int(r.solver_id)] for r in got], "block": [block[int(r.group_id)] for r in got],
+        "value": np.array([float(r.value) for r in got], dtype=float),
+        "instances": np.array([int(r.instances) for r in got], dtype=np.int64),
+        "runs": np.array([int(r.runs) for r in got], dtype=np.int64),
+        "failed": np.array([int(r.failed) for r in got], dtype=np.int64),
+        "ok": np.array([int(r.ok) for r in got], dtype=np.int64)})
+    obs = obs.sort_values(["treatment", "block"], kind="stable").reset_index(drop=True)
+    per_block = obs.groupby("block")["instances"].first()  # every treatment of a block has its common instances
+    not_common = int(rows[0].valid_instances) - int(per_block.sum())
+    if not_common:
+        notes.append(f"{not_common} instances left out because not every treatment in their block has a value on them")
+    treatments = sorted(set(label.values()), key=_treatment_key)
+    obs, dropped = _holes(obs, sorted(set(block.values())), treatments, st)
+    kept_blocks = sorted(obs["block"].unique())
+    runs_used = int(obs["ok"].sum())
+    instances_used = int(per_block.reindex(kept_blocks).sum()) if kept_blocks else 0
+    obs = obs.drop(columns="ok")
+    fail_runs = sum(int(r.n_fail) for r in rows)
+    if fail_runs:
+        notes.insert(0, f"{fail_runs} failed runs dropped")
+    hosts, campaigns = _sources(conn, C, where, dims)
+    return Collapsed(
+        slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, _cells=None,
+        treatments=[t for t in treatments if t in set(obs["treatment"])] or treatments,
+        blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=sum(int(r.n) for r in rows), runs_used=runs_used,
+        instances_used=instances_used, notes=notes, hosts=hosts, campaigns=campaigns,
+        fingerprint=fingerprint, max_run_id=max(int(r.id_max) for r in rows), hash_conflicts=conflicts)
+
+
+def _holes(obs: pd.DataFrame, all_blocks: list[str], treatments: list[str], st: dict) -> tuple[pd.DataFrame, list[dict]]:
+    """The blocks some treatment has no observation in; with holes=drop they leave the table."""
+    have = obs.groupby("block")["treatment"].apply(set).to_dict()
+    dropped = []
+    for b in all_blocks:
+        missing = [t for t in treatments if t not in have.get(b, set())]
+        if missing:
+            dropped.append({"block": b, "missing": missing})
+    if st["holes"] == "drop" and dropped:
+        gone = {d["block"] for d in dropped}
+        obs = obs[~obs["block"].isin(gone)]
+    return obs.reset_index(drop=True), dropped
+
+
+def _hash_conflicts(conn, where, dims: Dims) -> list[str]:
+    """Instances of the slice that share a block and a name but not a content hash."""
+    I = S.instances
+    clash = (select(I.c.group_id, I.c.name).group_by(I.c.group_id, I.c.name)
+             .having(func.count(func.distinct(I.c.content_hash)) > 1))
+    if conn.execute(clash.limit(1)).first() is None:  # none anywhere: nothing to look for in the slice
+        return []
+    ids = select(S.cell_stats.c.instance_id).where(where).distinct().scalar_subquery()
+    rows = conn.execute(select(I.c.group_id, I.c.name, func.count(func.distinct(I.c.content_hash)))
+                        .where(I.c.id.in_(ids)).group_by(I.c.group_id, I.c.name)
+                        .having(func.count(func.distinct(I.c.content_hash)) > 1)
+                        .order_by(I.c.group_id, I.c.name)).all()
+    return [f"instance {dims.block(int(g))}/{name} has {int(k)} different content hashes in this slice; "
+            "its versions are kept apart and are not comparable" for g, name, k in rows]
+
+
+def _sources(conn, table, where, dims: Dims) -> tuple[dict, dict]:
+    """Which hosts and campaigns each treatment's runs came from."""
+    seen = rows_frame(conn.execute(select(table.c.solver_id, table.c.host_id, table.c.campaign_id).where(where).distinct()),
+                      columns=["solver_id", "host_id", "campaign_id"])
+    hosts = {dims.treatment(int(s)): sorted({dims.hosts.get(int(h), "(unknown)") if not pd.isna(h) else "(unknown)"
+                                             for h in g["host_id"]}) for s, g in seen.groupby("solver_id")}
+    campaigns = {dims.treatment(int(s)): sorted({dims.campaigns[int(c)] for c in g["campaign_id"]})
+                 for s, g in seen.groupby("solver_id")}
+    return hosts, campaigns
 
 
 def rows_frame(result, columns: list[str]) -> pd.DataFrame:
@@ -346,21 +484,30 @@ def _fingerprint(agg: pd.DataFrame, st: dict, metric: str, sl: Slice) -> str:
     value, failed), the sum of run ids, a weighted sum of run ids, and the cells and instance ids
     (a changed content hash is another instance); plus the metric, the settings and the slice.
 
-    Every part is a whole number summed exactly (the weighted sum wraps around 2**64, the same
-    in any order), so the same runs give the same hash whichever way their cells were summed:
+    Every part is a whole number summed exactly (the weighted terms are taken modulo 2**31 - 1),
+    so the same runs give the same hash whichever way their cells were summed:
     by the loader in numpy, by SQL on another database, or from the runs themselves. Values
     are not hashed: a stored run is never overwritten, so its id stands for its values, and any
     run that arrives, leaves or comes back moves a count or an id sum.
     """
     f = agg[["treatment", "block", "instance_id", "n", "n_ok", "n_fail", "id_sum"]].copy()
-    w = (f["instance_id"].to_numpy(np.int64) % 9973 + 1).astype(np.uint64)
-    with np.errstate(over="ignore"):
-        f["w_ids"] = f["id_sum"].to_numpy(np.int64).astype(np.uint64) * w
+    ids, inst = f["id_sum"].to_numpy(np.int64), f["instance_id"].to_numpy(np.int64)
+    f["w_ids"] = (ids % W_MOD) * (inst % 9973 + 1) % W_MOD
     g = f.groupby(["treatment", "block"], sort=True).agg(
         n=("n", "sum"), n_ok=("n_ok", "sum"), n_fail=("n_fail", "sum"), id_sum=("id_sum", "sum"),
         w_ids=("w_ids", "sum"), cells=("instance_id", "count"), inst=("instance_id", "sum"))
-    rows = [[t, b, int(r.n), int(r.n_ok), int(r.n_fail), int(r.id_sum), int(r.w_ids), int(r.cells), int(r.inst)]
-            for (t, b), r in zip(g.index, g.itertuples(index=False))]
+    return _fingerprint_of([(t, b, r.n, r.n_ok, r.n_fail, r.id_sum, r.w_ids, r.cells, r.inst)
+                            for (t, b), r in zip(g.index, g.itertuples(index=False))], st, metric, sl)
+
+
+W_MOD = 2147483647  # 2**31 - 1: each weighted term stays below 2**31, so their sums stay exact in SQL too
+
+
+def _fingerprint_of(groups: list[tuple], st: dict, metric: str, sl: Slice) -> str:
+    """The hash of (treatment, block, n, n_ok, n_fail, id_sum, weighted id sum, cells, instance sum)
+    rows, in treatment and block order, with the metric, settings and slice."""
+    rows = [[t, b, int(n), int(ok), int(fail), int(ids), int(w) % W_MOD, int(cells), int(inst)]
+            for t, b, n, ok, fail, ids, w, cells, inst in sorted(groups, key=lambda r: (r[0], r[1]))]
     payload = json.dumps({"fingerprint": 2, "metric": metric, "settings": st, "slice": sl.to_dict(), "cells": rows},
                          sort_keys=True)
     return hashlib.sha256(payload.encode()).hexdigest()

@@ -385,12 +385,13 @@ def rerun(wh: Warehouse, st: Stored):
     col = Collapse(**st.settings.get("collapse", {})) if st.settings.get("collapse") else Collapse()
     with wh.engine.connect() as conn:
         if st.kind == "blocktest":
+            # quick=False: the pandas collapse, which also gives the 0.1 fingerprint of the same runs
             return run_blocktest(conn, st.slice, st.metric, col, opts.get("transform", "none"),
-                                 opts.get("design", "auto"), opts.get("pairs", False))
+                                 opts.get("design", "auto"), opts.get("pairs", False), quick=False)
         if st.kind == "versus":
             return run_versus(conn, st.slice, st.metric, col, opts["baseline"], opts.get("method", "dunnett"),
                               opts.get("adjust", "holm"), opts.get("better"), opts.get("margin"),
-                              opts.get("confidence", 0.95))
+                              opts.get("confidence", 0.95), quick=False)
     if st.kind == "plan":
         source = None
         if opts.get("from") is not None:
