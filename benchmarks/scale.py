@@ -99,10 +99,14 @@ def main() -> None:
         return timed(["sqlite3", str(db), "-cmd", ".mode csv", f".import {last} runs"])[0]
 
     t_load, t_naive, t_import = best(load_once, 2), best(naive_once, 2), best(import_once, 2)
+    from ingest import time_floor  # noqa: E402  (the same floor as benchmarks/ingest.py)
+    t_floor = min(time_floor(last, work) for _ in range(2))
     print(f"\n1. load {small:,} runs (best of 2, whole process)")
     print(f"   blockyard load        {t_load:7.2f} s")
     print(f"   naive csv+executemany {t_naive:7.2f} s   ratio {t_load / t_naive:5.2f}  (target <= 1.0)")
     print(f"   sqlite3 .import       {t_import:7.2f} s   ratio {t_load / t_import:5.2f}  (SQLite's own speed, the near limit)")
+    print(f"   floor                 {t_floor:7.2f} s   {t_floor / t_naive:5.2f} of the naive reference: SQLite alone "
+          "storing the parsed runs under our run key and time index (no start-up, reading or cell sums)")
 
     # 2. peak memory is flat in file size
     big_file = work / "all-nights.csv"

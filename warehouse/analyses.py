@@ -37,11 +37,11 @@ class BlocktestResult:
 
     def to_dict(self) -> dict:
         c, s = self.collapsed, self.stats
+        sd = s.to_dict()
         d = {"slice": c.slice_text, "metric": c.metric, "sense": c.sense, "design": self.design,
              "treatments": len(c.treatments), "blocks": len(c.blocks), "treatment_names": c.treatments,
-             "dropped_blocks": c.dropped_blocks, "anova": s.to_dict()["anova"], "collapse": _collapse_doc(c),
+             "dropped_blocks": c.dropped_blocks, "anova": sd["anova"], "collapse": _collapse_doc(c),
              "warnings": self.warnings}
-        sd = s.to_dict()
         for key in ("r_squared", "relative_efficiency", "relative_efficiency_corrected", "residual_ms",
                     "residual_df", "transform", "recommended", "advice", "balance", "interaction_ms",
                     "interaction_df", "treatment_random_blocks", "transform_checks"):

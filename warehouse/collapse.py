@@ -6,6 +6,9 @@ declared policy, and every step reports what it touched.
 
 With the default settings (mean of replicates) the whole replicate step runs in SQL as one
 GROUP BY over the slice; median and trimmed means read the slice's values and finish in pandas.
+For blocktest and versus with all the defaults (mean of replicates and of instances, failures
+dropped) on a slice the cell summaries answer, the instance step runs in SQL too, and only the
+observations come back (`collapse(..., cells=False)`).
 """
 from __future__ import annotations
 
@@ -258,29 +261,34 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
     v = (select(c.c.solver_id, I.c.group_id, c.c.instance_id, c.c.n, c.c.n_ok, c.c.n_fail, c.c.id_sum, c.c.id_max,
                 case((c.c.n_ok > 0, c.c.sum_ok * 1.0 / c.c.n_ok), else_=None).label("value"))
          .join_from(c, I, I.c.id == c.c.instance_id)).cte("v")
-    valid = select(v.c.solver_id, v.c.group_id, v.c.instance_id).where(v.c.value.is_not(None)).cte("valid")
-    present = (select(valid.c.group_id, func.count(func.distinct(valid.c.solver_id)).label("k"))
-               .group_by(valid.c.group_id)).cte("present")
-    per_inst = (select(valid.c.group_id, valid.c.instance_id, func.count().label("k"))
-                .group_by(valid.c.group_id, valid.c.instance_id)).cte("per_inst")
-    common = (select(per_inst.c.group_id, per_inst.c.instance_id)
+    has_value = v.c.value.is_not(None)
+    # per instance, the treatments with a value on it; per block, the treatments with any value
+    per_inst = (select(v.c.instance_id, v.c.group_id, func.count().label("k")).where(has_value)
+                .group_by(v.c.instance_id)).cte("per_inst")
+    present = (select(v.c.group_id, func.count(func.distinct(v.c.solver_id)).label("k")).where(has_value)
+               .group_by(v.c.group_id)).cte("present")
+    common = (select(per_inst.c.instance_id)
               .join_from(per_inst, present, and_(present.c.group_id == per_inst.c.group_id,
                                                  present.c.k == per_inst.c.k))).cte("common")
-    fp = (select(v.c.solver_id, v.c.group_id, func.sum(v.c.n).label("n"), func.sum(v.c.n_ok).label("n_ok"),
-                 func.sum(v.c.n_fail).label("n_fail"), func.sum(v.c.id_sum).label("id_sum"),
-                 func.sum((v.c.id_sum % W_MOD) * (v.c.instance_id % 9973 + 1) % W_MOD).label("w_ids"),
-                 func.count().label("cells"), func.sum(v.c.instance_id).label("inst"),
-                 func.max(v.c.id_max).label("id_max"),
-                 func.sum(case(((v.c.n_ok == 0) & (v.c.n_fail > 0), 1), else_=0)).label("lost"))
-          .group_by(v.c.solver_id, v.c.group_id)).cte("fp")
-    ob = (select(v.c.solver_id, v.c.group_id, func.avg(v.c.value).label("value"), func.count().label("instances"),
-                 func.sum(v.c.n).label("runs"), func.sum(v.c.n_fail).label("failed"), func.sum(v.c.n_ok).label("ok"))
-          .join_from(v, common, and_(common.c.group_id == v.c.group_id, common.c.instance_id == v.c.instance_id))
-          .where(v.c.value.is_not(None)).group_by(v.c.solver_id, v.c.group_id)).cte("ob")
-    valid_instances = select(func.count(func.distinct(valid.c.instance_id))).scalar_subquery()
-    query = (select(fp, ob.c.value, ob.c.instances, ob.c.runs, ob.c.failed, ob.c.ok,
-                    valid_instances.label("valid_instances"))
-             .join_from(fp, ob, and_(ob.c.solver_id == fp.c.solver_id, ob.c.group_id == fp.c.group_id), isouter=True))
+    m = common.alias("m")
+    used = m.c.instance_id.is_not(None)
+
+    def where_used(col):
+        return case((used, col), else_=None)
+
+    # one pass: the fingerprint's sums over every cell, the observation over the common instances
+    query = (select(v.c.solver_id, v.c.group_id, func.sum(v.c.n).label("n"), func.sum(v.c.n_ok).label("n_ok"),
+                    func.sum(v.c.n_fail).label("n_fail"), func.sum(v.c.id_sum).label("id_sum"),
+                    func.sum((v.c.id_sum % W_MOD) * (v.c.instance_id % 9973 + 1) % W_MOD).label("w_ids"),
+                    func.count().label("cells"), func.sum(v.c.instance_id).label("inst"),
+                    func.max(v.c.id_max).label("id_max"),
+                    func.sum(case(((v.c.n_ok == 0) & (v.c.n_fail > 0), 1), else_=0)).label("lost"),
+                    func.avg(where_used(v.c.value)).label("value"), func.count(m.c.instance_id).label("instances"),
+                    func.sum(where_used(v.c.n)).label("runs"), func.sum(where_used(v.c.n_fail)).label("failed"),
+                    func.sum(where_used(v.c.n_ok)).label("ok"),
+                    select(func.count()).select_from(per_inst).scalar_subquery().label("valid_instances"))
+             .join_from(v, m, and_(m.c.instance_id == v.c.instance_id, has_value), isouter=True)
+             .group_by(v.c.solver_id, v.c.group_id))
     try:
         rows = conn.execute(query).all()
     except DBAPIError:  # an integer sum past 64 bits, say: the pandas way has no such limit

@@ -113,7 +113,8 @@ class Dimensions:
         return out
 
     def instance_ids(self, keys: list[tuple], warnings: list[str]) -> list[int]:
-        out = []
+        out: list[int | None] = []
+        new: list[tuple[int, int, str, str]] = []  # (position in out, group id, name, content hash)
         for family, group, inst, chash in keys:
             fid = self.families.get(family)
             if fid is None:
@@ -129,10 +130,28 @@ class Dimensions:
                         f"instance {family}/{group}/{inst} has content hash '{chash or '(none)'}' here but "
                         f"'{sorted(known)[0] or '(none)'}' elsewhere: kept as a different instance"
                     )
-                iid = self.instances[(gid, inst, chash)] = self._add(S.instances, group_id=gid, name=inst, content_hash=chash)
                 known.add(chash)
+                new.append((len(out), gid, inst, chash))  # the keys are distinct: each is added once
             out.append(iid)
+        if new:
+            for (j, gid, inst, chash), iid in zip(new, self._add_instances([n[1:] for n in new])):
+                self.instances[(gid, inst, chash)] = out[j] = iid
         return out
+
+    def _add_instances(self, rows: list[tuple[int, str, str]]) -> list[int]:
+        """New instances, in one executemany on SQLite (a first load may bring tens of thousands).
+
+        The ids are ours to give: the load holds the write lock from BEGIN, so nobody else adds
+        instances meanwhile, and the next id is one past the largest.
+        """
+        if self.conn.dialect.name != "sqlite":
+            return [self._add(S.instances, group_id=g, name=n, content_hash=h) for g, n, h in rows]
+        raw = self.conn.connection.driver_connection
+        first = (raw.execute("SELECT max(id) FROM instances").fetchone()[0] or 0) + 1
+        ids = list(range(first, first + len(rows)))
+        raw.executemany("INSERT INTO instances (id, group_id, name, content_hash) VALUES (?, ?, ?, ?)",
+                        [(i, g, n, h) for i, (g, n, h) in zip(ids, rows)])
+        return ids
 
     def host_ids(self, names: list[str]) -> list[int | None]:
         out = []
