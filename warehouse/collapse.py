@@ -264,7 +264,7 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
     has_value = v.c.value.is_not(None)
     # per instance, the treatments with a value on it; per block, the treatments with any value
     per_inst = (select(v.c.instance_id, v.c.group_id, func.count().label("k")).where(has_value)
-                .group_by(v.c.instance_id)).cte("per_inst")
+                .group_by(v.c.instance_id, v.c.group_id)).cte("per_inst")
     present = (select(v.c.group_id, func.count(func.distinct(v.c.solver_id)).label("k")).where(has_value)
                .group_by(v.c.group_id)).cte("present")
     common = (select(per_inst.c.instance_id)
