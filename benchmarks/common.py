@@ -12,16 +12,24 @@ PY = sys.executable
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def blockyard(*args: str, check: bool = True) -> tuple[float, int, str]:
-    """Run `python -m warehouse ARGS` as its own process: (wall seconds, peak RSS in MiB, stdout)."""
-    return timed([PY, "-m", "warehouse", *args], check=check)
+def blockyard(*args: str, check: bool = True, resident: str | None = None) -> tuple[float, int, str]:
+    """Run `python -m warehouse ARGS` as its own process: (wall seconds, peak RSS in MiB, stdout).
+
+    With `resident` (a runtime folder), the command goes to the resident process there, if one
+    runs; without, it never does (BLOCKYARD_RESIDENT=off), whatever the user has running.
+    """
+    return timed([PY, "-m", "warehouse", *args], check=check, resident=resident)
 
 
-def timed(cmd: list[str], check: bool = True, stdin: str | None = None) -> tuple[float, int, str]:
+def timed(cmd: list[str], check: bool = True, stdin: str | None = None,
+          resident: str | None = None) -> tuple[float, int, str]:
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "BLOCKYARD_RESIDENT": "off"}
+    if resident:
+        env.pop("BLOCKYARD_RESIDENT")
+        env["BLOCKYARD_RUNTIME_DIR"] = resident
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     t = time.perf_counter()
-    proc = subprocess.run(cmd, capture_output=True, text=True, input=stdin, cwd=ROOT,
-                          env={**os.environ, "PYTHONPATH": str(ROOT)})
+    proc = subprocess.run(cmd, capture_output=True, text=True, input=stdin, cwd=ROOT, env=env)
     wall = time.perf_counter() - t
     peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     if check and proc.returncode != 0:

@@ -12,6 +12,9 @@ import uuid
 import pytest
 
 TEST_URL = os.environ.get("BLOCKYARD_TEST_URL", "")
+# a resident process the developer has running must not serve the tests' commands
+# (tests/test_resident.py starts its own, in a folder of its own)
+os.environ["BLOCKYARD_RESIDENT"] = "off"
 ON_POSTGRES = TEST_URL.startswith("postgres")
 
 

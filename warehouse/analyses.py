@@ -37,7 +37,9 @@ class BlocktestResult:
 
     def to_dict(self) -> dict:
         c, s = self.collapsed, self.stats
-        sd = s.to_dict()
+        sd = self.__dict__.get("_stats_doc")
+        if sd is None:  # the statistics' document is the same for the ledger and for the output
+            sd = self.__dict__["_stats_doc"] = s.to_dict()
         d = {"slice": c.slice_text, "metric": c.metric, "sense": c.sense, "design": self.design,
              "treatments": len(c.treatments), "blocks": len(c.blocks), "treatment_names": c.treatments,
              "dropped_blocks": c.dropped_blocks, "anova": sd["anova"], "collapse": _collapse_doc(c),

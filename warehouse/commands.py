@@ -8,10 +8,11 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import time
 from dataclasses import dataclass, field
 from typing import Callable
 
-from .errors import InputError
+from .errors import InputError, StorageError
 from .session import Session
 
 
@@ -221,3 +222,53 @@ def cmd_demo(session: Session, a) -> Done:
     from .walkthrough import run_demo
 
     return run_demo(a.folder, json_mode=a.json)
+
+
+# --- resident ----------------------------------------------------------------------------------
+
+def _resident_args(p):
+    from .resident import DEFAULT_IDLE_MINUTES, FORWARDED
+
+    p.add_argument("action", choices=["start", "stop", "status", "serve"],
+                   help="start one in the background, stop it, say whether one runs, or serve in the foreground")
+    p.add_argument("--idle", type=float, default=DEFAULT_IDLE_MINUTES, metavar="MINUTES",
+                   help=f"stop after this many minutes without a command (default {DEFAULT_IDLE_MINUTES:g})")
+    p.epilog = ("While a resident runs, blockyard hands it these commands and prints what it sends back: "
+                f"{', '.join(sorted(FORWARDED))}. BLOCKYARD_RESIDENT=off keeps a command out of it. "
+                "Example: blockyard resident start")
+    add_json(p)
+
+
+@command("resident", "keep one warm Blockyard process that runs the analysis commands without start-up time",
+         "blockyard resident start --idle 60", needs_warehouse=False)
+@args(_resident_args)
+def cmd_resident(session: Session, a) -> Done:
+    from . import resident
+
+    if a.idle <= 0:
+        raise InputError(f"--idle {a.idle:g}: give a number of minutes above 0")
+    if a.action == "serve":
+        code = resident.serve(a.idle)
+        return Done("", {"stopped": True}, exit_status=code)
+    if a.action == "start":
+        try:
+            doc = resident.start(a.idle)
+        except OSError as exc:
+            raise StorageError(f"cannot start a resident process: {exc}") from None
+        if doc.get("started"):
+            text = (f"resident started (process {doc['pid']}, stops after {doc['idle_minutes']:g} idle minutes); "
+                    "blockyard now hands it the analysis commands; stop it with: blockyard resident stop")
+        else:
+            text = f"a resident is running already (process {doc['pid']}, {doc['served']} commands served)"
+        return Done(text, doc)
+    if a.action == "stop":
+        stopped = resident.stop()
+        return Done("resident stopped" if stopped else "no resident was running", {"stopped": stopped})
+    doc = resident.status()
+    if doc.get("running"):
+        since = time.strftime("%Y-%m-%d %H:%M", time.gmtime(doc["since"]))
+        text = (f"resident running: process {doc['pid']} since {since} UTC, {doc['served']} commands served, "
+                f"stops after {doc['idle_minutes']:g} idle minutes; socket {doc['socket']}")
+    else:
+        text = "no resident running; start one with: blockyard resident start"
+    return Done(text, doc)

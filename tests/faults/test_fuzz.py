@@ -428,7 +428,9 @@ def test_a_quoted_treatment_keeps_operator_characters_in_its_name():
 
 # --- every command's arguments -----------------------------------------------------------------
 
-SKIP_COMMANDS = {"demo": "builds a whole demo warehouse (seconds per call); the demo has tests of its own"}
+SKIP_COMMANDS = {"demo": "builds a whole demo warehouse (seconds per call); the demo has tests of its own",
+                 "resident": "starts, serves and stops a background process (serve blocks by design); "
+                             "tests/test_resident.py has tests of its own"}
 
 
 def registry():

@@ -1,0 +1,392 @@
+"""A resident Blockyard: one warm process that runs the commands the command line hands it.
+
+Starting Python and importing pandas, SciPy and SQLAlchemy takes about a second before a
+command reads its first row. For a script that calls blockyard again and again (a claim re-checked
+on every commit, a blocktest per campaign) that second is most of the time. `blockyard resident
+start` starts one process per user that keeps those libraries imported; while it runs, `blockyard`
+hands it the commands in FORWARDED over a UNIX socket in a private folder and prints what comes
+back: the same output, on the same streams, with the same exit status.
+
+The resident serves one command at a time, each in the caller's working folder and with the
+caller's environment, and opens the warehouse afresh for each (so it sees every load at once). It
+refuses a caller whose Blockyard files differ from its own (after an upgrade or an edit) and
+stops; the caller then runs the command itself, as it does whenever no resident answers. It stops
+by itself after --idle minutes without work, on `blockyard resident stop`, or on SIGTERM.
+Set BLOCKYARD_RESIDENT=off to keep a command out of it. Linux only (it checks the caller's
+user id on the socket).
+
+This module is imported by every `blockyard` call before anything else: the standard library only,
+until it is the resident itself.
+"""
+from __future__ import annotations
+
+import json
+import os
+import socket
+import struct
+import sys
+import time
+from pathlib import Path
+
+# commands that read the warehouse (or write only the ledger) and print: the ones worth forwarding
+FORWARDED = frozenset({"peek", "blocktest", "versus", "plan", "recall", "recheck", "inventory", "keep"})
+PROTOCOL = 1
+DEFAULT_IDLE_MINUTES = 30.0
+_HEADER = struct.Struct("!I")
+
+
+def supported() -> bool:
+    return sys.platform.startswith("linux") and hasattr(socket, "AF_UNIX")
+
+
+def runtime_dir() -> Path:
+    given = os.environ.get("BLOCKYARD_RUNTIME_DIR")
+    if given:
+        return Path(given)
+    xdg = os.environ.get("XDG_RUNTIME_DIR")
+    if xdg:
+        return Path(xdg) / "blockyard"
+    return Path("/tmp") / f"blockyard-{os.getuid()}"
+
+
+def socket_path() -> Path:
+    return runtime_dir() / "resident.sock"
+
+
+def private_dir(create: bool) -> Path | None:
+    """The runtime folder, if it is ours alone (made so with `create`); None otherwise."""
+    d = runtime_dir()
+    if create:
+        d.mkdir(mode=0o700, parents=True, exist_ok=True)
+    try:
+        st = d.stat()
+    except FileNotFoundError:
+        return None
+    if st.st_uid != os.getuid() or st.st_mode & 0o077:
+        return None
+    return d
+
+
+def code_stamp() -> str:
+    """What this Blockyard is: the interpreter, the version, and when its files last changed."""
+    from . import __version__
+
+    here = Path(__file__).resolve().parent
+    newest, count = 0, 0
+    stack = [here]
+    while stack:
+        with os.scandir(stack.pop()) as it:
+            for e in it:
+                if e.is_dir(follow_symlinks=False) and e.name != "__pycache__":
+                    stack.append(Path(e.path))
+                elif e.name.endswith((".py", ".ini")):
+                    newest, count = max(newest, e.stat().st_mtime_ns), count + 1
+    return os.environ.get("BLOCKYARD_RESIDENT_STAMP") or f"{sys.executable}|{__version__}|{newest}|{count}"
+
+
+# --- the wire: length-prefixed JSON ------------------------------------------------------------
+
+def _send(sock: socket.socket, doc: dict) -> None:
+    data = json.dumps(doc).encode()
+    sock.sendall(_HEADER.pack(len(data)) + data)
+
+
+def _recv(sock: socket.socket) -> dict | None:
+    head = _read(sock, _HEADER.size)
+    if head is None:
+        return None
+    body = _read(sock, _HEADER.unpack(head)[0])
+    return None if body is None else json.loads(body)
+
+
+def _read(sock: socket.socket, n: int) -> bytes | None:
+    parts, got = [], 0
+    while got < n:
+        chunk = sock.recv(min(n - got, 1 << 20))
+        if not chunk:
+            return None
+        parts.append(chunk)
+        got += len(chunk)
+    return b"".join(parts)
+
+
+def _connect(timeout: float = 1.0) -> socket.socket | None:
+    if not supported() or private_dir(create=False) is None:
+        return None
+    path = socket_path()
+    if not path.exists():
+        return None
+    sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    sock.settimeout(timeout)
+    try:
+        sock.connect(str(path))
+    except OSError:
+        sock.close()
+        return None
+    sock.settimeout(None)
+    return sock
+
+
+def ask(doc: dict, timeout: float = 1.0) -> dict | None:
+    """One exchange with the resident; None when none answers."""
+    sock = _connect(timeout)
+    if sock is None:
+        return None
+    try:
+        _send(sock, doc)
+        return _recv(sock)
+    except OSError:
+        return None
+    finally:
+        sock.close()
+
+
+# --- the caller's side -------------------------------------------------------------------------
+
+def _command_of(argv: list[str]) -> str | None:
+    i = 0
+    while i < len(argv):
+        a = argv[i]
+        if a in ("-w", "--warehouse"):
+            i += 2
+            continue
+        if a.startswith("--warehouse=") or (a.startswith("-w") and len(a) > 2):
+            i += 1
+            continue
+        return None if a.startswith("-") else a
+    return None
+
+
+def forward(argv: list[str]) -> int | None:
+    """Run `argv` in the resident if one runs and the command is one it takes; None otherwise."""
+    if os.environ.get("BLOCKYARD_RESIDENT", "").lower() in ("off", "0", "no"):
+        return None
+    if _command_of(argv) not in FORWARDED:
+        return None
+    sock = _connect()
+    if sock is None:
+        return None
+    import shutil
+
+    try:
+        request = {"protocol": PROTOCOL, "stamp": code_stamp(), "argv": argv, "cwd": os.getcwd(),
+                   "env": dict(os.environ), "isatty": sys.stdout.isatty(),
+                   "columns": shutil.get_terminal_size((120, 24)).columns}
+        try:
+            _send(sock, request)
+        except OSError:
+            return None  # nothing was handed over: run it here
+        try:
+            reply = _recv(sock)
+        except KeyboardInterrupt:
+            sys.stderr.write("blockyard: interrupted; nothing half-written was kept\n")
+            return 130
+        except OSError:
+            reply = None
+        if reply is None:
+            sys.stderr.write("blockyard: the resident process stopped while it ran the command; run it again "
+                             "(BLOCKYARD_RESIDENT=off runs it here)\n")
+            return 1
+        if reply.get("refused"):
+            return None
+        sys.stdout.write(reply.get("stdout", ""))
+        sys.stdout.flush()
+        sys.stderr.write(reply.get("stderr", ""))
+        return int(reply.get("code", 1))
+    finally:
+        sock.close()
+
+
+# --- the resident's side -----------------------------------------------------------------------
+
+class _Capture:
+    """A text stream that says it is a terminal when the caller's is."""
+
+    def __init__(self, tty: bool):
+        import io
+
+        self._buf, self._tty = io.StringIO(), tty
+
+    def write(self, s: str) -> int:
+        return self._buf.write(s)
+
+    def flush(self) -> None:
+        pass
+
+    def isatty(self) -> bool:
+        return self._tty
+
+    def getvalue(self) -> str:
+        return self._buf.getvalue()
+
+    @property
+    def encoding(self) -> str:
+        return "utf-8"
+
+
+def _peer_uid(conn: socket.socket) -> int | None:
+    try:
+        creds = conn.getsockopt(socket.SOL_SOCKET, socket.SO_PEERCRED, struct.calcsize("3i"))
+    except (OSError, AttributeError):
+        return None
+    return struct.unpack("3i", creds)[1]
+
+
+def _warm_up() -> None:
+    """Import what the forwarded commands use, so the first of them is as quick as the rest."""
+    from . import commands_all  # noqa: F401
+    from . import analyses, collapse, coverage, ledger  # noqa: F401
+    from .analyze import baseline, blocked, pairs, planning  # noqa: F401
+    from .present import analysis, ledger as ledger_text, text  # noqa: F401
+    import tabulate  # noqa: F401
+
+
+def _run_request(req: dict) -> dict:
+    from .cli import run
+
+    saved_env, saved_cwd = dict(os.environ), os.getcwd()
+    saved_streams = sys.stdout, sys.stderr
+    out, err = _Capture(bool(req.get("isatty"))), _Capture(False)
+    try:
+        os.environ.clear()
+        os.environ.update(req.get("env") or {})
+        os.environ["COLUMNS"] = str(req.get("columns") or 120)
+        os.environ["BLOCKYARD_RESIDENT"] = "off"  # a command run here never forwards again
+        if hasattr(time, "tzset"):
+            time.tzset()
+        os.chdir(req["cwd"])
+        sys.stdout, sys.stderr = out, err
+        try:
+            code = run(list(req["argv"]), out=out, err=err)
+        except BaseException as exc:  # noqa: BLE001 - the resident outlives one command's defect
+            err.write(f"blockyard: internal error in the resident ({type(exc).__name__}: {exc}); "
+                      "BLOCKYARD_RESIDENT=off runs the command without it\n")
+            code = 1
+    finally:
+        sys.stdout, sys.stderr = saved_streams
+        os.environ.clear()
+        os.environ.update(saved_env)
+        if hasattr(time, "tzset"):
+            time.tzset()
+        os.chdir(saved_cwd)
+    return {"stdout": out.getvalue(), "stderr": err.getvalue(), "code": code}
+
+
+def serve(idle_minutes: float = DEFAULT_IDLE_MINUTES) -> int:
+    """The resident's loop (in the foreground; `start` runs it in the background)."""
+    import signal
+
+    if not supported():
+        sys.stderr.write("blockyard: a resident process needs Linux\n")
+        return 2
+    d = private_dir(create=True)
+    if d is None:
+        sys.stderr.write(f"blockyard: {runtime_dir()} is not a private folder of this user; "
+                         "set BLOCKYARD_RUNTIME_DIR to one\n")
+        return 2
+    path = socket_path()
+    if ask({"protocol": PROTOCOL, "op": "status"}) is not None:
+        sys.stderr.write("blockyard: a resident process is running already (blockyard resident status)\n")
+        return 2
+    path.unlink(missing_ok=True)  # left by one that was killed
+    _warm_up()
+    stamp = code_stamp()
+    srv = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    old_mask = os.umask(0o177)
+    try:
+        srv.bind(str(path))
+    finally:
+        os.umask(old_mask)
+    mine = path.stat().st_ino
+    srv.listen(16)
+    idle = max(idle_minutes, 0.001) * 60
+    last_work = time.monotonic()  # a status question is not work: it does not keep the resident up
+    stopping = []
+    signal.signal(signal.SIGTERM, lambda *_: stopping.append("term") or srv.close())
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    info = {"pid": os.getpid(), "since": int(time.time()), "served": 0, "idle_minutes": idle_minutes,
+            "socket": str(path)}
+    try:
+        while not stopping:
+            left = last_work + idle - time.monotonic()
+            if left <= 0:
+                break  # idle long enough
+            srv.settimeout(left)
+            try:
+                conn, _ = srv.accept()
+            except socket.timeout:
+                break  # idle long enough
+            except OSError:
+                break  # closed by SIGTERM
+            with conn:
+                if _peer_uid(conn) != os.getuid():
+                    continue
+                try:
+                    req = _recv(conn)
+                except (OSError, ValueError):
+                    continue
+                if not req or req.get("protocol") != PROTOCOL:
+                    continue
+                op = req.get("op", "run")
+                try:
+                    if op == "status":
+                        _send(conn, dict(info, running=True))
+                    elif op == "stop":
+                        _send(conn, {"stopped": True})
+                        break
+                    elif req.get("stamp") != stamp:
+                        _send(conn, {"refused": "the caller's Blockyard differs from the resident's"})
+                        break  # it is out of date: leave the field to a new one
+                    else:
+                        reply = _run_request(req)
+                        info["served"] += 1
+                        last_work = time.monotonic()
+                        _send(conn, reply)
+                except OSError:
+                    continue  # the caller went away
+    finally:
+        srv.close()
+        try:
+            if path.stat().st_ino == mine:  # not a newer resident's socket
+                path.unlink()
+        except OSError:
+            pass
+    return 0
+
+
+def start(idle_minutes: float) -> dict:
+    """Start a resident in the background and wait until it answers."""
+    import subprocess
+
+    now = ask({"protocol": PROTOCOL, "op": "status"})
+    if now is not None:
+        return dict(now, started=False)
+    if not supported():
+        raise OSError("a resident process needs Linux")
+    d = private_dir(create=True)
+    if d is None:
+        raise OSError(f"{runtime_dir()} is not a private folder of this user; set BLOCKYARD_RUNTIME_DIR to one")
+    log = open(d / "resident.log", "ab")
+    env = dict(os.environ, BLOCKYARD_RESIDENT="off")
+    proc = subprocess.Popen([sys.executable, "-m", "warehouse", "resident", "serve", "--idle", str(idle_minutes)],
+                            stdin=subprocess.DEVNULL, stdout=log, stderr=log, env=env, start_new_session=True,
+                            cwd="/")
+    log.close()
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        now = ask({"protocol": PROTOCOL, "op": "status"})
+        if now is not None:
+            return dict(now, started=True)
+        if proc.poll() is not None:
+            tail = (d / "resident.log").read_text(errors="replace").strip().splitlines()[-1:] or ["(no message)"]
+            raise OSError(f"the resident process stopped at once: {tail[0]}")
+        time.sleep(0.05)
+    raise OSError("the resident process did not answer within a minute")
+
+
+def stop() -> bool:
+    return ask({"protocol": PROTOCOL, "op": "stop"}) is not None
+
+
+def status() -> dict:
+    return ask({"protocol": PROTOCOL, "op": "status"}) or {"running": False, "socket": str(socket_path())}
