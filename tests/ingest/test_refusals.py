@@ -28,6 +28,11 @@ CASES = [
     ("too-many-fields", H + GOOD + "stacker,1.6,g1,a,2,ok,,30,extra\n", " line 3: has 9 fields where the header has 8 (too many)"),
     ("too-few-fields", H + GOOD + GOOD.replace(",1,", ",2,") + "stacker,1.6,g1,a,3,ok\n", " line 4: has 6 fields where the header has 8 (too few)"),
     ("metric-not-a-number", H + GOOD + "stacker,1.6,g1,a,2,ok,,n/a\n", " line 3, field pallets: 'n/a' is not a number"),
+    # a quoted header (RFC 4180 allows it; pandas writes one) changes no line number
+    ("quoted-header", '"' + H.strip().replace(",", '","') + '"\n' + GOOD + '"stacker","1.6","g1","a",2,ok,,"n/a"\n',
+     " line 3, field pallets: 'n/a' is not a number"),
+    ("quoted-header-later-break", '"' + H.strip().replace(",", '","') + '"\n' + GOOD + GOOD.replace(",1,", ",2,")
+     + 'stacker,1.6,g1,"two\nlines",3,ok,,30\n' + "stacker,1.6,g1,a,4,ok,,n/a\n", " line 6, field pallets: 'n/a' is not a number"),
     ("metric-infinite", H + GOOD + "stacker,1.6,g1,a,2,ok,,inf\n", " line 3, field pallets: 'inf' is not a finite number"),
     ("metric-nan", H + GOOD + "stacker,1.6,g1,a,2,ok,,NaN\n", " line 3, field pallets: 'NaN' is not a finite number"),
     ("metric-empty-on-ok", H + GOOD + "stacker,1.6,g1,a,2,ok,,\n", " line 3, field pallets: is empty on an ok run"),

@@ -42,6 +42,10 @@ class SourceInfo:
     size: int
     lines: int  # physical lines of decoded text (0 for parquet)
     quote_count: int
+    # a line ends inside quotes somewhere (an odd number of quotes before it): then some record
+    # holds a line break and records and lines part ways; quotes around whole fields alone (a
+    # quoted header, say) leave them one to one
+    spans_lines: bool = True
 
     @property
     def delimited(self) -> bool:
@@ -83,6 +87,7 @@ def first_pass(path: Path, shown: str) -> SourceInfo:
         raise InputError(f"{shown}: no such file") from None
     sha = hashlib.sha256()
     lines = quotes = 0
+    spans = False
     inflate = zlib.decompressobj(wbits=31) if gz else None  # 31: a gzip header and trailer
     consumed = 0  # decoded-text bytes seen so far
     last_byte = b""
@@ -116,7 +121,10 @@ def first_pass(path: Path, shown: str) -> SourceInfo:
                 raise InputError(f"{shown} line {line}: contains a NUL byte; this is not a text file or it is damaged")
             lines += data.count(b"\n")
             if fmt == "csv":
-                quotes += data.count(b'"')
+                here = data.count(b'"')
+                if here and not spans:
+                    spans = _ends_inside_quotes(data, quotes)
+                quotes += here
             consumed += len(data)
             last_byte = data[-1:]
     if fmt != "parquet":
@@ -124,7 +132,15 @@ def first_pass(path: Path, shown: str) -> SourceInfo:
             raise InputError(f"{shown}: the compressed data is cut short (truncated gzip file)")
         if consumed and last_byte != b"\n":
             lines += 1
-    return SourceInfo(path, shown, fmt, gz, sha.hexdigest(), size, lines, quotes)
+    return SourceInfo(path, shown, fmt, gz, sha.hexdigest(), size, lines, quotes, spans)
+
+
+def _ends_inside_quotes(data: bytes, quotes_before: int) -> bool:
+    """True if some line break in `data` comes after an odd number of quotes in all (RFC 4180:
+    a doubled quote inside a quoted field counts two, so it leaves the parity alone)."""
+    b = np.frombuffer(data, dtype=np.uint8)
+    parity = (np.cumsum(b == 34, dtype=np.int64) + quotes_before) & 1
+    return bool(parity[b == 10].any())
 
 
 def locate_bad_text(info: SourceInfo) -> InputError | None:
@@ -255,7 +271,7 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
         line = find_open_quote(info)
         raise InputError(f"{info.name} line {line}: a quote opens here and is never closed")
     names = [f"c{i}" for i in range(len(header))]  # positional; duplicate names are refused earlier
-    exact = info.fmt == "csv" and info.quote_count > 0  # a quoted field may hold line breaks
+    exact = info.fmt == "csv" and info.spans_lines  # a quoted field holds a line break somewhere
     records = RecordLines(info)
     ragged: list[int] = []  # data record numbers of rows skipped for their field count
     stop: list[InputError] = []
