@@ -124,15 +124,45 @@ def test_a_second_start_finds_the_first_and_stop_stops_it(runtime, stocked):
     assert alone.returncode == 0 and json.loads(alone.stdout)["runs"] > 0
 
 
-def test_a_caller_with_other_blockyard_files_is_refused_and_runs_the_command_itself(runtime, stocked):
+def test_a_caller_with_another_blockyard_runs_the_command_itself(runtime, stocked):
     assert blockyard(runtime, "resident", "start").returncode == 0
-    other = dict(runtime, BLOCKYARD_RESIDENT_STAMP="another build")
+    other = dict(runtime, BLOCKYARD_RESIDENT_STAMP="another installation")
     r = blockyard(other, "-w", stocked, "inventory", "--json")
     assert r.returncode == 0 and json.loads(r.stdout)["runs"] > 0  # ran here
-    deadline = time.monotonic() + 10
-    while json.loads(blockyard(runtime, "resident", "status", "--json").stdout)["running"]:
-        assert time.monotonic() < deadline, "an out-of-date resident should stop"
-        time.sleep(0.1)
+    assert served(runtime) == 0  # not there, and the resident stays up for its own callers
+    assert blockyard(runtime, "-w", stocked, "inventory").returncode == 0
+    assert served(runtime) == 1
+
+
+def test_a_resident_whose_files_changed_stops_and_the_caller_runs_the_command(runtime, stocked):
+    import warehouse
+
+    assert blockyard(runtime, "resident", "start").returncode == 0
+    source = os.path.join(os.path.dirname(warehouse.__file__), "__init__.py")
+    st = os.stat(source)
+    try:
+        os.utime(source, ns=(st.st_atime_ns, time.time_ns() + 10**10))  # the newest file, as after an upgrade
+        r = blockyard(runtime, "-w", stocked, "inventory", "--json")
+        assert r.returncode == 0 and json.loads(r.stdout)["runs"] > 0
+        deadline = time.monotonic() + 10
+        while json.loads(blockyard(runtime, "resident", "status", "--json").stdout)["running"]:
+            assert time.monotonic() < deadline, "an out-of-date resident should stop"
+            time.sleep(0.1)
+    finally:
+        os.utime(source, ns=(st.st_atime_ns, st.st_mtime_ns))
+
+
+def test_a_caller_in_a_folder_gone_runs_the_command_itself(runtime, stocked, tmp_path):
+    if "://" not in stocked:
+        stocked = os.path.abspath(stocked)
+    assert blockyard(runtime, "resident", "start").returncode == 0
+    gone = tmp_path / "gone"
+    gone.mkdir()
+    code = ("import os, subprocess, sys; os.chdir(sys.argv[1]); os.rmdir(sys.argv[1]); "
+            "sys.exit(subprocess.run([sys.executable, '-m', 'warehouse', '-w', sys.argv[2], 'inventory']).returncode)")
+    r = subprocess.run([sys.executable, "-c", code, str(gone), stocked], env=runtime, capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    assert served(runtime) == 0
 
 
 def test_an_idle_resident_stops_by_itself(runtime):

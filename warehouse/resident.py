@@ -9,8 +9,9 @@ back: the same output, on the same streams, with the same exit status.
 
 The resident serves one command at a time, each in the caller's working folder and with the
 caller's environment, and opens the warehouse afresh for each (so it sees every load at once). It
-refuses a caller whose Blockyard files differ from its own (after an upgrade or an edit) and
-stops; the caller then runs the command itself, as it does whenever no resident answers. It stops
+refuses a caller whose Blockyard differs from its own (another interpreter or version), and
+stops when its own files changed on disk (an upgrade); the caller then runs the command itself,
+as it does whenever no resident answers. It stops
 by itself after --idle minutes without work, on `blockyard resident stop`, or on SIGTERM.
 Set BLOCKYARD_RESIDENT=off to keep a command out of it. Linux only (it checks the caller's
 user id on the socket).
@@ -169,13 +170,13 @@ def forward(argv: list[str]) -> int | None:
     import shutil
 
     try:
-        request = {"protocol": PROTOCOL, "stamp": code_stamp(), "argv": argv, "cwd": os.getcwd(),
-                   "env": dict(os.environ), "isatty": sys.stdout.isatty(),
-                   "columns": shutil.get_terminal_size((120, 24)).columns}
         try:
+            request = {"protocol": PROTOCOL, "stamp": code_stamp(), "argv": argv, "cwd": os.getcwd(),
+                       "env": dict(os.environ), "isatty": sys.stdout.isatty(),
+                       "columns": shutil.get_terminal_size((120, 24)).columns}
             _send(sock, request)
         except OSError:
-            return None  # nothing was handed over: run it here
+            return None  # nothing was handed over (a folder gone, say): run it here
         try:
             reply = _recv(sock)
         except KeyboardInterrupt:
@@ -248,13 +249,16 @@ def _run_request(req: dict) -> dict:
     saved_streams = sys.stdout, sys.stderr
     out, err = _Capture(bool(req.get("isatty"))), _Capture(False)
     try:
+        try:
+            os.chdir(req["cwd"])
+        except OSError as exc:  # nothing has run: the caller can run it itself
+            return {"refused": f"cannot enter the caller's folder ({exc.strerror})"}
         os.environ.clear()
         os.environ.update(req.get("env") or {})
         os.environ["COLUMNS"] = str(req.get("columns") or 120)
         os.environ["BLOCKYARD_RESIDENT"] = "off"  # a command run here never forwards again
         if hasattr(time, "tzset"):
             time.tzset()
-        os.chdir(req["cwd"])
         sys.stdout, sys.stderr = out, err
         try:
             code = run(list(req["argv"]), out=out, err=err)
@@ -336,11 +340,14 @@ def serve(idle_minutes: float = DEFAULT_IDLE_MINUTES) -> int:
                         break
                     elif req.get("stamp") != stamp:
                         _send(conn, {"refused": "the caller's Blockyard differs from the resident's"})
-                        break  # it is out of date: leave the field to a new one
+                        if code_stamp() != stamp:
+                            break  # its own files changed on disk (an upgrade): it is out of date
+                        # else the caller is another installation: it runs the command itself
                     else:
                         reply = _run_request(req)
-                        info["served"] += 1
-                        last_work = time.monotonic()
+                        if not reply.get("refused"):
+                            info["served"] += 1
+                            last_work = time.monotonic()
                         _send(conn, reply)
                 except OSError:
                     continue  # the caller went away
