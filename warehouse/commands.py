@@ -235,7 +235,7 @@ def _resident_args(p):
                    help=f"stop after this many minutes without a command (default {DEFAULT_IDLE_MINUTES:g})")
     p.epilog = ("While a resident runs, blockyard hands it these commands and prints what it sends back: "
                 f"{', '.join(sorted(FORWARDED))}. BLOCKYARD_RESIDENT=off keeps a command out of it. "
-                "Example: blockyard resident start")
+                "example: blockyard resident start --idle 60")
     add_json(p)
 
 
@@ -259,7 +259,7 @@ def cmd_resident(session: Session, a) -> Done:
             text = (f"resident started (process {doc['pid']}, stops after {doc['idle_minutes']:g} idle minutes); "
                     "blockyard now hands it the analysis commands; stop it with: blockyard resident stop")
         else:
-            text = f"a resident is running already (process {doc['pid']}, {doc['served']} commands served)"
+            text = f"a resident is running already (process {doc['pid']}, {_served(doc['served'])})"
         return Done(text, doc)
     if a.action == "stop":
         stopped = resident.stop()
@@ -267,8 +267,12 @@ def cmd_resident(session: Session, a) -> Done:
     doc = resident.status()
     if doc.get("running"):
         since = time.strftime("%Y-%m-%d %H:%M", time.gmtime(doc["since"]))
-        text = (f"resident running: process {doc['pid']} since {since} UTC, {doc['served']} commands served, "
+        text = (f"resident running: process {doc['pid']} since {since} UTC, {_served(doc['served'])}, "
                 f"stops after {doc['idle_minutes']:g} idle minutes; socket {doc['socket']}")
     else:
         text = "no resident running; start one with: blockyard resident start"
     return Done(text, doc)
+
+
+def _served(n: int) -> str:
+    return f"{n} {'command' if n == 1 else 'commands'} served"
