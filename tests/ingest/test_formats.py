@@ -86,3 +86,15 @@ def test_a_quoted_header_leaves_records_and_lines_one_to_one(tmp_path):
     broken = tmp_path / "line-break.csv"
     broken.write_text('"solver","group","instance","seed","pallets"\nstk,g1,"two\nlines",1,3\nstk,g1,i2,2,4\n')
     assert first_pass(broken, "x").spans_lines is True
+
+
+@pytest.mark.parametrize("values", [
+    ["a", "b", ""], ["a", None, "c"], [1, 2, -3, 10**30], [1.0, 2.5, -0.0, 1e300, 1e-300],
+    [1, None, 3], [1.5, None], [True, False, None], [1, 2.5, "x", None, True],
+])
+def test_json_values_become_the_same_text_by_every_road(values):
+    # the quick roads for columns of one type must write what the general one writes
+    # (RFC 8259 numbers; Python's repr of a float is its shortest round-tripping text)
+    from warehouse.ingest.sources import _texts, _to_text
+
+    assert _texts(values, set(map(type, values))) == [_to_text(v) for v in values]

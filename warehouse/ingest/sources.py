@@ -372,31 +372,49 @@ def read_jsonl(info: SourceInfo) -> Iterator[tuple[pa.Table, np.ndarray]]:
 
 
 def _read_jsonl(info: SourceInfo) -> Iterator[tuple[pa.Table, np.ndarray]]:
-    rows: list[dict] = []
+    texts: list[str] = []
     lines: list[int] = []
     with open_text(info) as fh:
         for n, text in enumerate(fh, start=1):
             text = text.strip()
             if not text:
                 continue
-            try:
-                obj = json.loads(text, object_pairs_hook=_one_value_per_key)
-            except json.JSONDecodeError as exc:
-                raise InputError(f"{info.name} line {n}: broken JSON ({exc.msg} at column {exc.colno})") from None
-            except _SameKeyTwice as exc:
-                raise InputError(
-                    f"{info.name} line {n}, field {exc.key}: the name appears twice in this object; "
-                    "which value is meant cannot be told, keep one") from None
-            if not isinstance(obj, dict):
-                kind = "an array" if isinstance(obj, list) else f"a {type(obj).__name__}"
-                raise InputError(f"{info.name} line {n}: is {kind}; each line must be one JSON object")
-            rows.append(obj)
+            texts.append(text)
             lines.append(n)
-            if len(rows) >= CHUNK_ROWS:
-                yield _json_table(info, rows, lines), np.asarray(lines, dtype=np.int64)
-                rows, lines = [], []
-    if rows:
-        yield _json_table(info, rows, lines), np.asarray(lines, dtype=np.int64)
+            if len(texts) >= CHUNK_ROWS:
+                yield _json_table(info, _decode_lines(info, texts, lines), lines), np.asarray(lines, dtype=np.int64)
+                texts, lines = [], []
+    if texts:
+        yield _json_table(info, _decode_lines(info, texts, lines), lines), np.asarray(lines, dtype=np.int64)
+
+
+_DECODER = json.JSONDecoder(object_pairs_hook=lambda pairs: _one_value_per_key(pairs))
+
+
+def _decode_lines(info: SourceInfo, texts: list[str], lines: list[int]) -> list[dict]:
+    """The objects of a chunk of lines: one decode of them all as one JSON array, and line by line
+    only when that fails (to say which line, and what is wrong with it)."""
+    try:
+        rows = _DECODER.decode("[" + ",".join(texts) + "]")
+    except (json.JSONDecodeError, _SameKeyTwice):
+        rows = None
+    if rows is not None and len(rows) == len(texts) and all(type(r) is dict for r in rows):
+        return rows
+    out = []
+    for text, n in zip(texts, lines):
+        try:
+            obj = _DECODER.decode(text)
+        except json.JSONDecodeError as exc:
+            raise InputError(f"{info.name} line {n}: broken JSON ({exc.msg} at column {exc.colno})") from None
+        except _SameKeyTwice as exc:
+            raise InputError(
+                f"{info.name} line {n}, field {exc.key}: the name appears twice in this object; "
+                "which value is meant cannot be told, keep one") from None
+        if not isinstance(obj, dict):
+            kind = "an array" if isinstance(obj, list) else f"a {type(obj).__name__}"
+            raise InputError(f"{info.name} line {n}: is {kind}; each line must be one JSON object")
+        out.append(obj)
+    return out
 
 
 class _SameKeyTwice(Exception):
@@ -428,20 +446,38 @@ def _to_text(v) -> str:
 
 
 def _json_table(info: SourceInfo, rows: list[dict], lines: list[int]) -> pa.Table:
-    keys: dict[str, None] = {}
-    for r in rows:
-        for k in r:
-            keys.setdefault(k, None)
+    from itertools import chain, repeat
+
+    keys = dict.fromkeys(chain.from_iterable(rows))  # every name, in the order first seen
     data = {}
     for k in keys:
-        values = [r.get(k) for r in rows]
-        for j, v in enumerate(values):
-            if isinstance(v, (dict, list)):
-                raise InputError(
-                    f"{info.name} line {lines[j]}, field {k}: nested {'object' if isinstance(v, dict) else 'list'} "
-                    "values are not supported; flatten it")
-        data[k] = pa.array([v if type(v) is str else _to_text(v) for v in values], type=pa.string())
+        values = list(map(dict.get, rows, repeat(k, len(rows))))
+        kinds = set(map(type, values))
+        if dict in kinds or list in kinds:
+            for j, v in enumerate(values):
+                if isinstance(v, (dict, list)):
+                    raise InputError(
+                        f"{info.name} line {lines[j]}, field {k}: nested {'object' if isinstance(v, dict) else 'list'} "
+                        "values are not supported; flatten it")
+        data[k] = pa.array(_texts(values, kinds), type=pa.string())
     return pa.table(data)
+
+
+def _texts(values: list, kinds: set) -> list[str]:
+    """`_to_text` of every value, by the quickest way the value types allow (the same text)."""
+    if kinds <= {str}:
+        return values
+    if kinds <= {str, type(None)}:
+        return ["" if v is None else v for v in values]
+    if kinds <= {int}:  # (bool is another type: True is not written 1)
+        return list(map(str, values))
+    if kinds <= {float}:
+        return list(map(repr, values))
+    if kinds <= {int, type(None)}:
+        return ["" if v is None else str(v) for v in values]
+    if kinds <= {float, type(None)}:
+        return ["" if v is None else repr(v) for v in values]
+    return [v if type(v) is str else _to_text(v) for v in values]
 
 
 # --- Parquet ----------------------------------------------------------------------------------
