@@ -225,3 +225,15 @@ def test_a_full_disk_is_one_line_and_leaves_no_trace(location, tmp_path, before,
     finally:
         wh.close()
     assert everything(location) == before
+
+
+def test_json_lines_that_only_join_into_objects_are_refused(cli, location, tmp_path, before):
+    # each line must be one JSON object on its own (JSON Lines); these three lines would read as
+    # three objects if they were joined with commas into one array, and none of them is one
+    text = ('{"solver": "s", "group": "g1", "instance": "a", "pallets": 1},{"solver": "s", "group": "g1", "instance": "b", "pallets": 2}\n'
+            '{"solver": "s", "group": "g1", "instance": "x}\n'
+            '{", "pallets": 3}\n')
+    r = cli("load", str(write(tmp_path / "joined.jsonl", text)), "--campaign", "j")
+    assert r.code == 2, r
+    assert "joined.jsonl line 1: broken JSON" in r.err and r.err.count("\n") == 1
+    assert everything(location) == before

@@ -392,29 +392,34 @@ _DECODER = json.JSONDecoder(object_pairs_hook=lambda pairs: _one_value_per_key(p
 
 
 def _decode_lines(info: SourceInfo, texts: list[str], lines: list[int]) -> list[dict]:
-    """The objects of a chunk of lines: one decode of them all as one JSON array, and line by line
-    only when that fails (to say which line, and what is wrong with it)."""
-    try:
-        rows = _DECODER.decode("[" + ",".join(texts) + "]")
-    except (json.JSONDecodeError, _SameKeyTwice):
-        rows = None
-    if rows is not None and len(rows) == len(texts) and all(type(r) is dict for r in rows):
-        return rows
+    """The objects of a chunk of lines, each line decoded on its own by the decoder's C scanner
+    (the line must be one whole object); a line that is not goes through `decode` to be told."""
+    scan = _DECODER.scan_once
     out = []
     for text, n in zip(texts, lines):
         try:
-            obj = _DECODER.decode(text)
-        except json.JSONDecodeError as exc:
-            raise InputError(f"{info.name} line {n}: broken JSON ({exc.msg} at column {exc.colno})") from None
-        except _SameKeyTwice as exc:
-            raise InputError(
-                f"{info.name} line {n}, field {exc.key}: the name appears twice in this object; "
-                "which value is meant cannot be told, keep one") from None
-        if not isinstance(obj, dict):
-            kind = "an array" if isinstance(obj, list) else f"a {type(obj).__name__}"
-            raise InputError(f"{info.name} line {n}: is {kind}; each line must be one JSON object")
+            obj, end = scan(text, 0)
+        except (StopIteration, json.JSONDecodeError, _SameKeyTwice):
+            obj, end = None, -1
+        if end != len(text) or type(obj) is not dict:
+            obj = _one_line(info, text, n)
         out.append(obj)
     return out
+
+
+def _one_line(info: SourceInfo, text: str, n: int) -> dict:
+    try:
+        obj = _DECODER.decode(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{info.name} line {n}: broken JSON ({exc.msg} at column {exc.colno})") from None
+    except _SameKeyTwice as exc:
+        raise InputError(
+            f"{info.name} line {n}, field {exc.key}: the name appears twice in this object; "
+            "which value is meant cannot be told, keep one") from None
+    if not isinstance(obj, dict):
+        kind = "an array" if isinstance(obj, list) else f"a {type(obj).__name__}"
+        raise InputError(f"{info.name} line {n}: is {kind}; each line must be one JSON object")
+    return obj
 
 
 class _SameKeyTwice(Exception):
