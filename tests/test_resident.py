@@ -107,7 +107,9 @@ def test_the_callers_folder_and_environment_are_the_ones_used(runtime, stocked, 
 
 def test_the_resident_folder_and_socket_are_private(runtime, stocked):
     assert blockyard(runtime, "resident", "start").returncode == 0
-    folder = resident.runtime_dir().__class__(runtime["BLOCKYARD_RUNTIME_DIR"])
+    from pathlib import Path
+
+    folder = Path(runtime["BLOCKYARD_RUNTIME_DIR"])
     assert stat.S_IMODE(folder.stat().st_mode) == 0o700
     assert stat.S_IMODE((folder / "resident.sock").stat().st_mode) & 0o077 == 0
 
@@ -181,10 +183,14 @@ def test_commands_it_does_not_take_run_on_their_own(runtime, stocked, tmp_path):
     assert served(runtime) == 0
 
 
-def test_resident_mistakes_are_one_line():
-    from warehouse.cli import run
+@pytest.mark.parametrize("idle", ["0", "-5", "inf", "nan", "soon"])
+def test_resident_mistakes_are_one_line(idle, tmp_path, monkeypatch):
     import io
 
+    from warehouse.cli import run
+
+    monkeypatch.setenv("BLOCKYARD_RUNTIME_DIR", str(tmp_path / "rt"))
     err = io.StringIO()
-    assert run(["resident", "start", "--idle", "0"], out=io.StringIO(), err=err) == 2
+    assert run(["resident", "start", "--idle", idle], out=io.StringIO(), err=err) == 2
     assert err.getvalue().count("\n") == 1 and "--idle" in err.getvalue()
+    assert not (tmp_path / "rt").exists()  # nothing was started

@@ -16,6 +16,7 @@ import hashlib
 import json
 import math
 from dataclasses import dataclass, field
+from typing import Callable
 
 import numpy as np
 import pandas as pd
@@ -51,7 +52,13 @@ class Collapsed:
     fingerprint: str
     max_run_id: int
     hash_conflicts: list[str] = field(default_factory=list)
-    fingerprint_v1: str = ""  # the 0.1 hash of the same runs, for analyses kept by 0.1
+    _earlier: Callable[[], str] | None = None  # makes the 0.1 hash of the same runs (pandas way only)
+
+    @property
+    def fingerprint_v1(self) -> str:
+        """The hash Blockyard 0.1 kept for these runs ("" from the SQL collapse), made when asked:
+        only a re-check of an analysis kept by 0.1 needs it."""
+        return self._earlier() if self._earlier is not None else ""
 
     @property
     def cells(self) -> pd.DataFrame:
@@ -204,10 +211,8 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
     conflicts = []
     dup = inst.groupby(["group_id", "instance"])["content_hash"].nunique()
     for (gid, name), k in dup[dup > 1].items():
-        conflicts.append(f"instance {dims.block(gid)}/{name} has {k} different content hashes in this slice; "
-                         "its versions are kept apart and are not comparable")
+        conflicts.append(_conflict_note(dims, gid, name, k))
     fingerprint = _fingerprint(agg, st, metric, sl)
-    earlier = fingerprint_v1(agg, st, metric, sl)
     # instances -> blocks: within a block, only instances every present treatment has a value for
     valid = agg[agg["value"].notna()]
     treatments = sorted(agg["treatment"].unique(), key=_treatment_key)
@@ -238,7 +243,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
         treatments=[t for t in treatments if t in set(obs["treatment"])] or treatments,
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=runs_in_slice, runs_used=runs_used,
         instances_used=int(used_cells["instance_id"].nunique()), notes=notes, hosts=hosts, campaigns=campaigns,
-        fingerprint=fingerprint, fingerprint_v1=earlier, max_run_id=max_run_id, hash_conflicts=conflicts,
+        fingerprint=fingerprint, _earlier=lambda: fingerprint_v1(agg, st, metric, sl), max_run_id=max_run_id, hash_conflicts=conflicts,
     )
 
 
@@ -364,8 +369,12 @@ def _hash_conflicts(conn, where, dims: Dims) -> list[str]:
                         .where(I.c.id.in_(ids)).group_by(I.c.group_id, I.c.name)
                         .having(func.count(func.distinct(I.c.content_hash)) > 1)
                         .order_by(I.c.group_id, I.c.name)).all()
-    return [f"instance {dims.block(int(g))}/{name} has {int(k)} different content hashes in this slice; "
-            "its versions are kept apart and are not comparable" for g, name, k in rows]
+    return [_conflict_note(dims, g, name, k) for g, name, k in rows]
+
+
+def _conflict_note(dims: Dims, group_id, name: str, hashes) -> str:
+    return (f"instance {dims.block(int(group_id))}/{name} has {int(hashes)} different content hashes in this "
+            "slice; its versions are kept apart and are not comparable")
 
 
 def _sources(conn, table, where, dims: Dims) -> tuple[dict, dict]:

@@ -245,8 +245,8 @@ def _resident_args(p):
 def cmd_resident(session: Session, a) -> Done:
     from . import resident
 
-    if a.idle <= 0:
-        raise InputError(f"--idle {a.idle:g}: give a number of minutes above 0")
+    if not 0 < a.idle < float("inf"):  # (NaN fails the comparison too)
+        raise InputError(f"--idle {a.idle:g}: give a number of minutes above 0, e.g. 30")
     if a.action == "serve":
         code = resident.serve(a.idle)
         return Done("", {"stopped": True}, exit_status=code)

@@ -117,6 +117,8 @@ class CellSums:
 
     def _merge(self, slot: int) -> None:
         parts = self.parts[slot]
+        if len(parts) == 1:  # one part is summed by cell already (every part is)
+            return
         keys = np.concatenate([p[0] for p in parts])
         order, starts, cell_keys = _groups(keys)
         merged = {}
@@ -130,10 +132,6 @@ class CellSums:
                 merged[name] = np.add.reduceat(col, starts)
         self.parts[slot] = [(cell_keys, merged)]
         self.sizes[slot] = len(cell_keys)
-
-    def write_sqlite(self, raw, campaign_id: int, import_id: int) -> int:
-        """Insert the cells through a SQLite driver connection, many rows per statement."""
-        return run_statements(raw, self.sqlite_statements(campaign_id, import_id))
 
     def sqlite_statements(self, campaign_id: int, import_id: int) -> list[tuple[str, "list | np.ndarray", int]]:
         """(statement, parameter rows, cells) to write the cells with, built without the database.
@@ -183,6 +181,10 @@ class CellSums:
                 out.append((head + one, t[full:], m - full))
         return out
 
+    def merge_all(self) -> None:
+        for slot in list(self.parts):
+            self._merge(slot)
+
     def rows(self, campaign_id: int, import_id: int) -> list[tuple]:
         out: list[tuple] = []
         for slot in sorted(self.parts):
@@ -215,6 +217,7 @@ class CellSums:
 
 
 def run_statements(raw, statements: list[tuple]) -> int:
+    """Write the cells through a SQLite driver connection, as `CellSums.sqlite_statements` gave them."""
     written = 0
     for sql, params, cells in statements:
         raw.executemany(sql, params.tolist() if isinstance(params, np.ndarray) else params)
@@ -273,8 +276,7 @@ class Summing:
                     continue
                 campaign_id, import_id = arg
                 if self._error is None:
-                    for slot in list(self.sums.parts):
-                        self.sums._merge(slot)
+                    self.sums.merge_all()
                     if campaign_id is not None:
                         self.statements = self.sums.sqlite_statements(campaign_id, import_id)
                 return

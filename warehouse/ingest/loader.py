@@ -879,8 +879,8 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
     report = FileReport(file=shown, status="loaded", campaign=campaign)
     fl = _FileLoad(wh, info, layout, skip_bad)
     total = max(info.lines - (1 if info.delimited else 0), 1)
-    with wh.engine.connect() as peek:  # the metrics known already (they are not guessed at)
-        fl.known_metrics = {r[0] for r in peek.execute(select(S.metrics.c.name))}
+    with wh.engine.connect() as conn:  # the metrics known already (they are not guessed at)
+        fl.known_metrics = {r[0] for r in conn.execute(select(S.metrics.c.name))}
     # The reading starts now, in a helper thread where it can, while the write transaction opens
     chunks = _checked(fl, _readers(fl))
     if info.fmt != "jsonl":  # pyarrow parses without Python's lock: read ahead in a helper thread

@@ -388,9 +388,6 @@ def _read_jsonl(info: SourceInfo) -> Iterator[tuple[pa.Table, np.ndarray]]:
         yield _json_table(info, _decode_lines(info, texts, lines), lines), np.asarray(lines, dtype=np.int64)
 
 
-_DECODER = json.JSONDecoder(object_pairs_hook=lambda pairs: _one_value_per_key(pairs))
-
-
 def _decode_lines(info: SourceInfo, texts: list[str], lines: list[int]) -> list[dict]:
     """The objects of a chunk of lines, each line decoded on its own by the decoder's C scanner
     (the line must be one whole object); a line that is not goes through `decode` to be told."""
@@ -438,6 +435,9 @@ def _one_value_per_key(pairs: list) -> dict:
                 raise _SameKeyTwice(k)
             seen.add(k)
     return obj
+
+
+_DECODER = json.JSONDecoder(object_pairs_hook=_one_value_per_key)
 
 
 def _to_text(v) -> str:
