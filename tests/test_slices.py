@@ -358,3 +358,102 @@ def test_version_ranges_select_in_natural_order(cli, tmp_path):
     assert r.json()["treatments"] == ["stacker@1.9", "stacker@1.10", "stacker@2.0rc1"]
     r = cli("peek", "--slice", "stacker@1.9 | version>2.0rc1", "--json")
     assert r.json()["treatments"] == ["stacker@1.9", "stacker@2.0"]
+
+
+# --- date slices through the imports' time ranges (revision 0004) -------------------------------
+
+def _timed(path, rows):
+    with open(path, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["solver", "version", "family", "group", "instance", "seed", "finished_at", "pallets"])
+        w.writerows(rows)
+    return str(path)
+
+
+def _night(day: int, solver: str, seeds=(1, 2), hour: int = 2, blank_time: bool = False):
+    return [[solver, "1", "fam", f"g{g}", f"i{g}", seed,
+             "" if blank_time and seed == seeds[0] else f"2026-11-{day:02d}T{hour + g:02d}:{seed * 7:02d}:00Z",
+             10 * g + seed] for g in range(1, 4) for seed in seeds]
+
+
+DATE_SLICES = ["since=2026-11-03", "until=2026-11-03", "since=2026-11-02T04:00:00Z", "until=2026-11-02T04:14:00Z",
+               "since=2026-11-02T04:14:00Z", "since=2026-11-01 until=2026-11-02", "since=2026-12-01",
+               "until=2026-10-01", "since=2026-11-05 | until=2026-11-01", "stacker@1 since=2026-11-04",
+               "since=2026-11-02 retracted=yes", "since=2026-11-02 retracted=any",
+               # on an import's own first and last times
+               "since=2026-11-01T05:14:00Z", "until=2026-11-02T03:14:00Z", "until=2026-11-02T03:14:01Z"]
+
+
+def test_date_slices_take_exactly_the_runs_whose_time_meets_the_test(cli, location, tmp_path, monkeypatch):
+    """The imports' id and time ranges only narrow where to look: the reference is the plain
+    test of every run's finished_at (the definition of the slice keys, docs/slices.md)."""
+    from sqlalchemy import func, select
+
+    from warehouse.select import resolve
+    from warehouse.select.slices import parse
+    from warehouse.store import schema as S
+    from warehouse.store.connect import open_warehouse
+
+    files = [_timed(tmp_path / "n1.csv", _night(1, "stacker")),
+             _timed(tmp_path / "n2.csv", _night(2, "stacker", blank_time=True)),  # some runs have no time
+             _timed(tmp_path / "n4.csv", _night(4, "stacker") + _night(5, "packwell")),
+             # already stored runs come again with new ones: skipped, so the id ranges overlap
+             _timed(tmp_path / "n4b.csv", _night(4, "stacker") + _night(3, "stacker", seeds=(3,)))]
+    for f in files:
+        assert cli("load", f, "--campaign", "nightly").code == 0
+    assert cli("load", _write(tmp_path / "untimed.csv", _rows("tetra", "1", 0.0)), "--campaign", "nightly").code == 0
+    assert cli("retract", "--slice", "since=2026-11-05", "--reason", "rack swap").code == 0
+
+    w = open_warehouse(location)
+    try:
+        with w.engine.connect() as c:
+            untimed = c.execute(select(S.imports.c.first_finished, S.imports.c.last_finished)
+                                .where(S.imports.c.file_name == "untimed.csv")).one()
+            assert tuple(untimed) == (None, None)
+            dims = resolve.Dims.load(c)
+
+            R = S.runs
+            for text in DATE_SLICES:
+                got = c.execute(select(func.count()).select_from(R).where(
+                    resolve.condition(parse(text), dims, c))).scalar()
+                # the same slice with the time tests alone, over every run
+                expect = c.execute(select(func.count()).select_from(R).where(_plain(text, dims, c))).scalar()
+                assert got == expect, text
+                monkeypatch.setattr(resolve, "MAX_RANGES", 1)  # one range around them all: the same runs
+                assert c.execute(select(func.count()).select_from(R).where(
+                    resolve.condition(parse(text), dims, c))).scalar() == expect, text
+                monkeypatch.setattr(resolve, "MAX_RANGES", 64)
+            assert c.execute(select(func.count()).select_from(R).where(
+                resolve.condition(parse("since=2026-11-02"), dims, c))).scalar() > 0
+    finally:
+        w.close()
+
+
+def _plain(text, dims, conn):
+    """A slice's condition with since/until as bare tests of finished_at (no id ranges)."""
+    from sqlalchemy import and_, or_
+
+    from warehouse.select import resolve
+    from warehouse.select.slices import parse, parse_when
+    from warehouse.store import schema as S
+
+    R = S.runs
+    sl = parse(text)
+    arms = []
+    for arm in sl.arms:
+        parts, want = [], "no"
+        for term in arm:
+            if term.key == "since":
+                parts.append(R.c.finished_at >= parse_when(term.values[0], "since"))
+            elif term.key == "until":
+                parts.append(R.c.finished_at < parse_when(term.values[0], "until"))
+            elif term.key == "retracted":
+                want = term.values[0]
+            else:
+                parts.append(resolve._term_condition(term, 1, dims, conn))
+        if want == "no":
+            parts.append(R.c.retraction_id.is_(None))
+        elif want == "yes":
+            parts.append(R.c.retraction_id.is_not(None))
+        arms.append(and_(*parts))
+    return arms[0] if len(arms) == 1 else or_(*arms)

@@ -222,9 +222,15 @@ def test_upgrade_keeps_every_row_and_every_stored_analysis(pair):
     res = in_process(old, "upgrade", "--json")
     assert res.code == 0, res
     doc = res.json()
-    assert (doc["from"], doc["to"], doc["status"]) == ("0002", "0003", "upgraded")
-    assert revision(old) == "0003"
+    assert (doc["from"], doc["to"], doc["status"]) == ("0002", "0004", "upgraded")
+    assert revision(old) == "0004"
     assert contents(old, tables) == before
+    # 0004: each import's id and time range is the range of its runs (a date slice relies on it)
+    ranges = sql(old, "SELECT i.id, i.first_run_id, i.last_run_id, i.first_finished, i.last_finished,"
+                      " min(r.id), max(r.id), min(r.finished_at), max(r.finished_at)"
+                      " FROM imports i JOIN runs r ON r.import_id = i.id GROUP BY i.id, i.first_run_id,"
+                      " i.last_run_id, i.first_finished, i.last_finished")
+    assert ranges and all(tuple(r[1:5]) == tuple(r[5:9]) for r in ranges), ranges
 
     # every stored analysis reads as it did, with the same state as on the twin
     for name, aid in ids.items():
@@ -445,9 +451,9 @@ def kill_upgrades(tmp_path: Path, kills: int, seed: int) -> None:
             killed += 1
         sqlite_whole(path)
         rev = revision(str(path))
-        assert rev in ("0002", "0003"), rev
-        assert ("cell_stats" in table_counts(str(path))) == (rev == "0003")
-        if rev == "0003":  # it finished first: start again from the old file, and kill sooner
+        assert rev in ("0002", "0004"), rev  # all revisions go in one transaction
+        assert ("cell_stats" in table_counts(str(path))) == (rev == "0004")
+        if rev == "0004":  # it finished first: start again from the old file, and kill sooner
             cells_agree(str(path))
             for extra in ("", "-wal", "-shm"):
                 Path(f"{path}{extra}").unlink(missing_ok=True)
@@ -457,7 +463,7 @@ def kill_upgrades(tmp_path: Path, kills: int, seed: int) -> None:
     # left alone, the upgrade goes through, whatever copies a killed one left behind
     res = blockyard("upgrade", "-w", path, "--json")
     assert res.code == 0, res
-    assert revision(str(path)) == "0003"
+    assert revision(str(path)) == "0004"
     sqlite_whole(path)
     cells_agree(str(path))
     assert contents(str(path), {"runs": ["id", "v1", "v2"]}) == runs_before

@@ -34,7 +34,8 @@ from ..store.connect import Warehouse
 from . import values as V
 from .cellsums import Summing, reduce_chunk, run_statements
 from .layout import FIELDS, NAME_LIMIT, Layout
-from .sources import SourceInfo, first_pass, read_delimited, read_header, read_jsonl, read_parquet
+from .scan import first_pass_of
+from .sources import SourceInfo, read_delimited, read_header, read_jsonl, read_parquet
 
 DEFAULTS = {"version": "", "build": "", "params": "", "family": "default", "seed": "0",
             "replicate": "0", "status": "ok", "finished_at": "", "host": "", "instance_hash": ""}
@@ -835,7 +836,7 @@ def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | N
     layout = layout or Layout()
     shown = str(path)
     p = Path(path)
-    info = first_pass(p, shown)
+    info = first_pass_of(p, shown)  # started early by the command line when it could
     with wh.engine.connect() as conn:
         prior = conn.execute(
             select(S.imports.c.id, S.imports.c.loaded_at, S.campaigns.c.name)
@@ -918,6 +919,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
             writer = None
             read = loaded = skipped = 0
             first_id = next_id
+            first_fin = last_fin = None  # the import's time range (imports.first_finished, last_finished)
             for raw, rows, n_read in chunks:
                 read += n_read
                 if not report.preview:
@@ -946,6 +948,11 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 has_host = host >= 0
                 ids = np.arange(next_id, next_id + m, dtype=np.int64)
                 next_id += m
+                if rows.has_finished.any():
+                    times = rows.finished[rows.has_finished]
+                    lo, hi = int(times.min()), int(times.max())
+                    first_fin = lo if first_fin is None else min(first_fin, lo)
+                    last_fin = hi if last_fin is None else max(last_fin, hi)
                 writer.write(ids, rows, solver, instance, host, has_host, {s: k for k, s in metric_slots.items()})
                 summing.add_reduced(rows.cells, base=int(ids[0]), key_maps=(solver_of, instance_of, host_of),
                                     slot_of=metric_slots)
@@ -993,8 +1000,11 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
             read += fl.ragged
             if skipped > 3:
                 fl.warnings.append(f"{skipped} runs in all were already in the campaign and were skipped")
+            # the id and time range may be wider than the runs that went in (skipped ones), never narrower
             conn.execute(update(S.imports).where(S.imports.c.id == import_id).values(
-                rows_read=read, rows_loaded=loaded, rows_rejected=rejected, rows_skipped=skipped))
+                rows_read=read, rows_loaded=loaded, rows_rejected=rejected, rows_skipped=skipped,
+                first_run_id=first_id if loaded else None, last_run_id=next_id - 1 if loaded else None,
+                first_finished=first_fin if loaded else None, last_finished=last_fin if loaded else None))
             summaries = summing.result()
             if skipped:  # some rows did not go in: sum the cells from what was stored
                 from ..store import cells

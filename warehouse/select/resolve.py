@@ -112,6 +112,32 @@ def _version_ok(op: str, value: str, version: str) -> bool:
     return {"<": c < 0, "<=": c <= 0, ">": c > 0, ">=": c >= 0}[op]
 
 
+MAX_RANGES = 64  # beyond this many separate id ranges a date slice tests one range around them all
+
+
+def _id_ranges(conn, imports_hit, T=R):
+    """The run ids of the imports whose time range meets a date condition, as id ranges.
+
+    A date slice reads the imports' ranges (revision 0004), then only those id ranges of the
+    runs; the time test itself still applies to every run. Ranges that touch are joined, so the
+    runs of a week of nightly loads are one range. An import without runs holds no range.
+    """
+    I = S.imports
+    rows = conn.execute(select(I.c.first_run_id, I.c.last_run_id)
+                        .where(imports_hit, I.c.first_run_id.is_not(None)).order_by(I.c.first_run_id)).all()
+    merged: list[list[int]] = []
+    for lo, hi in rows:
+        if merged and lo <= merged[-1][1] + 1:
+            merged[-1][1] = max(merged[-1][1], hi)
+        else:
+            merged.append([int(lo), int(hi)])
+    if not merged:
+        return false()
+    if len(merged) > MAX_RANGES:
+        return T.c.id.between(merged[0][0], max(hi for _, hi in merged))
+    return or_(*[T.c.id.between(lo, hi) for lo, hi in merged])
+
+
 def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
     neg = term.op == "!="
     key = term.key
@@ -174,9 +200,11 @@ def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
         col = T.c.seed
         return {"<": col < vals[0], "<=": col <= vals[0], ">": col > vals[0], ">=": col >= vals[0]}[term.op]
     if key == "since":
-        return T.c.finished_at >= parse_when(term.values[0], "since")
+        t = parse_when(term.values[0], "since")
+        return and_(T.c.finished_at >= t, _id_ranges(conn, S.imports.c.last_finished >= t, T))
     if key == "until":
-        return T.c.finished_at < parse_when(term.values[0], "until")
+        t = parse_when(term.values[0], "until")
+        return and_(T.c.finished_at < t, _id_ranges(conn, S.imports.c.first_finished < t, T))
     raise SliceError(f"slice term {n}: key {key} is not handled")  # pragma: no cover
 
 
