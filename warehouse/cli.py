@@ -97,6 +97,8 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
         err.write("blockyard: interrupted; nothing half-written was kept\n")
         return 130
     except Exception as exc:  # a defect of ours, not the user's: say so, keep the traceback on request
+        if isinstance(exc, BrokenPipeError):  # output piped into head: main() leaves quietly
+            raise
         from .store.connect import database_trouble
 
         from .store.connect import shown
