@@ -86,13 +86,17 @@ def query(location: str, sql: str, **params) -> list[tuple]:
 
 def stored_runs(location: str) -> list[tuple]:
     """(solver, version, family, group, instance, seed, replicate, status, finished_at, host, pallets, seconds)."""
-    return query(location, """
+    slots = [r[0] for r in query(location, "SELECT slot FROM metrics ORDER BY slot")]
+
+    def value(metric: str) -> str:
+        if not slots:
+            return "NULL"
+        arms = " ".join(f"WHEN {int(s)} THEN r.v{int(s)}" for s in slots)  # a run has a column per metric's slot
+        return f"(SELECT CASE m.slot {arms} END FROM metrics m WHERE m.name = '{metric}')"
+
+    return query(location, f"""
         SELECT s.name, s.version, f.name, g.name, i.name, r.seed, r.replicate, r.status, r.finished_at,
-               COALESCE(h.name, ''),
-               (SELECT CASE m.slot WHEN 1 THEN r.v1 WHEN 2 THEN r.v2 WHEN 3 THEN r.v3 END
-                  FROM metrics m WHERE m.name = 'pallets'),
-               (SELECT CASE m.slot WHEN 1 THEN r.v1 WHEN 2 THEN r.v2 WHEN 3 THEN r.v3 END
-                  FROM metrics m WHERE m.name = 'seconds')
+               COALESCE(h.name, ''), {value('pallets')}, {value('seconds')}
         FROM runs r JOIN solvers s ON s.id = r.solver_id JOIN instances i ON i.id = r.instance_id
         JOIN groups g ON g.id = i.group_id JOIN families f ON f.id = g.family_id
         LEFT JOIN hosts h ON h.id = r.host_id

@@ -30,6 +30,7 @@ from sqlalchemy.exc import IntegrityError, OperationalError
 from .. import __version__
 from ..errors import InputError, StorageError
 from ..store import schema as S
+from ..store import value_columns
 from ..store.connect import Warehouse
 from . import values as V
 from .cellsums import Summing, reduce_chunk, run_statements
@@ -95,6 +96,7 @@ class Dimensions:
             self.hashes.setdefault((r.group_id, r.name), set()).add(r.content_hash)
         self.hosts = {r.name: r.id for r in conn.execute(select(S.hosts))}
         self.metrics = {r.name: (r.id, r.slot, r.sense, r.unit) for r in conn.execute(select(S.metrics))}
+        self.columns: set[int] | None = None  # the value columns the runs table has (read when needed)
 
     def _add(self, table, **values) -> int:
         if self.conn.dialect.name == "sqlite":  # the driver's own cursor: a tenth of the time per row
@@ -186,6 +188,9 @@ class Dimensions:
                 f"most {S.METRIC_SLOTS} metrics (list them with: blockyard inventory metrics); leave columns out "
                 "with a layout's [ignore]")
         sense = sense or "min"
+        if self.columns is None:
+            self.columns = value_columns.present(self.conn)
+        value_columns.ensure(self.conn, free[0], self.columns)
         mid = self._add(S.metrics, name=name, unit=unit, sense=sense, slot=free[0])
         self.metrics[name] = (mid, free[0], sense, unit)
         return mid, free[0], sense
@@ -578,8 +583,10 @@ class _Writer:
             self.sql_many = head + ", ".join([marks] * self.per_statement)
         else:
             self.campaign_id, self.import_id = campaign_id, import_id
+            # made again for each writer: a metric new in this file may have added a column to runs
+            self.conn.exec_driver_sql("DROP TABLE IF EXISTS blockyard_stage")
             self.conn.exec_driver_sql(
-                "CREATE TEMP TABLE IF NOT EXISTS blockyard_stage (LIKE runs INCLUDING DEFAULTS) ON COMMIT DROP"
+                "CREATE TEMP TABLE blockyard_stage (LIKE runs INCLUDING DEFAULTS) ON COMMIT DROP"
             )
             self.copy_sql = f"COPY blockyard_stage ({names}) FROM STDIN (FORMAT csv)"
             self.move_sql = (f"INSERT INTO runs ({names}) SELECT {names} FROM blockyard_stage ORDER BY id "

@@ -130,7 +130,10 @@ retractions = Table(
 )
 
 # Metric values live in the run row itself, one column per metric slot: one row written per run
-# keeps loads near SQLite's own insert speed and lets a slice aggregate without a join.
+# keeps loads near SQLite's own insert speed and lets a slice aggregate without a join. The
+# table declares every slot, but a warehouse holds only the columns of slots some metric has
+# taken (revision 0004): `value_columns.ensure` adds one when a new metric takes its slot, so
+# that a run row does not carry a NULL for every metric the warehouse never had.
 METRIC_SLOTS = 24
 VALUE_COLUMNS = [f"v{i}" for i in range(1, METRIC_SLOTS + 1)]
 
