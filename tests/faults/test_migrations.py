@@ -112,8 +112,25 @@ def build_twin(location: str, tmp_path: Path, seed: int = 2026) -> dict:
 
 
 def rows_of(location: str, table: str, columns: list[str]) -> list[tuple]:
-    cols = ", ".join(f'"{c}"' for c in columns)
+    """The rows, sorted; a metric value column the warehouse does not have (a new warehouse has
+    one per metric only, revision 0004) reads NULL. Named columns only: SQLite would read a
+    quoted name that is no column as a text constant."""
+    have = set(columns_of(location, table))
+    cols = ", ".join(f'"{c}"' if c in have else "NULL" for c in columns)
     return sorted(sql(location, f'SELECT {cols} FROM "{table}"'), key=repr)
+
+
+def columns_of(location: str, table: str) -> list[str]:
+    from sqlalchemy import inspect
+
+    from . import raw_engine
+
+    engine = raw_engine(location)
+    try:
+        with engine.connect() as c:
+            return [col["name"] for col in inspect(c).get_columns(table)]
+    finally:
+        engine.dispose()
 
 
 def insert_rows(location: str, table: str, columns: list[str], rows: list[tuple]) -> None:

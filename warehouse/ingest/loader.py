@@ -836,7 +836,45 @@ class _ForeignKeysOff:
         return False
 
 
+class _PandasNotForArrow:
+    """While a file loads: pyarrow's first conversion of a Python value imports pandas (0.2 s of a
+    command's start) only to learn whether the value is a pandas object; the loader hands it
+    numpy arrays and plain values only. The import fails fast instead, and pyarrow goes on
+    without pandas. Only in a process that has not imported pandas yet (a `blockyard load`), and
+    taken out as soon as the load returns, so that nothing else is kept from pandas.
+    """
+
+    def find_spec(self, name, path=None, target=None):
+        if name == "pandas" or name.startswith("pandas."):
+            raise ImportError("pandas is not imported while a file loads")
+        return None
+
+    def __enter__(self):
+        import sys
+
+        self.active = "pandas" not in sys.modules
+        if self.active:
+            sys.meta_path.insert(0, self)
+        return self
+
+    def __exit__(self, *exc):
+        import sys
+
+        if self.active and self in sys.meta_path:
+            sys.meta_path.remove(self)
+        return False
+
+
 def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | None = None, *,
+              skip_bad: bool = False, dry_run: bool = False, rejects: str | Path | None = None,
+              progress: Callable[[int, int], None] | None = None) -> FileReport:
+    """Load one result file into `campaign`; refuse it whole, with one line saying why, on bad input."""
+    with _PandasNotForArrow():
+        return _load_file(wh, path, campaign, layout, skip_bad=skip_bad, dry_run=dry_run, rejects=rejects,
+                          progress=progress)
+
+
+def _load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | None = None, *,
               skip_bad: bool = False, dry_run: bool = False, rejects: str | Path | None = None,
               progress: Callable[[int, int], None] | None = None) -> FileReport:
     """Load one result file into `campaign`; refuse it whole, with one line saying why, on bad input."""

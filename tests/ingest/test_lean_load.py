@@ -1,0 +1,77 @@
+"""`blockyard load` in its own process does not import pandas (pyarrow would, for a probe, at a
+fifth of a second of start-up): every format, a refused file, --skip-bad, --dry-run and PostgreSQL
+load the same as in a process that has pandas (the other ingest tests), and the command still
+names the line of a bad value. Each case runs the real console entry point."""
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pytest
+
+from .kit import csv_text, jsonl_text, runs, write
+
+PROBE = r"""
+import sys
+from warehouse.cli import main
+try:
+    main()
+finally:
+    sys.stderr.write("\npandas-imported=%s\n" % ("pandas" in sys.modules))
+"""
+
+ROWS = runs(6)
+
+
+def _parquet(path, rows):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.Table.from_pylist(rows), path)
+    return path
+
+
+def _run(*argv):
+    from faults import clean_env
+
+    p = subprocess.run([sys.executable, "-c", PROBE, *map(str, argv)], capture_output=True, text=True,
+                       env=clean_env(BLOCKYARD_RESIDENT="off"), timeout=300)
+    tail = p.stderr.rstrip().splitlines()[-1]
+    return p.returncode, p.stdout, p.stderr, tail
+
+
+@pytest.mark.parametrize("name,maker", [
+    ("runs.csv", lambda p: write(p, csv_text(ROWS))),
+    ("runs.tsv.gz", lambda p: write(p, csv_text(ROWS, delim="\t"), gz=True)),
+    ("runs.jsonl", lambda p: write(p, jsonl_text(ROWS))),
+    ("runs.parquet", lambda p: _parquet(p, ROWS)),
+])
+def test_each_format_loads_without_pandas(tmp_path, wh_location, name, maker):
+    where = wh_location
+    code, _, err, _ = _run("init", "-w", where)
+    assert code == 0, err
+    path = maker(tmp_path / name)
+    code, out, err, tail = _run("load", path, "--campaign", "c", "-w", where, "--json")
+    assert code == 0, err
+    assert tail == "pandas-imported=False"
+    rep = json.loads(out)["imports"][0]
+    assert (rep["status"], rep["rows_read"], rep["rows_loaded"], rep["rows_rejected"]) == ("loaded", 6, 6, 0)
+
+
+def test_refusals_skip_bad_and_dry_run_without_pandas(tmp_path, wh_location):
+    where = wh_location
+    assert _run("init", "-w", where)[0] == 0
+    bad = write(tmp_path / "bad.csv", csv_text(ROWS).replace(",ok,", ",exploded,", 1))
+    code, _, err, tail = _run("load", bad, "--campaign", "c", "-w", where)
+    assert code == 2 and tail == "pandas-imported=False"
+    assert "bad.csv line 2" in err and "unknown status 'exploded'" in err, err
+    code, out, err, tail = _run("load", bad, "--campaign", "c", "-w", where, "--skip-bad", "--json")
+    assert code == 0 and tail == "pandas-imported=False", err
+    rep = json.loads(out)["imports"][0]
+    assert (rep["rows_loaded"], rep["rows_rejected"]) == (5, 1)
+    assert (tmp_path / "bad.csv.rejects.csv").exists()
+    good = write(tmp_path / "more.csv", csv_text(runs(4, start_seed=50)))
+    code, out, err, tail = _run("load", good, "--campaign", "c", "-w", where, "--dry-run", "--json")
+    assert code == 0 and tail == "pandas-imported=False", err
+    assert json.loads(out)["imports"][0]["status"] == "checked"
