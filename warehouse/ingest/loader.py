@@ -865,6 +865,61 @@ class _PandasNotForArrow:
         return False
 
 
+class _BulkJournal:
+    """SQLite only: a load at least as large as the warehouse it goes into writes with the
+    rollback journal, then the warehouse goes back to WAL.
+
+    In WAL mode every page of a bulk load is written twice, once to the log and once more when
+    the log is copied into the file (0.2 s per million runs, a tenth of the whole load); with
+    the rollback journal, pages past the file's old end need no journal, so they are written
+    once. Both modes are atomic: a load that dies leaves a journal that the next reader rolls
+    back. The switch needs the warehouse to itself: when any other connection has it open (a
+    shell, a resident process, another load), it is not made and the load writes through WAL as
+    always. Readers that come during such a load wait for it (the busy timeout) instead of
+    reading the old state; the switch is made only for the first large loads into a warehouse
+    (runs already stored <= runs in the file), when there is little to read.
+    """
+
+    def __init__(self, conn, sqlite: bool, wanted: bool, total: int):
+        self.raw = conn.connection.driver_connection if sqlite else None
+        self.wanted, self.total = wanted, total
+        self.switched = False
+
+    def __enter__(self):
+        raw = self.raw
+        if raw is None:
+            return self
+        mode = raw.execute("PRAGMA journal_mode").fetchone()[0].lower()
+        if mode != "wal":  # a bulk load that died before switching back: back to WAL first
+            self._back(raw)
+        if not self.wanted:
+            return self
+        stored = raw.execute("SELECT max(id) FROM runs").fetchone()[0] or 0
+        if stored > self.total:
+            return self
+        timeout = raw.execute("PRAGMA busy_timeout").fetchone()[0]
+        raw.execute("PRAGMA busy_timeout = 0")
+        try:
+            self.switched = raw.execute("PRAGMA journal_mode = DELETE").fetchone()[0].lower() == "delete"
+        except sqlite3.OperationalError:  # another connection has it open: write through WAL
+            self.switched = False
+        finally:
+            raw.execute(f"PRAGMA busy_timeout = {int(timeout)}")
+        return self
+
+    def __exit__(self, *exc):
+        if self.switched:
+            self._back(self.raw)
+        return False
+
+    @staticmethod
+    def _back(raw) -> None:
+        try:
+            raw.execute("PRAGMA journal_mode = WAL")
+        except sqlite3.OperationalError:  # busy past the timeout: the next load tries again
+            pass
+
+
 def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | None = None, *,
               skip_bad: bool = False, dry_run: bool = False, rejects: str | Path | None = None,
               progress: Callable[[int, int], None] | None = None) -> FileReport:
@@ -942,7 +997,9 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
            chunks, summing: "Summing", report: FileReport, dry_run: bool, rejects, progress,
            allow_bulk: bool) -> FileReport:
     shown = info.name
-    with wh.write() as conn, _ForeignKeysOff(conn, wh.is_sqlite):
+    writes_sqlite = wh.is_sqlite and not dry_run
+    bulk_wanted = allow_bulk and writes_sqlite and total >= BULK_MIN_ROWS
+    with wh.write() as conn, _ForeignKeysOff(conn, wh.is_sqlite), _BulkJournal(conn, writes_sqlite, bulk_wanted, total):
         with conn.begin() as trans:
             if wh.dialect == "postgresql":
                 conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
