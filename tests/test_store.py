@@ -19,7 +19,12 @@ def test_migrations_build_the_schema_module(wh):
     # takes its slot (revision 0004); the module declares every slot
     missing = sorted(d[3].name for d in diff if d[0] == "add_column" and d[2] == "runs" and d[3].name[:1] == "v")
     assert [d for d in diff if not (d[0] == "add_column" and d[2] == "runs" and d[3].name[:1] == "v")] == []
-    assert missing == sorted(VALUE_COLUMNS)
+    import sqlite3
+
+    from conftest import ON_POSTGRES
+
+    dropped = ON_POSTGRES or sqlite3.sqlite_version_info >= (3, 35)  # DROP COLUMN came with SQLite 3.35
+    assert missing == (sorted(VALUE_COLUMNS) if dropped else [])
 
 
 def test_a_metric_column_comes_with_the_first_metric_of_its_slot(cli, wh, tmp_path):

@@ -15,6 +15,8 @@ runs keeps its columns: removing them would rewrite every run.
 Revision ID: 0004
 Revises: 0003
 """
+import sqlite3
+
 from alembic import op
 import sqlalchemy as sa
 
@@ -41,7 +43,10 @@ def upgrade() -> None:
             "UPDATE imports SET first_run_id = :lo, last_run_id = :hi, first_finished = :first, last_finished = :last"
             " WHERE id = :id"), {"lo": lo, "hi": hi, "first": first, "last": last, "id": import_id})
     op.drop_index("ix_runs_finished", "runs")
-    if conn.execute(sa.text("SELECT count(*) FROM (SELECT id FROM runs LIMIT 1) AS one")).scalar() == 0:
+    # (ALTER TABLE ... DROP COLUMN came with SQLite 3.35; an older SQLite keeps the columns, which
+    # costs load speed only)
+    can_drop = conn.dialect.name != "sqlite" or sqlite3.sqlite_version_info >= (3, 35)
+    if can_drop and conn.execute(sa.text("SELECT count(*) FROM (SELECT id FROM runs LIMIT 1) AS one")).scalar() == 0:
         used = conn.execute(sa.text("SELECT coalesce(max(slot), 0) FROM metrics")).scalar()
         for slot in range(int(used) + 1, METRIC_SLOTS + 1):
             op.execute(f"ALTER TABLE runs DROP COLUMN v{slot}")

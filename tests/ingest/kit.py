@@ -39,6 +39,14 @@ def write(path: Path, content: str | bytes, gz: bool = False) -> Path:
     return path
 
 
+def parquet(path: Path, rows: list[dict]) -> Path:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.Table.from_pylist(rows), path)
+    return path
+
+
 def csv_text(rows: list[dict], delim: str = ",", header: list[str] | None = None, newline: str = "\n") -> str:
     header = header or list(rows[0])
     lines = [delim.join(header)]

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import pytest
 
-from .kit import csv_text, jsonl_text, load_json, runs, stored_runs, write
+from .kit import csv_text, jsonl_text, load_json, parquet, runs, stored_runs, write
 
 ROWS = runs(6)
 # what the made-up rows above must become: status 0 is ok; finished_at as epoch seconds UTC
@@ -16,14 +16,6 @@ EXPECTED = sorted(
 )
 
 
-def _parquet(path, rows):
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    pq.write_table(pa.Table.from_pylist(rows), path)
-    return path
-
-
 @pytest.mark.parametrize("name,maker", [
     ("runs.csv", lambda p: write(p, csv_text(ROWS))),
     ("runs.csv.gz", lambda p: write(p, csv_text(ROWS), gz=True)),
@@ -31,7 +23,7 @@ def _parquet(path, rows):
     ("runs.tsv.gz", lambda p: write(p, csv_text(ROWS, delim="\t"), gz=True)),
     ("runs.jsonl", lambda p: write(p, jsonl_text(ROWS))),
     ("runs.jsonl.gz", lambda p: write(p, jsonl_text(ROWS), gz=True)),
-    ("runs.parquet", lambda p: _parquet(p, ROWS)),
+    ("runs.parquet", lambda p: parquet(p, ROWS)),
 ])
 def test_each_format_stores_the_same_runs(cli, location, tmp_path, name, maker):
     path = maker(tmp_path / name)

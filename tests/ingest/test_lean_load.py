@@ -10,7 +10,7 @@ import sys
 
 import pytest
 
-from .kit import csv_text, jsonl_text, runs, write
+from .kit import csv_text, jsonl_text, parquet, runs, write
 
 PROBE = r"""
 import sys
@@ -22,14 +22,6 @@ finally:
 """
 
 ROWS = runs(6)
-
-
-def _parquet(path, rows):
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    pq.write_table(pa.Table.from_pylist(rows), path)
-    return path
 
 
 def _run(*argv):
@@ -45,7 +37,7 @@ def _run(*argv):
     ("runs.csv", lambda p: write(p, csv_text(ROWS))),
     ("runs.tsv.gz", lambda p: write(p, csv_text(ROWS, delim="\t"), gz=True)),
     ("runs.jsonl", lambda p: write(p, jsonl_text(ROWS))),
-    ("runs.parquet", lambda p: _parquet(p, ROWS)),
+    ("runs.parquet", lambda p: parquet(p, ROWS)),
 ])
 def test_each_format_loads_without_pandas(tmp_path, wh_location, name, maker):
     where = wh_location

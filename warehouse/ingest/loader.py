@@ -929,10 +929,9 @@ def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | N
                           progress=progress)
 
 
-def _load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | None = None, *,
-              skip_bad: bool = False, dry_run: bool = False, rejects: str | Path | None = None,
-              progress: Callable[[int, int], None] | None = None) -> FileReport:
-    """Load one result file into `campaign`; refuse it whole, with one line saying why, on bad input."""
+def _load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | None, *,
+               skip_bad: bool, dry_run: bool, rejects: str | Path | None,
+               progress: Callable[[int, int], None] | None) -> FileReport:
     layout = layout or Layout()
     shown = str(path)
     p = Path(path)

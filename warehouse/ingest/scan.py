@@ -178,16 +178,12 @@ def start_early(argv: list[str]) -> None:
         if tok.startswith("-"):
             continue
         p = Path(tok)
-        suffixes = [x.lower() for x in p.suffixes]
-        if suffixes and suffixes[-1] in (".gz", ".gzip"):
-            suffixes = suffixes[:-1]
-        if not suffixes or suffixes[-1] not in FORMATS:
-            continue
         try:
+            detect_format(p, tok)
             if not p.is_file():
                 continue
             stamp = _stamp(p)
-        except OSError:
+        except (InputError, OSError):  # not a data file: the load itself says so
             continue
         key = str(p.resolve())
         with _EARLY_LOCK:

@@ -134,7 +134,7 @@ def _id_ranges(conn, imports_hit, T=R):
     if not merged:
         return false()
     if len(merged) > MAX_RANGES:
-        return T.c.id.between(merged[0][0], max(hi for _, hi in merged))
+        return T.c.id.between(merged[0][0], merged[-1][1])  # (sorted and apart: the last ends last)
     return or_(*[T.c.id.between(lo, hi) for lo, hi in merged])
 
 

@@ -11,16 +11,12 @@ from sqlalchemy import inspect
 
 def present(conn) -> set[int]:
     """The slots whose column the runs table has."""
-    if conn.dialect.name == "sqlite":
-        names = [r[1] for r in conn.exec_driver_sql("PRAGMA table_info(runs)")]
-    else:
-        names = [c["name"] for c in inspect(conn).get_columns("runs")]
+    names = [c["name"] for c in inspect(conn).get_columns("runs")]
     return {int(n[1:]) for n in names if n[:1] == "v" and n[1:].isdigit()}
 
 
-def ensure(conn, slot: int, have: set[int] | None = None) -> None:
-    """Add the column of this slot when the table does not have it yet."""
-    have = present(conn) if have is None else have
+def ensure(conn, slot: int, have: set[int]) -> None:
+    """Add the column of this slot when the table (whose slots are `have`) lacks it."""
     if int(slot) not in have:
         conn.exec_driver_sql(f"ALTER TABLE runs ADD COLUMN v{int(slot)} FLOAT")
         have.add(int(slot))
