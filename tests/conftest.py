@@ -18,6 +18,21 @@ os.environ["BLOCKYARD_RESIDENT"] = "off"
 ON_POSTGRES = TEST_URL.startswith("postgres")
 
 
+# The statistics tests (tests/analyze) never open a warehouse: the PostgreSQL pass would run the
+# very same computations again, so it leaves them to the SQLite pass.
+DATABASE_FREE = ("analyze",)
+
+
+def pytest_collection_modifyitems(config, items):
+    if not ON_POSTGRES:
+        return
+    skip = pytest.mark.skip(reason="no warehouse in these tests: they run in the SQLite pass")
+    for item in items:
+        parts = item.path.parts
+        if "tests" in parts and len(parts) > parts.index("tests") + 2 and parts[parts.index("tests") + 1] in DATABASE_FREE:
+            item.add_marker(skip)
+
+
 def _pg_location(schema: str) -> str:
     sep = "&" if "?" in TEST_URL else "?"
     return f"{TEST_URL}{sep}options=-csearch_path%3D{schema}"

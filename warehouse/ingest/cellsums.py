@@ -140,34 +140,31 @@ class CellSums:
 
         As for runs: whole-valued REALs land as INTEGERs in the integer columns and NaN as NULL.
         """
-        names = COLUMNS
-        width = len(names)
         per = 200
-        one = "(" + ", ".join("?" * width) + ")"
-        head = f"INSERT INTO cell_stats ({', '.join(names)}) VALUES "
+        head = f"INSERT INTO cell_stats ({', '.join(COLUMNS)}) VALUES "
         out: list[tuple[str, list, int]] = []
         for slot in sorted(self.parts):
             self._merge(slot)
             keys, s = self.parts[slot][0]
             m = len(keys)
             if max(int(np.abs(s["id_sum"]).max(initial=0)), int(s["id_max"].max(initial=0))) >= 2**53:
+                one = "(" + ", ".join("?" * len(COLUMNS)) + ")"
                 out.append((head + one, list(self._slot_rows(slot, campaign_id, import_id)), m))
                 continue
+            # the import, its campaign and the slot are the same on every row: written in the statement
+            fixed = {"campaign_id": int(campaign_id), "import_id": int(import_id), "slot": int(slot)}
+            names = [c for c in COLUMNS if c not in fixed]
+            width = len(names)
+            one = "(" + ", ".join(str(fixed[c]) if c in fixed else "?" for c in COLUMNS) + ")"
             t = np.empty((m, width), dtype=np.float64)
             has_ok = s["n_ok"] > 0
             for i, name in enumerate(names):
-                if name == "campaign_id":
-                    t[:, i] = campaign_id
-                elif name == "import_id":
-                    t[:, i] = import_id
-                elif name == "solver_id":
+                if name == "solver_id":
                     t[:, i] = keys[:, 0]
                 elif name == "instance_id":
                     t[:, i] = keys[:, 1]
                 elif name == "host_id":
                     t[:, i] = np.where(keys[:, 2] >= 0, keys[:, 2], np.nan)
-                elif name == "slot":
-                    t[:, i] = slot
                 elif name in ("sum_ok", "sq_ok", "min_ok", "max_ok"):
                     t[:, i] = np.where(has_ok, s[name], np.nan)
                 elif name == "sum_fail_v":

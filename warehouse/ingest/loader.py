@@ -566,15 +566,24 @@ def _with_nulls(values: np.ndarray, present: np.ndarray) -> list:
 class _Writer:
     """Writes run rows; the dialect decides executemany (SQLite) or COPY (PostgreSQL)."""
 
-    def __init__(self, conn, dialect: str, slots: list[int], campaign_id: int, import_id: int):
+    def __init__(self, conn, dialect: str, slots: list[int], campaign_id: int, import_id: int,
+                 numbered: bool = False):
         self.conn, self.dialect = conn, dialect
         self.slots = slots
+        # `numbered` (SQLite, a bulk load with the keys set aside): SQLite numbers the rows itself.
+        # A row given no id gets the largest id stored plus one, the very ids the load hands out
+        # (its write transaction read that largest id); no key can refuse a row meanwhile, so
+        # none is skipped and the numbering never drifts (the load checks the last id at the end).
+        self.numbered = numbered and dialect == "sqlite"
         self.cols = RUN_COLS + [f"v{s}" for s in slots]
         self.raw = conn.connection.driver_connection
+        if self.numbered:
+            self.cols = self.cols[1:]
         names = ", ".join(self.cols)
         if dialect == "sqlite":
             # the two ids are the same on every row and are ours, not the file's: written in the statement
-            marks = "(" + ", ".join(["?", str(int(campaign_id)), str(int(import_id))] + ["?"] * (len(self.cols) - 3)) + ")"
+            fixed = [str(int(campaign_id)), str(int(import_id))]
+            marks = "(" + ", ".join((fixed if self.numbered else ["?"] + fixed) + ["?"] * (len(self.cols) - (2 if self.numbered else 3))) + ")"
             self.width = len(self.cols) - 2
             limit = self.raw.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if hasattr(self.raw, "getlimit") else 999
             self.per_statement = max(1, min(4000, limit // self.width))
@@ -625,6 +634,9 @@ class _Writer:
     def _write_sqlite(self, ids, rows: Rows, solver, instance, host, has_host, metric_of_slot) -> None:
         m = len(ids)
         ints = [ids, solver, instance, rows.seed, rows.replicate, rows.status, rows.finished, host, rows.lines]
+        if self.numbered:
+            ints = ints[1:]
+        at = len(ints) - 3  # where finished_at sits; host_id follows it
         if all(int(np.abs(a).max(initial=0)) < V.WHOLE_LIMIT for a in (rows.seed, rows.finished)):
             # One float64 table, many rows per statement. SQLite stores a whole-valued REAL in an
             # INTEGER column as an INTEGER, and a NaN as NULL, so the stored values and types are
@@ -632,8 +644,8 @@ class _Writer:
             table = np.empty((m, self.width), dtype=np.float64)
             for i, a in enumerate(ints):
                 table[:, i] = a
-            table[~rows.has_finished, 6] = np.nan
-            table[~has_host, 7] = np.nan
+            table[~rows.has_finished, at] = np.nan
+            table[~has_host, at + 1] = np.nan
             for i, s in enumerate(self.slots):
                 table[:, len(ints) + i] = rows.metrics[metric_of_slot[s]]
             k = self.per_statement
@@ -644,7 +656,7 @@ class _Writer:
                 self.raw.executemany(self.sql_one, table[full:].tolist())
             return
         # a seed or time past 2**53 would not survive a float: bind Python ints one row at a time
-        columns = [a.tolist() for a in ints[:6]] + [
+        columns = [a.tolist() for a in ints[:at]] + [
             _with_nulls(rows.finished, rows.has_finished), _with_nulls(host, has_host), rows.lines.tolist()]
         for s in self.slots:
             vals = rows.metrics[metric_of_slot[s]]
@@ -1032,7 +1044,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                     report.metrics[metric] = sense
                 slots = sorted(metric_slots.values())
                 if writer is None or writer.slots != slots:
-                    writer = _Writer(conn, wh.dialect, slots, campaign_id, import_id)
+                    writer = _Writer(conn, wh.dialect, slots, campaign_id, import_id, numbered=bool(set_aside))
                 m = len(rows)
                 codes, keys = rows.keys["solver"]
                 solver_of = np.asarray(dims.solver_ids(keys), dtype=np.int64)
@@ -1084,6 +1096,10 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 summing.finish(campaign_id, import_id)
             else:
                 summing.finish()
+            if set_aside and loaded:
+                last = conn.execute(select(func.max(S.runs.c.id))).scalar()
+                if last != next_id - 1:  # SQLite numbered the rows otherwise than the load did
+                    raise RuntimeError(f"runs were numbered up to {last}, not {next_id - 1}; nothing was stored")
             if set_aside:
                 # sort the keys through temporary files, so that memory stays flat however large the table
                 conn.exec_driver_sql("PRAGMA temp_store = FILE")
