@@ -25,6 +25,7 @@ from pathlib import Path
 import pytest
 
 from conftest import ON_POSTGRES
+from warehouse.store.schema import SCHEMA_REVISION
 
 from . import (another_location, blockyard, cells_agree, clean_env, command, in_process, one_line, sql,
                sqlite_whole, table_counts)
@@ -239,8 +240,8 @@ def test_upgrade_keeps_every_row_and_every_stored_analysis(pair):
     res = in_process(old, "upgrade", "--json")
     assert res.code == 0, res
     doc = res.json()
-    assert (doc["from"], doc["to"], doc["status"]) == ("0002", "0004", "upgraded")
-    assert revision(old) == "0004"
+    assert (doc["from"], doc["to"], doc["status"]) == ("0002", SCHEMA_REVISION, "upgraded")
+    assert revision(old) == SCHEMA_REVISION
     assert contents(old, tables) == before
     # 0004: each import's id and time range is the range of its runs (a date slice relies on it)
     ranges = sql(old, "SELECT i.id, i.first_run_id, i.last_run_id, i.first_finished, i.last_finished,"
@@ -468,9 +469,9 @@ def kill_upgrades(tmp_path: Path, kills: int, seed: int) -> None:
             killed += 1
         sqlite_whole(path)
         rev = revision(str(path))
-        assert rev in ("0002", "0004"), rev  # all revisions go in one transaction
-        assert ("cell_stats" in table_counts(str(path))) == (rev == "0004")
-        if rev == "0004":  # it finished first: start again from the old file, and kill sooner
+        assert rev in ("0002", SCHEMA_REVISION), rev  # all revisions go in one transaction
+        assert ("cell_stats" in table_counts(str(path))) == (rev == SCHEMA_REVISION)
+        if rev == SCHEMA_REVISION:  # it finished first: start again from the old file, and kill sooner
             cells_agree(str(path))
             for extra in ("", "-wal", "-shm"):
                 Path(f"{path}{extra}").unlink(missing_ok=True)
@@ -480,7 +481,7 @@ def kill_upgrades(tmp_path: Path, kills: int, seed: int) -> None:
     # left alone, the upgrade goes through, whatever copies a killed one left behind
     res = blockyard("upgrade", "-w", path, "--json")
     assert res.code == 0, res
-    assert revision(str(path)) == "0004"
+    assert revision(str(path)) == SCHEMA_REVISION
     sqlite_whole(path)
     cells_agree(str(path))
     assert contents(str(path), {"runs": ["id", "v1", "v2"]}) == runs_before
