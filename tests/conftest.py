@@ -8,6 +8,7 @@ from __future__ import annotations
 import io
 import os
 import uuid
+from pathlib import Path
 
 import pytest
 
@@ -20,7 +21,7 @@ ON_POSTGRES = TEST_URL.startswith("postgres")
 
 # The statistics tests (tests/analyze) never open a warehouse: the PostgreSQL pass would run the
 # very same computations again, so it leaves them to the SQLite pass.
-DATABASE_FREE = ("analyze",)
+DATABASE_FREE = [Path(__file__).parent / "analyze"]
 
 
 def pytest_collection_modifyitems(config, items):
@@ -28,8 +29,7 @@ def pytest_collection_modifyitems(config, items):
         return
     skip = pytest.mark.skip(reason="no warehouse in these tests: they run in the SQLite pass")
     for item in items:
-        parts = item.path.parts
-        if "tests" in parts and len(parts) > parts.index("tests") + 2 and parts[parts.index("tests") + 1] in DATABASE_FREE:
+        if any(item.path.is_relative_to(folder) for folder in DATABASE_FREE):
             item.add_marker(skip)
 
 

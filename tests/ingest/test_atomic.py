@@ -70,6 +70,30 @@ def test_large_load_stores_everything_and_keeps_the_indexes(cli, location, tmp_p
         assert query(location, "PRAGMA integrity_check") == [("ok",)]
 
 
+@pytest.mark.parametrize("huge_seed", [False, True], ids=["float-table", "seed-past-2-53"])
+def test_large_first_load_numbers_runs_in_file_order_with_every_field_in_place(cli, location, tmp_path, huge_seed):
+    # A large first load lets the database number the runs (no id bound): run k of the file must
+    # still get id k+1, the import's id range must be those ids, and no field may slide into its
+    # neighbour's column. Checked on both ways of writing (one float table; Python ints when a
+    # seed is past 2**53, which a float cannot hold).
+    n = loader.BULK_MIN_ROWS + 2_000
+    path = big_csv(tmp_path / "big.csv", n)
+    text = path.read_text(encoding="utf-8").splitlines(keepends=True)
+    # line 5 (run id 4) has neither a finish time nor a host; line 7 (id 6) a seed only Python ints hold exactly
+    text[4] = "stacker,1.6,fam3,g3,i3,0,ok,,,23\n"
+    if huge_seed:
+        text[6] = "stacker,1.6,fam1,g5,i5,9007199254740993,ok,2026-11-09T10:00:00Z,rack-a,25\n"
+    path.write_text("".join(text), encoding="utf-8")
+    assert load_json(cli, path)["rows_loaded"] == n
+    assert query(location, "SELECT count(*) FROM runs WHERE id <> source_line - 1") == [(0,)]
+    assert query(location, "SELECT first_run_id, last_run_id FROM imports") == [(1, n)]
+    assert query(location, "SELECT seed, finished_at, host_id, v1 FROM runs WHERE id IN (4, 5, 6) ORDER BY id") == [
+        (0, None, None, 23.0),
+        (0, 1794218400, 1, 24.0),  # 2026-11-09T10:00:00Z: 1794218400 s after the epoch (GNU date -u -d ... +%s)
+        (9007199254740993 if huge_seed else 0, 1794218400, 1, 25.0),
+    ]
+
+
 def test_large_load_over_stored_runs_skips_them(cli, location, tmp_path):
     n = loader.BULK_MIN_ROWS + 2_000
     first = big_csv(tmp_path / "a.csv", 3_000)

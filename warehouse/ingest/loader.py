@@ -582,9 +582,9 @@ class _Writer:
         names = ", ".join(self.cols)
         if dialect == "sqlite":
             # the two ids are the same on every row and are ours, not the file's: written in the statement
-            fixed = [str(int(campaign_id)), str(int(import_id))]
-            marks = "(" + ", ".join((fixed if self.numbered else ["?"] + fixed) + ["?"] * (len(self.cols) - (2 if self.numbered else 3))) + ")"
-            self.width = len(self.cols) - 2
+            fixed = {"campaign_id": str(int(campaign_id)), "import_id": str(int(import_id))}
+            marks = "(" + ", ".join(fixed.get(c, "?") for c in self.cols) + ")"
+            self.width = len(self.cols) - len(fixed)
             limit = self.raw.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if hasattr(self.raw, "getlimit") else 999
             self.per_statement = max(1, min(4000, limit // self.width))
             head = f"INSERT OR IGNORE INTO runs ({names}) VALUES "
@@ -1099,7 +1099,8 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
             if set_aside and loaded:
                 last = conn.execute(select(func.max(S.runs.c.id))).scalar()
                 if last != next_id - 1:  # SQLite numbered the rows otherwise than the load did
-                    raise RuntimeError(f"runs were numbered up to {last}, not {next_id - 1}; nothing was stored")
+                    raise StorageError(f"warehouse {wh.display} numbered the runs of {shown} up to {last}, "
+                                       f"not {next_id - 1}; nothing from {shown} was stored")
             if set_aside:
                 # sort the keys through temporary files, so that memory stays flat however large the table
                 conn.exec_driver_sql("PRAGMA temp_store = FILE")
