@@ -294,11 +294,13 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
                     select(func.count()).select_from(per_inst).scalar_subquery().label("valid_instances"))
              .join_from(v, m, and_(m.c.instance_id == v.c.instance_id, has_value), isouter=True)
              .group_by(v.c.solver_id, v.c.group_id))
-    try:
-        rows = conn.execute(query).all()
-    except DBAPIError:  # an integer sum past 64 bits, say: the pandas way has no such limit
-        conn.rollback()
-        return None
+    rows = _rows_from_blocks(conn, sl, dims, slot)
+    if rows is None:
+        try:
+            rows = conn.execute(query).all()
+        except DBAPIError:  # an integer sum past 64 bits, say: the pandas way has no such limit
+            conn.rollback()
+            return None
     if not rows:
         raise DesignError(f"no runs in slice '{sl.text or '(everything)'}'; see blockyard inventory for what is stored")
     label = {int(sid): dims.treatment(int(sid)) for sid in {r.solver_id for r in rows}}
@@ -341,6 +343,46 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=sum(int(r.n) for r in rows), runs_used=runs_used,
         instances_used=instances_used, notes=notes, hosts=hosts, campaigns=campaigns,
         fingerprint=fingerprint, max_run_id=max(int(r.id_max) for r in rows), hash_conflicts=conflicts)
+
+
+def _rows_from_blocks(conn, sl: Slice, dims: Dims, slot: int) -> list | None:
+    """The rows of the collapse statement read from the block summaries (schema 0006), or None
+    when they cannot give them exactly and the cells must be summed.
+
+    They can when the slice takes whole campaigns, treatments and blocks, no treatment's block
+    came from two imports (a cell split between imports sums across them), and in every block
+    the treatments with a value came from one import and each has a value on every instance any
+    solver of that import has one on: then the instances every treatment shares are all of them,
+    and each block row is the observation as it stands.
+    """
+    from types import SimpleNamespace
+
+    from .select.resolve import blocks_can_answer
+
+    if not blocks_can_answer(sl):
+        return None
+    B = S.block_stats
+    got = conn.execute(select(B).where(condition(sl, dims, conn, table=B), B.c.slot == slot)).all()
+    if not got:
+        return None
+    seen: set[tuple[int, int]] = set()
+    source: dict[int, tuple[int, int]] = {}  # group -> (import, instances valued there)
+    for r in got:
+        key = (int(r.solver_id), int(r.group_id))
+        if key in seen:
+            return None
+        seen.add(key)
+        if r.vcells:
+            if int(r.vcells) != int(r.group_valued):
+                return None
+            if source.setdefault(int(r.group_id), (int(r.import_id), int(r.group_valued)))[0] != int(r.import_id):
+                return None
+    valid = sum(k for _, k in source.values())
+    return [SimpleNamespace(
+        solver_id=r.solver_id, group_id=r.group_id, n=int(r.n), n_ok=int(r.n_ok), n_fail=int(r.n_fail),
+        id_sum=int(r.id_sum), w_ids=int(r.w_ids), cells=int(r.cells), inst=int(r.inst), id_max=int(r.id_max),
+        lost=int(r.lost), value=(float(r.vsum) / int(r.vcells)) if r.vcells else None, instances=int(r.vcells),
+        runs=int(r.v_n), failed=int(r.v_fail), ok=int(r.v_ok), valid_instances=valid) for r in got]
 
 
 def _holes(obs: pd.DataFrame, all_blocks: list[str], treatments: list[str], st: dict) -> tuple[pd.DataFrame, list[dict]]:

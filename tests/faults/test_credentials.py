@@ -231,6 +231,8 @@ def grant_member(role: str, location: str, leave_out: str = "") -> None:
     }
     if sql(TEST_URL, "SELECT to_regclass(:t)", t=f'"{schema}".cell_stats')[0][0] is not None:  # from schema 0003 on
         grants["cells"] = f'GRANT DELETE ON "{schema}".cell_stats TO {role}'
+    if sql(TEST_URL, "SELECT to_regclass(:t)", t=f'"{schema}".block_stats')[0][0] is not None:  # from schema 0006 on
+        grants["blocks"] = f'GRANT DELETE ON "{schema}".block_stats TO {role}'
     for name, statement in grants.items():
         if name != leave_out:
             admin(statement)
@@ -278,6 +280,7 @@ def test_creating_a_warehouse_takes_create_which_a_member_lacks(location, role, 
     ("INSERT", ("load", "{more}", "--campaign", "more")),
     ("sequences", ("blocktest", "--metric", "pallets")),  # a kept analysis draws its id from a sequence
     ("cells", ("retract", "--slice", "solver=packer", "--reason", "r")),  # retraction rebuilds cell summaries
+    ("blocks", ("retract", "--slice", "solver=packer", "--reason", "r")),  # and the block summaries
 ])
 def test_each_documented_privilege_is_needed(location, tmp_path, stocked, role, leave_out, argv):
     grant_member(role, location, leave_out=leave_out)

@@ -17,6 +17,9 @@ COLUMNS = [c.name for c in S.cell_stats.columns]
 INTS = ("n", "n_ok", "n_fail", "n_fail_v", "id_sum", "id_max")
 FLOATS = ("sum_ok", "sq_ok", "min_ok", "max_ok", "sum_fail_v")
 MERGE_AT = 200_000  # reduced cell rows kept per slot before they are merged again
+# values of cell rows made Python objects ahead, in the helper, while the loading thread builds the
+# runs' keys (that work lets go of Python's lock); about 32 bytes each, so at most ~150 MB
+AHEAD_VALUES = 4_500_000
 
 
 def _groups(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -171,6 +174,17 @@ class CellSums:
                     t[:, i] = np.where(s["n_fail_v"] > 0, s[name], np.nan)
                 else:
                     t[:, i] = s[name]
+            # columns with one value on every row (the host of a one-host file, the seeds per cell)
+            # go into the statement as literals, as for runs
+            same = constant_columns(t, names, CELL_WHOLE)
+            if same:
+                fixed.update(same)
+                t = np.ascontiguousarray(t[:, [i for i, c in enumerate(names) if c not in same]])
+                width = t.shape[1]
+                one = "(" + ", ".join(str(fixed[c]) if c in fixed else "?" for c in COLUMNS) + ")"
+                if width == 0:
+                    out.append((head + one, [()] * m, m))
+                    continue
             full = m // per * per
             if full:
                 out.append((head + ", ".join([one] * per), t[:full].reshape(-1, per * width), full))
@@ -213,13 +227,50 @@ class CellSums:
         return list(zip(*(columns[c] for c in COLUMNS)))
 
 
+CELL_WHOLE = frozenset({"solver_id", "instance_id", "host_id"} | set(INTS))
+
+
+def constant_columns(table: np.ndarray, names: list[str], whole: frozenset) -> dict[str, str]:
+    """The columns of a float table with one value on every row, as SQL literals: NULL where every
+    value is NaN, the number where a whole-number column holds one value. A float column's value
+    stays bound (its decimal text need not read back as the same double)."""
+    out: dict[str, str] = {}
+    if len(table) == 0:
+        return out
+    first = table[0]
+    for i, c in enumerate(names):
+        v = first[i]
+        col = table[:, i]
+        if np.isnan(v):
+            if np.isnan(col).all():
+                out[c] = "NULL"
+        elif c in whole and abs(v) < 2**53 and v == int(v) and (col == v).all():
+            out[c] = str(int(v))
+    return out
+
+
 def run_statements(raw, statements: list[tuple]) -> int:
     """Write the cells through a SQLite driver connection, as `CellSums.sqlite_statements` gave them."""
     written = 0
-    for sql, params, cells in statements:
+    for i, (sql, params, cells) in enumerate(statements):
+        statements[i] = (sql, None, cells)  # each part is let go of once written
         raw.executemany(sql, params.tolist() if isinstance(params, np.ndarray) else params)
         written += cells
     return written
+
+
+def convert_ahead(statements: list[tuple], budget: int = AHEAD_VALUES) -> None:
+    """Turn the first parts' float tables into the Python rows executemany takes, up to `budget`
+    values: done in the helper thread while the loading thread waits on SQLite, so that the
+    conversion (which holds Python's lock) is off the load's critical path. The rest are
+    converted as they are written, so memory stays bounded however many cells a file has."""
+    for i, (sql, params, cells) in enumerate(statements):
+        if not isinstance(params, np.ndarray):
+            continue
+        if params.size > budget:
+            return
+        budget -= params.size
+        statements[i] = (sql, params.tolist(), cells)
 
 
 class Summing:
@@ -275,7 +326,9 @@ class Summing:
                 if self._error is None:
                     self.sums.merge_all()
                     if campaign_id is not None:
-                        self.statements = self.sums.sqlite_statements(campaign_id, import_id)
+                        statements = self.sums.sqlite_statements(campaign_id, import_id)
+                        convert_ahead(statements)
+                        self.statements = statements
                 return
             except BaseException as exc:  # noqa: BLE001 - raised again by result()
                 self._error = exc

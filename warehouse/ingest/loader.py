@@ -33,7 +33,7 @@ from ..store import schema as S
 from ..store import value_columns
 from ..store.connect import Warehouse
 from . import values as V
-from .cellsums import Summing, reduce_chunk, run_statements
+from .cellsums import Summing, constant_columns, reduce_chunk, run_statements
 from .layout import FIELDS, NAME_LIMIT, Layout
 from .scan import first_pass_of
 from .sources import SourceInfo, read_delimited, read_header, read_jsonl, read_parquet
@@ -551,6 +551,9 @@ class _FileLoad:
 
 # --- writing -----------------------------------------------------------------------------------
 
+# run columns that hold whole numbers (a chunk-wide constant among them is written as a literal)
+_WHOLE_COLUMNS = frozenset({"id", "solver_id", "instance_id", "seed", "replicate", "status", "finished_at",
+                            "host_id", "source_line"})
 RUN_COLS = ["id", "campaign_id", "import_id", "solver_id", "instance_id", "seed", "replicate",
             "status", "finished_at", "host_id", "source_line"]
 
@@ -582,14 +585,13 @@ class _Writer:
         names = ", ".join(self.cols)
         if dialect == "sqlite":
             # the two ids are the same on every row and are ours, not the file's: written in the statement
-            fixed = {"campaign_id": str(int(campaign_id)), "import_id": str(int(import_id))}
-            marks = "(" + ", ".join(fixed.get(c, "?") for c in self.cols) + ")"
-            self.width = len(self.cols) - len(fixed)
-            limit = self.raw.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if hasattr(self.raw, "getlimit") else 999
-            self.per_statement = max(1, min(4000, limit // self.width))
-            head = f"INSERT OR IGNORE INTO runs ({names}) VALUES "
-            self.sql_one = head + marks
-            self.sql_many = head + ", ".join([marks] * self.per_statement)
+            self.fixed = {"campaign_id": str(int(campaign_id)), "import_id": str(int(import_id))}
+            self.bound = [c for c in self.cols if c not in self.fixed]  # the table's columns, in order
+            self.width = len(self.bound)
+            self.limit = self.raw.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if hasattr(self.raw, "getlimit") else 999
+            self.head = f"INSERT OR IGNORE INTO runs ({names}) VALUES "
+            self.sql_one = self.head + self._marks({})
+            self._statements: dict[tuple, tuple[str, str, int]] = {}
         else:
             self.campaign_id, self.import_id = campaign_id, import_id
             # made again for each writer: a metric new in this file may have added a column to runs
@@ -600,6 +602,10 @@ class _Writer:
             self.copy_sql = f"COPY blockyard_stage ({names}) FROM STDIN (FORMAT csv)"
             self.move_sql = (f"INSERT INTO runs ({names}) SELECT {names} FROM blockyard_stage ORDER BY id "
                              "ON CONFLICT DO NOTHING")
+
+    def _marks(self, same: dict[str, str]) -> str:
+        """One row's VALUES group: the import's two ids and the chunk's constants as literals."""
+        return "(" + ", ".join(self.fixed.get(c) or same.get(c, "?") for c in self.cols) + ")"
 
     def write(self, ids: np.ndarray, rows: Rows, solver: np.ndarray, instance: np.ndarray,
               host: np.ndarray, has_host: np.ndarray, metric_of_slot: dict[int, str]) -> None:
@@ -648,12 +654,30 @@ class _Writer:
             table[~has_host, at + 1] = np.nan
             for i, s in enumerate(self.slots):
                 table[:, len(ints) + i] = rows.metrics[metric_of_slot[s]]
-            k = self.per_statement
+            # A column with one value on every row of the chunk (one host per file, no replicate
+            # column, a metric the file leaves empty) is written once in the statement instead of
+            # bound on every row: binding is most of the Python side of an insert. Only whole
+            # numbers and NULL become literals (a float's decimal text need not read back exactly).
+            same = constant_columns(table, self.bound, _WHOLE_COLUMNS)
+            key = tuple(sorted(same.items()))
+            if key not in self._statements:
+                per = max(1, min(4000, self.limit // max(self.width - len(same), 1)))
+                marks = self._marks(same)
+                self._statements[key] = (self.head + ", ".join([marks] * per), self.head + marks, per)
+                if len(self._statements) > 64:  # a file whose constants change chunk after chunk
+                    self._statements.pop(next(iter(self._statements)))
+            sql_many, sql_one, k = self._statements[key]
+            if same:
+                table = table[:, [i for i, c in enumerate(self.bound) if c not in same]]
+            width = table.shape[1]
             full = m // k * k
+            if width == 0:  # every column the same: nothing to bind
+                self.raw.executemany(sql_one, [()] * m)
+                return
             if full:
-                self.raw.executemany(self.sql_many, table[:full].reshape(-1, k * self.width).tolist())
+                self.raw.executemany(sql_many, table[:full].reshape(-1, k * width).tolist())
             if m > full:
-                self.raw.executemany(self.sql_one, table[full:].tolist())
+                self.raw.executemany(sql_one, table[full:].tolist())
             return
         # a seed or time past 2**53 would not survive a float: bind Python ints one row at a time
         columns = [a.tolist() for a in ints[:at]] + [
@@ -1121,10 +1145,13 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 first_run_id=first_id if loaded else None, last_run_id=next_id - 1 if loaded else None,
                 first_finished=first_fin if loaded else None, last_finished=last_fin if loaded else None))
             summaries = summing.result()
+            from ..store import blocks
+
             if skipped:  # some rows did not go in: sum the cells from what was stored
                 from ..store import cells
 
                 cells.from_runs(conn, import_id, first_id, next_id - 1)
+                blocks.rebuild(conn, [import_id])
             else:
                 if wh.is_sqlite:
                     run_statements(conn.connection.driver_connection, summing.statements or [])
@@ -1132,6 +1159,8 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                     from ..store import cells
 
                     cells.write_rows(conn, wh.dialect, summaries.rows(campaign_id, import_id))
+                group_of = {iid: key[0] for key, iid in dims.instances.items()}
+                blocks.write(conn, blocks.from_sums(summaries, campaign_id, import_id, group_of))
             report.rows_read, report.rows_loaded = read, loaded
             report.rows_rejected, report.rows_skipped = rejected, skipped
             report.import_id = import_id

@@ -219,17 +219,50 @@ def factorize(columns: list, n: int) -> tuple[np.ndarray, list[tuple]]:
     """Codes per row and the distinct key tuples for one or more text columns.
 
     A column is a pyarrow string array or a plain str (the same value on every row). Only the
-    distinct values ever become Python objects.
+    distinct values ever become Python objects. The columns' codes are combined into one number
+    per row and sorted once (column by column only where that number could overflow).
     """
-    codes = np.zeros(n, dtype=np.int64)
-    keys: list[tuple] = [()]
+    parts = []  # (codes, distinct values) of each text array; a str is the same on every row
     for col in columns:
         if isinstance(col, str):
-            keys = [k + (col,) for k in keys]
+            parts.append(col)
             continue
         enc = combined(col).dictionary_encode()
-        idx = enc.indices.to_numpy(zero_copy_only=False).astype(np.int64)
-        values = enc.dictionary.to_pylist()
+        parts.append((enc.indices.to_numpy(zero_copy_only=False).astype(np.int64), enc.dictionary.to_pylist()))
+    arrays = [p for p in parts if not isinstance(p, str)]
+    span = 1.0
+    for _, values in arrays:
+        span *= max(len(values), 1)
+    if span < 2.0**62:
+        code = np.zeros(n, dtype=np.int64)
+        for idx, values in arrays:
+            code = code * max(len(values), 1) + idx
+        uniq, inverse = np.unique(code, return_inverse=True)
+        digits = []  # each column's code of every distinct key, last column first
+        rest = uniq
+        for idx, values in reversed(arrays):
+            rest, d = np.divmod(rest, max(len(values), 1))
+            digits.append(d.tolist())
+        digits.reverse()
+        per_col = iter(digits)
+        cols = []
+        for p in parts:
+            if isinstance(p, str):
+                cols.append([p] * len(uniq))
+            else:
+                values = p[1]
+                cols.append([values[i] for i in next(per_col)])
+        keys = list(zip(*cols)) if cols else [()] * len(uniq)
+        if not arrays:
+            return np.zeros(n, dtype=np.int64), [tuple(p for p in parts)]
+        return inverse.reshape(-1), keys
+    codes = np.zeros(n, dtype=np.int64)
+    keys: list[tuple] = [()]
+    for p in parts:
+        if isinstance(p, str):
+            keys = [k + (p,) for k in keys]
+            continue
+        idx, values = p
         width = max(len(values), 1)
         uniq, codes = np.unique(codes * width + idx, return_inverse=True)
         keys = [keys[u // width] + (values[u % width],) for u in uniq.tolist()]

@@ -177,6 +177,8 @@ def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
                         raise SliceError(f"slice term {n} '{term.text()}': no group '{v}' in this warehouse{_suggest(v, dims.values('group'))}")
             positive = "~" if term.op == "~" else "="
             gids = [g for g in dims.groups if _match(positive, term.values, short[g]) or _match(positive, term.values, full[g])]
+        if "instance_id" not in T.c:  # the block summaries carry the group itself
+            return _in(T.c.group_id, sorted(gids), neg)
         sub = select(S.instances.c.id).where(S.instances.c.group_id.in_(gids or [-1]))
         return not_(T.c.instance_id.in_(sub)) if neg else T.c.instance_id.in_(sub)
     if key == "instance":
@@ -241,3 +243,12 @@ CELL_KEYS = {"treatment", "solver", "version", "campaign", "family", "group", "i
 def cells_can_answer(sl: Slice) -> bool:
     """True when every term of the slice is one the cell summaries carry (and no retracted runs)."""
     return all(t.key in CELL_KEYS for arm in sl.arms for t in arm)
+
+
+BLOCK_KEYS = {"treatment", "solver", "version", "campaign", "family", "group"}
+
+
+def blocks_can_answer(sl: Slice) -> bool:
+    """True when every term of the slice is one the block summaries carry (whole campaigns,
+    treatments and blocks: no instance, host, status, seed, date or retracted term)."""
+    return all(t.key in BLOCK_KEYS for arm in sl.arms for t in arm)

@@ -67,9 +67,18 @@ def touched(conn, run_condition) -> list[tuple]:
 
 
 def rebuild(conn, keys: list[tuple]) -> int:
-    """Recompute the cells of these (import, solver, instance, campaign) keys from the live runs."""
+    """Recompute the cells of these (import, solver, instance, campaign) keys from the live runs,
+    and the block summaries of their imports from those cells."""
     if not keys:
         return 0
+    from . import blocks
+
+    touched = _rebuild_cells(conn, keys)
+    blocks.rebuild(conn, {k[0] for k in keys})
+    return touched
+
+
+def _rebuild_cells(conn, keys: list[tuple]) -> int:
     campaigns = sorted({k[3] for k in keys})
     imports = sorted({k[0] for k in keys})
     solvers = sorted({k[1] for k in keys})
@@ -81,7 +90,10 @@ def rebuild(conn, keys: list[tuple]) -> int:
         # campaign, solver, instance: the leading columns of the runs' unique key, so the index serves it
         rect_r = and_(R.c.campaign_id.in_(campaigns), R.c.solver_id.in_(solvers), R.c.instance_id.in_(part),
                       R.c.import_id.in_(imports))
-        slots = [r[0] for r in conn.execute(select(C.c.slot).where(rect_c).distinct())]
+        # the slots to make cells in: those the imports have cells in, and any metric with a value
+        # on these runs. (Not just the slots of the cells now in the rectangle: an undo brings back
+        # cells a retraction took away whole, and the rectangle may hold none of them.)
+        slots = _slots(conn, imports, rect_r)
         conn.execute(delete(C).where(rect_c))
         for slot in slots:
             v = R.c[f"v{int(slot)}"]
@@ -92,6 +104,16 @@ def rebuild(conn, keys: list[tuple]) -> int:
                  .group_by(R.c.campaign_id, R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.host_id))
             touched += conn.execute(insert(C).from_select(COLUMNS, q)).rowcount or 0
     return touched
+
+
+def _slots(conn, imports: list[int], rect_r) -> list[int]:
+    have = {int(r[0]) for r in conn.execute(select(C.c.slot).where(C.c.import_id.in_(imports)).distinct())}
+    for (slot,) in conn.execute(select(S.metrics.c.slot)):
+        if int(slot) not in have:
+            v = R.c[f"v{int(slot)}"]
+            if conn.execute(select(R.c.id).where(rect_r, v.is_not(None)).limit(1)).first() is not None:
+                have.add(int(slot))
+    return sorted(have)
 
 
 def _literal(slot: int):

@@ -23,7 +23,7 @@ from sqlalchemy import (
 )
 
 # The alembic revision this module describes; a test checks it equals the migrations' head.
-SCHEMA_REVISION = "0005"
+SCHEMA_REVISION = "0006"
 
 NAME = 255  # longest name accepted for solvers, instances, groups, hosts, metrics
 
@@ -224,4 +224,38 @@ cell_stats = Table(
     Index("ix_cells_solver", "solver_id", "slot", "instance_id"),
     # the import alone (revision 0005): a load appends its entries in order, slot after slot
     Index("ix_cells_import", "import_id"),
+)
+
+# --- block summaries (revision 0006) ----------------------------------------------------------
+# One row per import, metric slot, solver and group (block), summing that import's cells as the
+# default collapse sees them (store/blocks.py): the fingerprint's whole-number sums over every
+# cell, and over the cells with a value their count, the sum of their means and their run counts;
+# `group_valued` is how many instances of the block some solver of the import has a value on. A
+# slice of whole campaigns, treatments and blocks collapses from these few hundred rows an import.
+
+block_stats = Table(
+    "block_stats",
+    metadata,
+    Column("campaign_id", Integer, ForeignKey("campaigns.id"), nullable=False),
+    Column("import_id", Integer, ForeignKey("imports.id"), nullable=False),
+    Column("slot", SmallInteger, nullable=False),
+    Column("solver_id", Integer, ForeignKey("solvers.id"), nullable=False),
+    Column("group_id", Integer, ForeignKey("groups.id"), nullable=False),
+    Column("n", BigInteger, nullable=False),
+    Column("n_ok", BigInteger, nullable=False),
+    Column("n_fail", BigInteger, nullable=False),
+    Column("id_sum", BigInteger, nullable=False),
+    Column("w_ids", BigInteger, nullable=False),
+    Column("cells", BigInteger, nullable=False),
+    Column("inst", BigInteger, nullable=False),
+    Column("id_max", BigInteger, nullable=False),
+    Column("lost", BigInteger, nullable=False),
+    Column("vcells", BigInteger, nullable=False),
+    Column("vsum", Float, nullable=True),
+    Column("v_n", BigInteger, nullable=False),
+    Column("v_fail", BigInteger, nullable=False),
+    Column("v_ok", BigInteger, nullable=False),
+    Column("group_valued", BigInteger, nullable=False),
+    Index("ix_blocks_campaign", "campaign_id", "slot", "solver_id"),
+    Index("ix_blocks_import", "import_id"),
 )
