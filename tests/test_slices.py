@@ -457,3 +457,63 @@ def _plain(text, dims, conn):
             parts.append(R.c.retraction_id.is_not(None))
         arms.append(and_(*parts))
     return arms[0] if len(arms) == 1 else or_(*arms)
+
+
+# --- campaign slices on the runs through the imports' id ranges (revision 0007) ----------------
+
+CAMPAIGN_SLICES = ["campaign=nightly", "campaign=weekly", "campaign=nightly,weekly", "campaign!=nightly",
+                   "campaign~week*", "campaign=nightly seed=2", "campaign=weekly | campaign=nightly seed=1",
+                   "campaign=nightly retracted=any", "campaign=nightly retracted=yes", "campaign=nightly since=2026-11-03",
+                   "stacker@1 campaign=weekly", "campaign=spare"]
+
+
+def test_campaign_slices_on_the_runs_take_exactly_the_campaigns_runs(cli, location, tmp_path):
+    """SQLite keeps no index on the runs' campaign; a campaign term reads its imports' id ranges.
+    The reference is the plain test of every run's campaign."""
+    from sqlalchemy import and_, func, or_, select
+
+    from warehouse.select import resolve
+    from warehouse.select.slices import parse
+    from warehouse.store import schema as S
+    from warehouse.store.connect import open_warehouse
+
+    # the campaigns' imports interleave, one campaign's runs skip stored ones, one campaign has none
+    plan = [("nightly", _night(1, "stacker")), ("weekly", _night(2, "stacker")),
+            ("nightly", _night(3, "stacker") + _night(4, "packwell")),
+            ("weekly", _night(2, "stacker") + _night(5, "stacker", seeds=(3,))),  # two stored, skipped
+            ("nightly", _night(6, "stacker", seeds=(4,)))]
+    for k, (camp, rows) in enumerate(plan):
+        r = cli("load", _timed(tmp_path / f"c{k}.csv", rows), "--campaign", camp)
+        assert r.code == 0, r
+    assert cli("init", "-w", str(tmp_path / "unused.db")).code == 0
+    assert cli("retract", "--slice", "campaign=nightly seed=2 group=g1", "--reason", "rack swap").code == 0
+    w = open_warehouse(location)
+    try:
+        with w.engine.begin() as c:  # a campaign with no runs at all
+            c.execute(S.campaigns.insert().values(name="spare", created_at=0))
+        with w.engine.connect() as c:
+            dims = resolve.Dims.load(c)
+            R = S.runs
+            for text in CAMPAIGN_SLICES:
+                got = c.execute(select(func.count()).select_from(R).where(resolve.condition(parse(text), dims, c))).scalar()
+                arms = []
+                for arm in parse(text).arms:
+                    parts, want = [], "no"
+                    for term in arm:
+                        if term.key == "campaign":
+                            ids = resolve._ids(dims.campaigns, term, 1, "campaign")
+                            plain = R.c.campaign_id.in_(ids or [-1])
+                            parts.append(~plain if term.op == "!=" else plain)
+                        elif term.key == "retracted":
+                            want = term.values[0]
+                        else:
+                            parts.append(resolve._term_condition(term, 1, dims, c))
+                    if want != "any":
+                        parts.append(R.c.retraction_id.is_(None) if want == "no" else R.c.retraction_id.is_not(None))
+                    arms.append(and_(*parts))
+                expect = c.execute(select(func.count()).select_from(R).where(or_(*arms))).scalar()
+                assert got == expect, text
+            assert c.execute(select(func.count()).select_from(R).where(
+                resolve.condition(parse("campaign=weekly"), dims, c))).scalar() == 9  # 6, then 3 new (6 skipped)
+    finally:
+        w.close()

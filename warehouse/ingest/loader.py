@@ -24,7 +24,7 @@ from typing import Callable
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-from sqlalchemy import func, insert, select, update
+from sqlalchemy import func, insert, literal, select, update
 from sqlalchemy.exc import IntegrityError, OperationalError
 
 from .. import __version__
@@ -707,8 +707,11 @@ def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.nd
     inst_ids = sorted({int(i) for i in instance[missing]})
     solver_ids = sorted({int(i) for i in solver[missing]})
     for k in range(0, len(inst_ids), 500):
+        # the campaign as a literal: SQLite takes the load's own key index (`_campaign_key`) only
+        # for a condition that names its campaign as the index does
         q = select(r.solver_id, r.instance_id, r.seed, r.replicate, r.import_id, r.source_line).where(
-            r.campaign_id == campaign_id, r.instance_id.in_(inst_ids[k:k + 500]), r.solver_id.in_(solver_ids))
+            r.campaign_id == literal(int(campaign_id), literal_execute=True), r.instance_id.in_(inst_ids[k:k + 500]),
+            r.solver_id.in_(solver_ids))
         for row in conn.execute(q):
             holders[(row.solver_id, row.instance_id, row.seed, row.replicate)] = (row.import_id, row.source_line)
     skipped = 0
@@ -774,16 +777,79 @@ def _readers(fl: _FileLoad):
     return read_parquet(info)
 
 
-def _runs_indexes(conn) -> list[tuple[str, str]]:
-    """(name, CREATE statement) of the runs table's full indexes, unique ones first.
+LOAD_KEY = "blockyard_load_key"
 
-    Partial indexes (with a WHERE) hold no new run and cost nothing to keep, so they stay.
-    """
-    rows = conn.exec_driver_sql(
-        "SELECT name, sql FROM sqlite_master WHERE type = 'index' AND tbl_name = 'runs' AND sql IS NOT NULL"
-    ).fetchall()
-    full = [(r[0], r[1]) for r in rows if " WHERE " not in r[1].upper().replace("\n", " ")]
-    return sorted(full, key=lambda x: "UNIQUE" not in x[1].upper())
+
+def _campaign_key(conn, campaign_id: int, create: bool) -> None:
+    """SQLite, an exact load: a unique index on the run keys of this one campaign, made when the
+    load starts and dropped before it commits (a partial index: the campaign's runs only, so its
+    cost follows the campaign, not the warehouse). INSERT OR IGNORE then leaves out each run the
+    campaign holds already, and `_report_conflicts` names them. Made and dropped inside the
+    load's transaction: a load that fails or dies leaves no trace of it."""
+    if create:
+        conn.exec_driver_sql(f'CREATE UNIQUE INDEX "{LOAD_KEY}" ON runs (campaign_id, solver_id, instance_id, seed, '
+                             f'replicate) WHERE campaign_id = {int(campaign_id)}')
+    else:
+        conn.exec_driver_sql(f'DROP INDEX "{LOAD_KEY}"')
+
+
+class _StoredCells:
+    """The cells (solver, instance) of a campaign that hold runs already, live or retracted: a
+    run of the file in one of them may be stored already, and the load then starts over exactly.
+    A campaign new to the warehouse holds none, and costs one query."""
+
+    def __init__(self, conn, campaign_id: int):
+        C, R = S.cell_stats, S.runs
+        codes: list[np.ndarray] = []
+        live = conn.execute(select(C.c.solver_id, C.c.instance_id).where(C.c.campaign_id == campaign_id).distinct()).all()
+        gone = conn.execute(select(R.c.solver_id, R.c.instance_id)
+                            .where(R.c.retraction_id.is_not(None), R.c.campaign_id == campaign_id).distinct()).all()
+        for rows in (live, gone):
+            if rows:
+                a = np.asarray(rows, dtype=np.int64)
+                codes.append(self._code(a[:, 0], a[:, 1]))
+        self.codes = np.unique(np.concatenate(codes)) if codes else None
+
+    @staticmethod
+    def _code(solver: np.ndarray, instance: np.ndarray) -> np.ndarray:
+        return (solver.astype(np.int64) << 32) | instance.astype(np.int64)
+
+    def overlaps(self, solver: np.ndarray, instance: np.ndarray) -> bool:
+        if self.codes is None:
+            return False
+        return bool(np.isin(self._code(solver, instance), self.codes).any())
+
+
+class _RunHashes:
+    """A 64-bit hash of each run's key (solver, instance, seed, replicate) as the file goes by;
+    at its end, two equal hashes mean the same run may appear twice (or, once in a few billion
+    billion pairs, two runs share a hash). Either way the exact load decides."""
+
+    def __init__(self):
+        self.parts: list[np.ndarray] = []
+
+    @staticmethod
+    def _mix(z: np.ndarray) -> np.ndarray:
+        # splitmix64's finalizer (Steele, Lea and Flood 2014): each input bit moves every output bit
+        z = z + np.uint64(0x9E3779B97F4A7C15)
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        return z ^ (z >> np.uint64(31))
+
+    def add(self, solver: np.ndarray, instance: np.ndarray, seed: np.ndarray, replicate: np.ndarray) -> None:
+        with np.errstate(over="ignore"):
+            h = self._mix(solver.astype(np.uint64))
+            for part in (instance, seed, replicate):
+                h = self._mix(h ^ np.asarray(part).astype(np.int64).view(np.uint64))
+        self.parts.append(h)
+
+    def repeated(self) -> bool:
+        if not self.parts:
+            return False
+        h = np.concatenate(self.parts)
+        self.parts = []
+        h.sort()
+        return bool((h[1:] == h[:-1]).any())
 
 
 class _Prefetch:
@@ -1045,11 +1111,18 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 loaded_at=int(time.time()), tool_version=__version__)).inserted_primary_key[0]
             dims = Dimensions(conn)
             next_id = (conn.execute(select(func.max(S.runs.c.id))).scalar() or 0) + 1
-            set_aside: list[tuple[str, str]] = []
-            if (allow_bulk and wh.is_sqlite and not dry_run and total >= BULK_MIN_ROWS and next_id - 1 <= total):
-                set_aside = _runs_indexes(conn)
-                for name, _ in set_aside:
-                    conn.exec_driver_sql(f'DROP INDEX "{name}"')
+            # SQLite keeps no index on the run key (schema 0007). A load proves instead that its
+            # runs are new: none of its cells already holds runs of the campaign (`_StoredCells`),
+            # and no run appears twice in the file (`_RunHashes`). Then SQLite numbers the rows
+            # itself, as they come. If either proof fails, the load starts over `exact`: a unique
+            # index on this campaign's run keys for the length of the transaction finds each
+            # repeated run, to be named or skipped one by one.
+            quick = wh.is_sqlite and allow_bulk and not dry_run
+            exact_key = wh.is_sqlite and not quick
+            if exact_key:
+                _campaign_key(conn, campaign_id, create=True)
+            stored = _StoredCells(conn, campaign_id) if quick else None
+            hashes = _RunHashes() if quick else None
             writer = None
             read = loaded = skipped = 0
             first_id = next_id
@@ -1068,7 +1141,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                     report.metrics[metric] = sense
                 slots = sorted(metric_slots.values())
                 if writer is None or writer.slots != slots:
-                    writer = _Writer(conn, wh.dialect, slots, campaign_id, import_id, numbered=bool(set_aside))
+                    writer = _Writer(conn, wh.dialect, slots, campaign_id, import_id, numbered=quick)
                 m = len(rows)
                 codes, keys = rows.keys["solver"]
                 solver_of = np.asarray(dims.solver_ids(keys), dtype=np.int64)
@@ -1082,6 +1155,10 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 has_host = host >= 0
                 ids = np.arange(next_id, next_id + m, dtype=np.int64)
                 next_id += m
+                if quick:
+                    if stored.overlaps(solver, instance):
+                        raise _StartOver()  # runs of this campaign already sit in some of these cells
+                    hashes.add(solver, instance, rows.seed, rows.replicate)
                 if rows.has_finished.any():
                     times = rows.finished[rows.has_finished]
                     lo, hi = int(times.min()), int(times.max())
@@ -1090,8 +1167,8 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 writer.write(ids, rows, solver, instance, host, has_host, {s: k for k, s in metric_slots.items()})
                 summing.add_reduced(rows.cells, base=int(ids[0]), key_maps=(solver_of, instance_of, host_of),
                                     slot_of=metric_slots)
-                if set_aside:
-                    loaded += m  # no key to collide on until the indexes are back; checked there
+                if quick:
+                    loaded += m  # no key to collide on: the file's runs are checked at its end
                 else:
                     count = conn.execute(select(func.count()).select_from(S.runs).where(
                         S.runs.c.id.between(int(ids[0]), int(ids[-1])))).scalar()
@@ -1120,21 +1197,13 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 summing.finish(campaign_id, import_id)
             else:
                 summing.finish()
-            if set_aside and loaded:
+            if quick and loaded:
                 last = conn.execute(select(func.max(S.runs.c.id))).scalar()
                 if last != next_id - 1:  # SQLite numbered the rows otherwise than the load did
                     raise StorageError(f"warehouse {wh.display} numbered the runs of {shown} up to {last}, "
                                        f"not {next_id - 1}; nothing from {shown} was stored")
-            if set_aside:
-                # sort the keys through temporary files, so that memory stays flat however large the table
-                conn.exec_driver_sql("PRAGMA temp_store = FILE")
-                try:
-                    for name, sql in set_aside:
-                        conn.exec_driver_sql(sql)
-                except IntegrityError:
-                    raise _StartOver() from None
-                finally:
-                    conn.exec_driver_sql("PRAGMA temp_store = MEMORY")
+                if hashes.repeated():
+                    raise _StartOver()  # a run may appear twice in the file: find it exactly
             rejected = len(fl.rejects)
             read += fl.ragged
             if skipped > 3:
@@ -1175,6 +1244,8 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 trans.rollback()
                 report.message = f"would load {loaded} {'run' if loaded == 1 else 'runs'} into campaign {campaign}; nothing was stored"
                 return report
+            if exact_key:
+                _campaign_key(conn, campaign_id, create=False)
             if fl.rejects:
                 target = Path(rejects) if rejects else p.with_name(p.name + ".rejects.csv")
                 _write_rejects(target, fl.rejects, shown, fl.header)

@@ -160,7 +160,13 @@ def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
             return _in(T.c.solver_id, ids, False)
         return _in(T.c.solver_id, _ids({i: s[1] for i, s in dims.solvers.items()}, term, n, "version"), neg)
     if key == "campaign":
-        return _in(T.c.campaign_id, _ids(dims.campaigns, term, n, "campaign"), neg)
+        ids = _ids(dims.campaigns, term, n, "campaign")
+        cond = _in(T.c.campaign_id, ids, neg)
+        if T is R and ids and not neg:
+            # the runs of a campaign lie in its imports' id ranges: SQLite has no index on the
+            # runs' campaign (revision 0007), so a slice reads those ranges, not the whole table
+            cond = and_(cond, _id_ranges(conn, S.imports.c.campaign_id.in_(ids), T))
+        return cond
     if key == "host":
         cond = _in(T.c.host_id, _ids(dims.hosts, term, n, "host"), neg)
         return or_(cond, T.c.host_id.is_(None)) if neg else cond

@@ -84,11 +84,12 @@ def _rebuild_cells(conn, keys: list[tuple]) -> int:
     solvers = sorted({k[1] for k in keys})
     instances = sorted({k[2] for k in keys})
     touched = 0
+    spans = _spans(conn, imports)
     for i in range(0, len(instances), 5000):
         part = instances[i:i + 5000]
         rect_c = and_(C.c.import_id.in_(imports), C.c.solver_id.in_(solvers), C.c.instance_id.in_(part))
-        # campaign, solver, instance: the leading columns of the runs' unique key, so the index serves it
-        rect_r = and_(R.c.campaign_id.in_(campaigns), R.c.solver_id.in_(solvers), R.c.instance_id.in_(part),
+        # the imports' id ranges: the runs are read range by range (SQLite has no index on their key)
+        rect_r = and_(spans, R.c.campaign_id.in_(campaigns), R.c.solver_id.in_(solvers), R.c.instance_id.in_(part),
                       R.c.import_id.in_(imports))
         # the slots to make cells in: those the imports have cells in, and any metric with a value
         # on these runs. (Not just the slots of the cells now in the rectangle: an undo brings back
@@ -104,6 +105,18 @@ def _rebuild_cells(conn, keys: list[tuple]) -> int:
                  .group_by(R.c.campaign_id, R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.host_id))
             touched += conn.execute(insert(C).from_select(COLUMNS, q)).rowcount or 0
     return touched
+
+
+def _spans(conn, imports: list[int]):
+    """The run id ranges of these imports (each import's runs are one range, revision 0004)."""
+    from sqlalchemy import or_
+
+    I = S.imports
+    rows = conn.execute(select(I.c.first_run_id, I.c.last_run_id)
+                        .where(I.c.id.in_(imports), I.c.first_run_id.is_not(None))).all()
+    if not rows:
+        return R.c.id.is_(None)  # no runs (never true): the imports hold none
+    return or_(*[R.c.id.between(int(lo), int(hi)) for lo, hi in rows])
 
 
 def _slots(conn, imports: list[int], rect_r) -> list[int]:

@@ -1,0 +1,81 @@
+"""A run appears once per campaign, with no index on the run key in SQLite (revision 0007).
+
+A SQLite load proves its runs new from the cell summaries (none of its cells holds runs of the
+campaign) and a hash of its own run keys (none twice); when a proof fails it starts over with a
+unique index on the campaign's keys for the length of the load. What the user sees is the same
+as with a permanent key: repeated runs in a file are named, stored ones are skipped, retracted
+ones still hold their key. PostgreSQL keeps its unique index; the same behaviour holds there.
+"""
+from __future__ import annotations
+
+import pytest
+
+from warehouse.ingest import loader
+
+from conftest import ON_POSTGRES
+from .kit import csv_text, load_json, query, refusal, runs, write
+from .test_atomic import indexes
+
+H = "solver,version,group,instance,seed,status,pallets\n"
+
+
+def test_sqlite_keeps_no_run_key_and_a_load_leaves_none_behind(cli, location, tmp_path):
+    before = indexes(location)
+    if ON_POSTGRES:
+        assert "ux_runs_key" in before
+    else:
+        assert "ux_runs_key" not in before
+    load_json(cli, write(tmp_path / "a.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(1, 7))))
+    # a second file into the same campaign over stored cells: the exact way, with its own key
+    rep = load_json(cli, write(tmp_path / "b.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(4, 10))))
+    assert rep["rows_loaded"] == 3 and rep["rows_skipped"] == 3
+    assert indexes(location) == before
+
+
+def test_a_retracted_run_still_holds_its_key(cli, location, tmp_path):
+    load_json(cli, write(tmp_path / "a.csv", H + "s,1,g1,a,1,ok,10\ns,1,g1,a,2,ok,20\n"))
+    assert cli("retract", "--slice", "seed=2", "--reason", "bad").code == 0
+    rep = load_json(cli, write(tmp_path / "b.csv", H + "s,1,g1,a,2,ok,99\ns,1,g1,a,3,ok,30\n"))
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (1, 1)
+    assert query(location, "SELECT seed, v1, CASE WHEN retraction_id IS NULL THEN 0 ELSE 1 END FROM runs ORDER BY id") == \
+        [(1, 10.0, 0), (2, 20.0, 1), (3, 30.0, 0)]
+
+
+def test_a_new_campaign_over_the_same_cells_is_new_runs(cli, location, tmp_path):
+    text = H + "s,1,g1,a,1,ok,10\ns,1,g1,a,2,ok,20\n"
+    load_json(cli, write(tmp_path / "a.csv", text))
+    rep = load_json(cli, write(tmp_path / "b.csv", text + "s,1,g1,a,3,ok,30\n"), campaign="other")
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (3, 0)
+
+
+@pytest.mark.parametrize("rows", [20, loader.BULK_MIN_ROWS + 500], ids=["small", "large"])
+def test_a_run_twice_in_a_file_is_named_whatever_the_chunk(cli, location, tmp_path, rows):
+    rs = runs(rows)
+    text = csv_text(rs + [rs[3]])  # the fourth run again, on the last line (another chunk when large)
+    before = query(location, "SELECT count(*) FROM runs")
+    line = refusal(cli, write(tmp_path / "twice.csv", text))
+    assert f"lines 5 and {rows + 2} hold the same run" in line, line
+    assert query(location, "SELECT count(*) FROM runs") == before
+    assert "ux_runs_key" not in indexes(location) or ON_POSTGRES
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="the hash proof is SQLite's")
+def test_two_runs_whose_hashes_meet_still_load_every_run(cli, location, tmp_path, monkeypatch):
+    # every run hashed alike: the proof fails, and the exact way finds no run twice
+    monkeypatch.setattr(loader._RunHashes, "_mix", staticmethod(lambda z: z * 0))
+    rep = load_json(cli, write(tmp_path / "a.csv", csv_text(runs(30))))
+    assert (rep["rows_loaded"], rep["rows_skipped"], rep["rows_rejected"]) == (30, 0, 0)
+    assert query(location, "SELECT count(DISTINCT seed), min(id), max(id) FROM runs") == [(30, 1, 30)]
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="the proofs are SQLite's")
+def test_each_proof_is_what_stands_between_a_load_and_a_repeated_run(cli, location, tmp_path, monkeypatch):
+    """With either proof switched off, a repeated run would be stored twice: each one is needed."""
+    load_json(cli, write(tmp_path / "a.csv", H + "s,1,g1,a,1,ok,10\n"))
+    monkeypatch.setattr(loader._StoredCells, "overlaps", lambda self, s, i: False)
+    load_json(cli, write(tmp_path / "b.csv", H + "s,1,g1,a,1,ok,11\n"))
+    assert query(location, "SELECT count(*) FROM runs WHERE seed = 1") == [(2,)]  # stored twice
+    monkeypatch.undo()
+    monkeypatch.setattr(loader._RunHashes, "repeated", lambda self: False)
+    load_json(cli, write(tmp_path / "c.csv", H + "s,1,g2,b,1,ok,10\ns,1,g2,b,1,ok,12\n"), campaign="d")
+    assert query(location, "SELECT count(*) FROM runs WHERE instance_id = (SELECT id FROM instances WHERE name = 'b')") == [(2,)]
