@@ -17,9 +17,6 @@ COLUMNS = [c.name for c in S.cell_stats.columns]
 INTS = ("n", "n_ok", "n_fail", "n_fail_v", "id_sum", "id_max")
 FLOATS = ("sum_ok", "sq_ok", "min_ok", "max_ok", "sum_fail_v")
 MERGE_AT = 200_000  # reduced cell rows kept per slot before they are merged again
-# values of cell rows made Python objects ahead, in the helper, while the loading thread builds the
-# runs' keys (that work lets go of Python's lock); about 32 bytes each, so at most ~150 MB
-AHEAD_VALUES = 4_500_000
 
 
 def _groups(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -249,28 +246,30 @@ def constant_columns(table: np.ndarray, names: list[str], whole: frozenset) -> d
     return out
 
 
-def run_statements(raw, statements: list[tuple]) -> int:
-    """Write the cells through a SQLite driver connection, as `CellSums.sqlite_statements` gave them."""
+def run_statements(raw, parts) -> int:
+    """Write the cells through a SQLite driver connection: (statement, rows, cells) parts, as
+    `Summing.parts` hands them over (or `CellSums.sqlite_statements` gave them)."""
     written = 0
-    for i, (sql, params, cells) in enumerate(statements):
-        statements[i] = (sql, None, cells)  # each part is let go of once written
+    for sql, params, cells in parts:
         raw.executemany(sql, params.tolist() if isinstance(params, np.ndarray) else params)
         written += cells
     return written
 
 
-def convert_ahead(statements: list[tuple], budget: int = AHEAD_VALUES) -> None:
-    """Turn the first parts' float tables into the Python rows executemany takes, up to `budget`
-    values: done in the helper thread while the loading thread waits on SQLite, so that the
-    conversion (which holds Python's lock) is off the load's critical path. The rest are
-    converted as they are written, so memory stays bounded however many cells a file has."""
-    for i, (sql, params, cells) in enumerate(statements):
-        if not isinstance(params, np.ndarray):
+PART_ROWS = 20_000  # cell rows converted per part: the writer takes a part while the next is converted
+
+
+def _pieces(statements: list[tuple]):
+    """The statements' float tables cut into parts of about PART_ROWS cell rows each."""
+    for sql, params, cells in statements:
+        if not isinstance(params, np.ndarray) or cells <= PART_ROWS:
+            yield sql, params, cells
             continue
-        if params.size > budget:
-            return
-        budget -= params.size
-        statements[i] = (sql, params.tolist(), cells)
+        per_row = cells / len(params)  # cell rows per parameter row (several rows per statement)
+        step = max(1, int(PART_ROWS / per_row))
+        for at in range(0, len(params), step):
+            piece = params[at:at + step]
+            yield sql, piece, int(round(len(piece) * per_row))
 
 
 class Summing:
@@ -278,8 +277,9 @@ class Summing:
 
     The loading thread hands each chunk's reduced cells over with `add_reduced` and, after the
     last chunk, asks with `finish` for the statements that write them; `result` waits for the
-    helper and raises whatever it raised. Numpy and the database's own work (inserting rows,
-    building indexes) let go of Python's lock, so the two threads run side by side.
+    sums and raises whatever the helper raised. The helper then turns the statements' rows into
+    Python objects part by part while the loading thread writes the parts before (`parts`):
+    the conversion holds Python's lock, SQLite's work lets go of it, so the two overlap.
     """
 
     def __init__(self):
@@ -287,9 +287,11 @@ class Summing:
         import threading
 
         self.sums = CellSums()
-        self.statements: list[tuple] | None = None
         self._error: BaseException | None = None
         self._q: queue.Queue = queue.Queue()
+        self._out: queue.Queue = queue.Queue(maxsize=4)  # converted parts waiting to be written
+        self._ready = threading.Event()  # the sums are merged (and the statements built)
+        self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, name="blockyard-cells", daemon=True)
         self._thread.start()
 
@@ -301,21 +303,49 @@ class Summing:
         self._q.put(("finish", (campaign_id, import_id)))
 
     def result(self) -> CellSums:
-        self._thread.join()
+        self._ready.wait()
         if self._error is not None:
             raise self._error
         return self.sums
 
+    def parts(self):
+        """The statements' parts, converted, in order (after `finish` with ids)."""
+        while True:
+            item = self._out.get()
+            if item is None:
+                break
+            yield item
+        if self._error is not None:
+            raise self._error
+
     def close(self) -> None:
-        """Stop the helper (a load that failed part-way); harmless after `result`."""
+        """Stop the helper (a load that failed part-way); harmless after the parts were written."""
+        self._stop.set()
         if self._thread.is_alive():
             self._q.put(("stop", None))
-            self._thread.join()
+            while self._thread.is_alive():
+                try:  # let a helper waiting to hand over a part go on to see the stop
+                    self._out.get_nowait()
+                except Exception:  # noqa: BLE001 - queue.Empty
+                    pass
+                self._thread.join(0.01)
+
+    def _hand(self, item) -> bool:
+        import queue
+
+        while not self._stop.is_set():
+            try:
+                self._out.put(item, timeout=0.05)
+                return True
+            except queue.Full:
+                continue
+        return False
 
     def _run(self) -> None:
         while True:
             kind, arg = self._q.get()
             if kind == "stop":
+                self._ready.set()
                 return
             try:
                 if kind == "add":
@@ -323,14 +353,21 @@ class Summing:
                         self.sums.add_reduced(*arg)
                     continue
                 campaign_id, import_id = arg
+                statements = []
                 if self._error is None:
                     self.sums.merge_all()
                     if campaign_id is not None:
                         statements = self.sums.sqlite_statements(campaign_id, import_id)
-                        convert_ahead(statements)
-                        self.statements = statements
+                self._ready.set()
+                for sql, params, cells in _pieces(statements):
+                    rows = params.tolist() if isinstance(params, np.ndarray) else params
+                    if not self._hand((sql, rows, cells)):
+                        return
+                self._hand(None)
                 return
-            except BaseException as exc:  # noqa: BLE001 - raised again by result()
+            except BaseException as exc:  # noqa: BLE001 - raised again by result() or parts()
                 self._error = exc
                 if kind != "add":
+                    self._ready.set()
+                    self._hand(None)
                     return

@@ -94,6 +94,7 @@ class Dimensions:
         for r in conn.execute(select(S.instances.c.id, S.instances.c.group_id, S.instances.c.name, S.instances.c.content_hash)):
             self.instances[(r.group_id, r.name, r.content_hash)] = r.id
             self.hashes.setdefault((r.group_id, r.name), set()).add(r.content_hash)
+        self.named: dict[tuple, int] = {}  # (family, group, instance, hash) as the file names them -> id
         self.hosts = {r.name: r.id for r in conn.execute(select(S.hosts))}
         self.metrics = {r.name: (r.id, r.slot, r.sense, r.unit) for r in conn.execute(select(S.metrics))}
         self.columns: set[int] | None = None  # the value columns the runs table has (read when needed)
@@ -116,6 +117,18 @@ class Dimensions:
         return out
 
     def instance_ids(self, keys: list[tuple], warnings: list[str]) -> list[int]:
+        # the file's own (family, group, instance, hash) keys seen already: one lookup each, as
+        # most chunks of a file hold instances an earlier chunk brought
+        seen = self.named
+        out = [seen.get(k) for k in keys]
+        if None not in out:
+            return out
+        missing = [k for k, i in zip(keys, out) if i is None]
+        for k, iid in zip(missing, self._instance_ids(missing, warnings)):
+            seen[k] = iid
+        return [seen[k] for k in keys]
+
+    def _instance_ids(self, keys: list[tuple], warnings: list[str]) -> list[int]:
         out: list[int | None] = []
         new: list[tuple[int, int, str, str]] = []  # (position in out, group id, name, content hash)
         for family, group, inst, chash in keys:
@@ -1223,7 +1236,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 blocks.rebuild(conn, [import_id])
             else:
                 if wh.is_sqlite:
-                    run_statements(conn.connection.driver_connection, summing.statements or [])
+                    run_statements(conn.connection.driver_connection, summing.parts())
                 else:
                     from ..store import cells
 

@@ -22,12 +22,22 @@ COLUMNS = ["campaign_id", "import_id", "slot", "solver_id", "group_id", "n", "n_
            "cells", "inst", "id_max", "lost", "vcells", "vsum", "v_n", "v_fail", "v_ok", "group_valued"]
 
 
-def _runs_of(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Sort order and run starts of the rows of an (n, k) int64 key table, grouped by whole rows."""
-    order = np.lexsort(keys.T[::-1])
-    sk = keys[order]
-    change = np.ones(len(sk), dtype=bool)
-    change[1:] = np.any(sk[1:] != sk[:-1], axis=1)
+def _runs_of(first: np.ndarray, second: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sort order and run starts of rows grouped by (first, second), two arrays of ids < 2**31."""
+    if len(first) and max(int(first.max()), int(second.max())) >= 2**31:  # (ids that large: sort both)
+        order = np.lexsort((second, first))
+        a, b = first[order], second[order]
+        change = np.ones(len(a), dtype=bool)
+        change[1:] = (a[1:] != a[:-1]) | (b[1:] != b[:-1])
+        return order, np.flatnonzero(change)
+    code = (first.astype(np.int64) << 32) | second.astype(np.int64)
+    if len(code) < 2 or bool((code[1:] >= code[:-1]).all()):  # the loader's cells come sorted
+        order = np.arange(len(code))
+    else:
+        order = np.argsort(code, kind="stable")
+    sc = code[order]
+    change = np.ones(len(sc), dtype=bool)
+    change[1:] = sc[1:] != sc[:-1]
     return order, np.flatnonzero(change)
 
 
@@ -52,7 +62,7 @@ def from_cells(campaign_id: int, import_id: int, slot: int, solver: np.ndarray, 
         return []
     solver = np.asarray(solver, dtype=np.int64)
     instance = np.asarray(instance, dtype=np.int64)
-    order, starts = _runs_of(np.stack([solver, instance], axis=1))
+    order, starts = _runs_of(solver, instance)
     cell_solver, cell_inst = solver[order[starts]], instance[order[starts]]
 
     def per_cell(name: str, how=np.add) -> np.ndarray:
@@ -72,10 +82,14 @@ def from_cells(campaign_id: int, import_id: int, slot: int, solver: np.ndarray, 
     group = _lookup(group_of)[cell_inst]
     lost = (~has) & (n_fail > 0)
     # per group: the instances some solver of this import has a value on
-    valued = np.unique(np.stack([group[has], cell_inst[has]], axis=1), axis=0) if has.any() else np.zeros((0, 2), np.int64)
-    gv_groups, gv_counts = np.unique(valued[:, 0], return_counts=True)
+    vg, vi = group[has], cell_inst[has]
+    if len(vi) and max(int(vg.max()), int(vi.max())) >= 2**31:
+        valued_groups = np.unique(np.stack([vg, vi], axis=1), axis=0)[:, 0]
+    else:
+        valued_groups = np.unique((vg << 32) | vi) >> 32
+    gv_groups, gv_counts = np.unique(valued_groups, return_counts=True)
     group_valued = dict(zip(gv_groups.tolist(), gv_counts.tolist()))
-    border, bstarts = _runs_of(np.stack([cell_solver, group], axis=1))
+    border, bstarts = _runs_of(cell_solver, group)
 
     def per_block(col: np.ndarray, how=np.add) -> list:
         return how.reduceat(np.asarray(col)[border], bstarts).tolist()
