@@ -106,7 +106,7 @@ def main() -> None:
     print(f"   naive csv+executemany {t_naive:7.2f} s   ratio {t_load / t_naive:5.2f}  (target <= 1.0)")
     print(f"   sqlite3 .import       {t_import:7.2f} s   ratio {t_load / t_import:5.2f}  (SQLite's own speed, the near limit)")
     print(f"   floor                 {t_floor:7.2f} s   {t_floor / t_naive:5.2f} of the naive reference: SQLite alone "
-          "storing the parsed runs under our run key (no start-up, reading or cell sums)")
+          "storing the parsed runs in our runs table (no start-up, reading, checks or summaries)")
 
     # 2. peak memory is flat in file size
     big_file = work / "all-nights.csv"

@@ -24,8 +24,10 @@ def _fields(info):
 @pytest.fixture(autouse=True)
 def _no_leftovers():
     scan._EARLY.clear()
+    scan._EARLY_READS.clear()
     yield
     scan._EARLY.clear()
+    scan._EARLY_READS.clear()
 
 
 def test_an_early_pass_gives_what_a_pass_in_place_gives(tmp_path, monkeypatch):
@@ -89,3 +91,63 @@ def test_the_command_line_loads_and_refuses_as_before(tmp_path):
     bad.write_bytes(b"solver,group,instance,pallets\nstacker,g1,i1,3\nstacker,g1,i\x002,4\n")
     res = blockyard("load", bad, "--campaign", "c", "-w", db)
     assert res.code == 2 and res.err.count("\n") == 1 and "line 3" in res.err, res
+
+
+# --- the first file parsed early too -------------------------------------------------------------
+
+def _load_both_ways(tmp_path, monkeypatch, location, data: bytes, name: str = "a.csv", chunk_rows: int | None = None):
+    """The same file loaded with the early parse into `location`, and without it into a second
+    warehouse: (result of each, whether the early parse was taken)."""
+    from warehouse.cli import run
+    from warehouse.ingest import loader, sources
+
+    import io
+
+    if chunk_rows:  # several chunks from a small file
+        monkeypatch.setattr(sources, "CHUNK_ROWS", chunk_rows)
+        monkeypatch.setattr(sources, "FIRST_CHUNK_ROWS", chunk_rows)
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / name).write_bytes(data)
+    taken = []
+    real = loader.take_early_read
+
+    def spy(info):
+        got = real(info)
+        taken.append(got is not None)
+        return got
+
+    monkeypatch.setattr(loader, "take_early_read", spy)
+    out = []
+    for where, early in ((location, True), (str(tmp_path / "plain.db"), False)):
+        if not early:
+            assert run(["init", "-w", where], out=io.StringIO(), err=io.StringIO()) == 0
+        argv = ["-w", where, "load", name, "--campaign", "c", "--json"]
+        if early:
+            scan.start_early(argv)
+        o, e = io.StringIO(), io.StringIO()
+        code = run(argv, out=o, err=e)
+        out.append((code, o.getvalue(), e.getvalue()))
+    return out, taken
+
+
+def test_an_early_parse_loads_what_the_load_reads_itself(tmp_path, monkeypatch, location):
+    from .kit import stored_runs
+
+    text = "solver,group,instance,seed,status,pallets\n" + "".join(
+        f"stacker,g{i % 4},i{i % 37},{i},{'timeout' if i % 11 == 0 else 'ok'},{'' if i % 11 == 0 else 20 + i % 5}\n"
+        for i in range(2_000))
+    (early, plain), taken = _load_both_ways(tmp_path, monkeypatch, location, text.encode(), chunk_rows=300)
+    assert taken == [True, False]
+    assert early[0] == plain[0] == 0, (early, plain)
+    assert stored_runs(location) == stored_runs(str(tmp_path / "plain.db"))
+
+
+@pytest.mark.parametrize("tail", [b"stacker,g1,i9\n", b"stacker,g1,i9,9,ok,3,extra\n", b"stacker,g\xff1,i9,9,ok,3\n"],
+                         ids=["too-few-fields", "too-many-fields", "not-utf8"])
+def test_an_early_parse_refuses_with_the_same_line(tmp_path, monkeypatch, location, tail):
+    data = ("solver,group,instance,seed,status,pallets\n" + "".join(
+        f"stacker,g1,i{i},{i},ok,{i}\n" for i in range(1_000))).encode() + tail
+    (early, plain), taken = _load_both_ways(tmp_path, monkeypatch, location, data, chunk_rows=200)
+    assert taken[0] is True
+    assert early[0] == plain[0] == 2, (early, plain)
+    assert early[1] == plain[1] and "line 1002" in early[1], (early, plain)

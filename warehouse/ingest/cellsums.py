@@ -134,7 +134,11 @@ class CellSums:
         self.sizes[slot] = len(cell_keys)
 
     def sqlite_statements(self, campaign_id: int, import_id: int) -> list[tuple[str, "list | np.ndarray", int]]:
-        """(statement, parameter rows, cells) to write the cells with, built without the database.
+        """(statement, parameter rows, cells) to write the cells with, built without the database."""
+        return list(self.iter_statements(campaign_id, import_id))
+
+    def iter_statements(self, campaign_id: int, import_id: int):
+        """The statements of `sqlite_statements` one after the other, slot by slot.
 
         The rows stay a float table until they are written (Python floats take four times the room).
 
@@ -142,14 +146,13 @@ class CellSums:
         """
         per = 200
         head = f"INSERT INTO cell_stats ({', '.join(COLUMNS)}) VALUES "
-        out: list[tuple[str, list, int]] = []
         for slot in sorted(self.parts):
             self._merge(slot)
             keys, s = self.parts[slot][0]
             m = len(keys)
             if max(int(np.abs(s["id_sum"]).max(initial=0)), int(s["id_max"].max(initial=0))) >= 2**53:
                 one = "(" + ", ".join("?" * len(COLUMNS)) + ")"
-                out.append((head + one, list(self._slot_rows(slot, campaign_id, import_id)), m))
+                yield head + one, list(self._slot_rows(slot, campaign_id, import_id)), m
                 continue
             # the import, its campaign and the slot are the same on every row: written in the statement
             fixed = {"campaign_id": int(campaign_id), "import_id": int(import_id), "slot": int(slot)}
@@ -180,14 +183,13 @@ class CellSums:
                 width = t.shape[1]
                 one = "(" + ", ".join(str(fixed[c]) if c in fixed else "?" for c in COLUMNS) + ")"
                 if width == 0:
-                    out.append((head + one, [()] * m, m))
+                    yield head + one, [()] * m, m
                     continue
             full = m // per * per
             if full:
-                out.append((head + ", ".join([one] * per), t[:full].reshape(-1, per * width), full))
+                yield head + ", ".join([one] * per), t[:full].reshape(-1, per * width), full
             if m > full:
-                out.append((head + one, t[full:], m - full))
-        return out
+                yield head + one, t[full:], m - full
 
     def merge_all(self) -> None:
         for slot in list(self.parts):
@@ -287,6 +289,8 @@ class Summing:
         import threading
 
         self.sums = CellSums()
+        self._keys = None
+        self.repeated = False
         self._error: BaseException | None = None
         self._q: queue.Queue = queue.Queue()
         self._out: queue.Queue = queue.Queue(maxsize=4)  # converted parts waiting to be written
@@ -297,6 +301,12 @@ class Summing:
 
     def add_reduced(self, chunk: Reduced, base: int, key_maps: tuple, slot_of: dict) -> None:
         self._q.put(("add", (chunk, base, key_maps, slot_of)))
+
+    def add_keys(self, keys, *arrays) -> None:
+        """Hand a chunk's run keys to `keys.add(*arrays)` in the helper (the loader's run hashes);
+        `keys.repeated()` is then asked at `finish`, and its answer kept in `repeated`."""
+        self._keys = keys
+        self._q.put(("keys", arrays))
 
     def finish(self, campaign_id: int | None = None, import_id: int | None = None) -> None:
         """No more chunks; with ids, also build the SQLite statements that write the cells."""
@@ -352,12 +362,18 @@ class Summing:
                     if self._error is None:
                         self.sums.add_reduced(*arg)
                     continue
+                if kind == "keys":
+                    if self._error is None:
+                        self._keys.add(*arg)
+                    continue
                 campaign_id, import_id = arg
-                statements = []
+                statements = iter(())
                 if self._error is None:
+                    if self._keys is not None:
+                        self.repeated = self._keys.repeated()
                     self.sums.merge_all()
-                    if campaign_id is not None:
-                        statements = self.sums.sqlite_statements(campaign_id, import_id)
+                    if campaign_id is not None:  # built slot by slot as the parts are handed over
+                        statements = self.sums.iter_statements(campaign_id, import_id)
                 self._ready.set()
                 for sql, params, cells in _pieces(statements):
                     rows = params.tolist() if isinstance(params, np.ndarray) else params
@@ -367,7 +383,7 @@ class Summing:
                 return
             except BaseException as exc:  # noqa: BLE001 - raised again by result() or parts()
                 self._error = exc
-                if kind != "add":
+                if kind not in ("add", "keys"):
                     self._ready.set()
                     self._hand(None)
                     return

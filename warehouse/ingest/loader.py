@@ -35,7 +35,7 @@ from ..store.connect import Warehouse
 from . import values as V
 from .cellsums import Summing, constant_columns, reduce_chunk, run_statements
 from .layout import FIELDS, NAME_LIMIT, Layout
-from .scan import first_pass_of
+from .scan import first_pass_of, take_early_read
 from .sources import SourceInfo, read_delimited, read_header, read_jsonl, read_parquet
 
 DEFAULTS = {"version": "", "build": "", "params": "", "family": "default", "seed": "0",
@@ -605,6 +605,7 @@ class _Writer:
             self.head = f"INSERT OR IGNORE INTO runs ({names}) VALUES "
             self.sql_one = self.head + self._marks({})
             self._statements: dict[tuple, tuple[str, str, int]] = {}
+            self._same: dict[str, str] | None = None  # the columns written as literals so far
         else:
             self.campaign_id, self.import_id = campaign_id, import_id
             # made again for each writer: a metric new in this file may have added a column to runs
@@ -671,14 +672,19 @@ class _Writer:
             # column, a metric the file leaves empty) is written once in the statement instead of
             # bound on every row: binding is most of the Python side of an insert. Only whole
             # numbers and NULL become literals (a float's decimal text need not read back exactly).
+            # The constants are those of the first chunk that still hold: each statement text is
+            # a prepared statement SQLite keeps (a large one, for hundreds of rows), so a file
+            # whose constants change chunk after chunk (a new night, the next treatment) makes a
+            # few texts, not one per chunk.
             same = constant_columns(table, self.bound, _WHOLE_COLUMNS)
+            if self._same is not None:
+                same = {c: v for c, v in self._same.items() if same.get(c) == v}
+            self._same = same
             key = tuple(sorted(same.items()))
             if key not in self._statements:
                 per = max(1, min(4000, self.limit // max(self.width - len(same), 1)))
                 marks = self._marks(same)
                 self._statements[key] = (self.head + ", ".join([marks] * per), self.head + marks, per)
-                if len(self._statements) > 64:  # a file whose constants change chunk after chunk
-                    self._statements.pop(next(iter(self._statements)))
             sql_many, sql_one, k = self._statements[key]
             if same:
                 table = table[:, [i for i, c in enumerate(self.bound) if c not in same]]
@@ -782,6 +788,14 @@ def _checked(fl: _FileLoad, chunks):
 def _readers(fl: _FileLoad):
     info = fl.info
     if info.delimited:
+        early = take_early_read(info)  # parsed while the command started (scan.start_early)
+        if early is not None and not fl.skip_bad:
+            early.ready.wait()
+            if early.error is not None:
+                raise early.error
+            fl.header, fl.header_line = early.header, early.header_line
+            fl.check_header(fl.header)
+            return early.chunks(fl.bad_row)
         fl.header, fl.header_line = read_header(info)
         fl.check_header(fl.header)
         return read_delimited(info, fl.header, fl.header_line, fl.bad_row)
@@ -838,8 +852,11 @@ class _RunHashes:
     at its end, two equal hashes mean the same run may appear twice (or, once in a few billion
     billion pairs, two runs share a hash). Either way the exact load decides."""
 
-    def __init__(self):
-        self.parts: list[np.ndarray] = []
+    def __init__(self, expected: int = 0):
+        # one array, filled as the file goes by and sorted in place at its end: 8 bytes a run
+        # (the file's line count is known from the first pass; it grows if a file holds more)
+        self.h = np.empty(max(int(expected), 1024), dtype=np.uint64)
+        self.n = 0
 
     @staticmethod
     def _mix(z: np.ndarray) -> np.ndarray:
@@ -854,13 +871,13 @@ class _RunHashes:
             h = self._mix(solver.astype(np.uint64))
             for part in (instance, seed, replicate):
                 h = self._mix(h ^ np.asarray(part).astype(np.int64).view(np.uint64))
-        self.parts.append(h)
+        if self.n + len(h) > len(self.h):
+            self.h = np.resize(self.h, max(2 * len(self.h), self.n + len(h)))
+        self.h[self.n:self.n + len(h)] = h
+        self.n += len(h)
 
     def repeated(self) -> bool:
-        if not self.parts:
-            return False
-        h = np.concatenate(self.parts)
-        self.parts = []
+        h = self.h[:self.n]
         h.sort()
         return bool((h[1:] == h[:-1]).any())
 
@@ -1135,7 +1152,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
             if exact_key:
                 _campaign_key(conn, campaign_id, create=True)
             stored = _StoredCells(conn, campaign_id) if quick else None
-            hashes = _RunHashes() if quick else None
+            hashes = _RunHashes(total) if quick else None
             writer = None
             read = loaded = skipped = 0
             first_id = next_id
@@ -1171,7 +1188,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 if quick:
                     if stored.overlaps(solver, instance):
                         raise _StartOver()  # runs of this campaign already sit in some of these cells
-                    hashes.add(solver, instance, rows.seed, rows.replicate)
+                    summing.add_keys(hashes, solver, instance, rows.seed, rows.replicate)  # hashed in the helper
                 if rows.has_finished.any():
                     times = rows.finished[rows.has_finished]
                     lo, hi = int(times.min()), int(times.max())
@@ -1205,7 +1222,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                     f"{shown}: no metric columns found (columns: {', '.join(fl.header or list(fl.mapping) + fl.ignored)}){why}; "
                     "a metric is a numeric column other than the run fields"
                 )
-            # the cells are summed up in the helper while the indexes are built (that work lets go of the lock)
+            # the helper merges the cell sums and checks the run hashes while this thread checks the numbering
             if wh.is_sqlite and not skipped:
                 summing.finish(campaign_id, import_id)
             else:
@@ -1215,8 +1232,6 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 if last != next_id - 1:  # SQLite numbered the rows otherwise than the load did
                     raise StorageError(f"warehouse {wh.display} numbered the runs of {shown} up to {last}, "
                                        f"not {next_id - 1}; nothing from {shown} was stored")
-                if hashes.repeated():
-                    raise _StartOver()  # a run may appear twice in the file: find it exactly
             rejected = len(fl.rejects)
             read += fl.ragged
             if skipped > 3:
@@ -1227,6 +1242,8 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 first_run_id=first_id if loaded else None, last_run_id=next_id - 1 if loaded else None,
                 first_finished=first_fin if loaded else None, last_finished=last_fin if loaded else None))
             summaries = summing.result()
+            if quick and summing.repeated:
+                raise _StartOver()  # a run may appear twice in the file: find it exactly
             from ..store import blocks
 
             if skipped:  # some rows did not go in: sum the cells from what was stored
@@ -1235,14 +1252,16 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 cells.from_runs(conn, import_id, first_id, next_id - 1)
                 blocks.rebuild(conn, [import_id])
             else:
+                # the block rows are made while the helper builds the cell rows' statements
+                group_of = {iid: key[0] for key, iid in dims.instances.items()}
+                block_rows = blocks.from_sums(summaries, campaign_id, import_id, group_of)
                 if wh.is_sqlite:
                     run_statements(conn.connection.driver_connection, summing.parts())
                 else:
                     from ..store import cells
 
                     cells.write_rows(conn, wh.dialect, summaries.rows(campaign_id, import_id))
-                group_of = {iid: key[0] for key, iid in dims.instances.items()}
-                blocks.write(conn, blocks.from_sums(summaries, campaign_id, import_id, group_of))
+                blocks.write(conn, block_rows)
             report.rows_read, report.rows_loaded = read, loaded
             report.rows_rejected, report.rows_skipped = rejected, skipped
             report.import_id = import_id

@@ -135,6 +135,7 @@ def _ends_inside_quotes(data: bytes, quotes_before: int) -> bool:
 # --- starting the first pass early -------------------------------------------------------------
 
 _EARLY: dict[str, "_Early"] = {}
+_EARLY_READS: dict[str, "_Early"] = {}  # first passes handed to a load, whose early parse it may take
 _EARLY_LOCK = threading.Lock()
 
 
@@ -144,6 +145,7 @@ class _Early:
         self.done = threading.Event()
         self.info: SourceInfo | None = None
         self.error: InputError | None = None
+        self.read: "_EarlyRead | None" = None  # set (in the helper) once the first pass is done
 
 
 def _stamp(path: Path):
@@ -193,19 +195,101 @@ def start_early(argv: list[str]) -> None:
         todo.append((p, tok, early))
     if not todo:
         return
+    # the first file's records are parsed early too, unless rows may be skipped (--skip-bad: the
+    # parse must go on past a bad row, which only the load's own reader does)
+    read_first = "--skip-bad" not in argv[command + 1:]
 
     def work():
-        for p, tok, early in todo:
+        for k, (p, tok, early) in enumerate(todo):
             try:
                 early.info = first_pass(p, tok)
+                if k == 0 and read_first and early.info.delimited:
+                    early.read = _EarlyRead(early.info)  # before `done`: the load looks for it then
             except InputError as exc:
                 early.error = exc
             except Exception:  # noqa: BLE001 - the load runs the pass itself and reports it
                 pass
             finally:
                 early.done.set()
+            if early.read is not None:
+                early.read.run()
 
     threading.Thread(target=work, name="blockyard-scan", daemon=True).start()
+
+
+class _BadRowSeen(InputError):
+    """The early parse met a row with the wrong number of fields: it stops there, and the load
+    asks its own handler what to say (`_EarlyRead.chunks`)."""
+
+
+class _EarlyRead:
+    """The first file's records parsed in the helper thread while the command imports its
+    libraries: the header and the raw chunks, a few ahead (a bounded queue), exactly as
+    `sources.read_delimited` yields them. `take_early_read` hands them to the load; a load that
+    never asks leaves the helper waiting (it is a daemon thread)."""
+
+    DEPTH = 3
+
+    def __init__(self, info: SourceInfo):
+        import queue
+
+        self.info = info
+        self.header: list[str] | None = None
+        self.header_line = 0
+        self.ready = threading.Event()  # the header is read (or reading failed)
+        self.q: queue.Queue = queue.Queue(maxsize=self.DEPTH)
+        self.error: BaseException | None = None
+
+    def run(self) -> None:
+        from .sources import read_delimited, read_header
+
+        try:
+            self.header, self.header_line = read_header(self.info)
+        except BaseException as exc:  # noqa: BLE001 - the load raises it where it would have
+            self.error = exc
+            self.ready.set()
+            return
+        self.ready.set()
+        bad: list[tuple] = []
+
+        def on_bad_row(line: int, text: str, expected: int, actual: int):
+            bad.append((line, text, expected, actual))
+            return _BadRowSeen("stop")
+
+        try:
+            for item in read_delimited(self.info, self.header, self.header_line, on_bad_row):
+                self.q.put(("chunk", item))
+            self.q.put(("end", None))
+        except _BadRowSeen:
+            self.q.put(("bad", bad[0]))
+        except BaseException as exc:  # noqa: BLE001 - handed to the load in order
+            self.q.put(("error", exc))
+
+    def chunks(self, on_bad_row):
+        """The chunks, in order; a bad row is put to the load's own handler (`on_bad_row`), whose
+        error is raised where the load's own reader would have raised it."""
+        while True:
+            kind, item = self.q.get()
+            if kind == "chunk":
+                yield item
+            elif kind == "end":
+                return
+            elif kind == "bad":
+                err = on_bad_row(*item)
+                raise err if err is not None else InputError(
+                    f"{self.info.name} line {item[0]}: has {item[3]} fields where the header has {item[2]}")
+            else:
+                raise item
+
+
+def take_early_read(info: SourceInfo) -> "_EarlyRead | None":
+    """The early parse of this very file (same first pass), once; None when there is none."""
+    with _EARLY_LOCK:
+        for key, early in list(_EARLY_READS.items()):
+            if early.info is info:
+                del _EARLY_READS[key]
+                return early.read
+    return None
 
 
 def first_pass_of(path: Path, shown: str) -> SourceInfo:
@@ -226,5 +310,7 @@ def first_pass_of(path: Path, shown: str) -> SourceInfo:
             if early.error is not None:
                 raise early.error
             if early.info is not None:
+                with _EARLY_LOCK:
+                    _EARLY_READS[key] = early  # its parse, if it has one, is the load's to take
                 return early.info
     return first_pass(path, shown)
