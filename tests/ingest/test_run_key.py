@@ -79,3 +79,33 @@ def test_each_proof_is_what_stands_between_a_load_and_a_repeated_run(cli, locati
     monkeypatch.setattr(loader._RunHashes, "repeated", lambda self: False)
     load_json(cli, write(tmp_path / "c.csv", H + "s,1,g2,b,1,ok,10\ns,1,g2,b,1,ok,12\n"), campaign="d")
     assert query(location, "SELECT count(*) FROM runs WHERE instance_id = (SELECT id FROM instances WHERE name = 'b')") == [(2,)]
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="the proofs are SQLite's")
+def test_a_file_past_the_hash_limit_loads_the_exact_way(cli, location, tmp_path, monkeypatch):
+    # the run hashes take 8 bytes a run; past the limit the campaign's key index checks instead
+    monkeypatch.setattr(loader, "QUICK_MAX_RUNS", 10)
+    made = []
+    real = loader._campaign_key
+    monkeypatch.setattr(loader, "_campaign_key", lambda conn, cid, create: (made.append(create), real(conn, cid, create)))
+    rep = load_json(cli, write(tmp_path / "a.csv", csv_text(runs(30))))
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (30, 0)
+    assert made == [True, False]  # made, and dropped before the commit
+    assert "blockyard_load_key" not in indexes(location)
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="SQLite's page cache")
+def test_a_large_first_load_gives_the_page_cache_back(location, tmp_path):
+    from warehouse.store.connect import open_warehouse
+
+    from .test_atomic import big_csv
+
+    w = open_warehouse(location)
+    try:
+        rep = loader.load_file(w, big_csv(tmp_path / "big.csv", loader.BULK_MIN_ROWS + 100), "c")
+        assert rep.rows_loaded == loader.BULK_MIN_ROWS + 100
+        with w.engine.connect() as conn:  # the pooled connection the load used
+            assert conn.exec_driver_sql("PRAGMA cache_size").scalar() == -65536
+            assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
+    finally:
+        w.close()
