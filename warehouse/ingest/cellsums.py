@@ -304,7 +304,8 @@ class Summing:
 
     def add_keys(self, keys, *arrays) -> None:
         """Hand a chunk's run keys to `keys.add(*arrays)` in the helper (the loader's run hashes);
-        `keys.repeated()` is then asked at `finish`, and its answer kept in `repeated`."""
+        `keys.repeated()` is then asked at `finish`, after the sums are merged, and its answer
+        kept in `repeated`: read it once `parts` is exhausted (or after `result` and `parts`)."""
         self._keys = keys
         self._q.put(("keys", arrays))
 
@@ -369,12 +370,14 @@ class Summing:
                 campaign_id, import_id = arg
                 statements = iter(())
                 if self._error is None:
-                    if self._keys is not None:
-                        self.repeated = self._keys.repeated()
                     self.sums.merge_all()
                     if campaign_id is not None:  # built slot by slot as the parts are handed over
                         statements = self.sums.iter_statements(campaign_id, import_id)
                 self._ready.set()
+                if self._error is None and self._keys is not None:
+                    # while the loading thread makes the block rows from the merged sums; read
+                    # by it once the parts are all handed over
+                    self.repeated = self._keys.repeated()
                 for sql, params, cells in _pieces(statements):
                     rows = params.tolist() if isinstance(params, np.ndarray) else params
                     if not self._hand((sql, rows, cells)):

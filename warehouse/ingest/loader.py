@@ -1256,8 +1256,6 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 first_run_id=first_id if loaded else None, last_run_id=next_id - 1 if loaded else None,
                 first_finished=first_fin if loaded else None, last_finished=last_fin if loaded else None))
             summaries = summing.result()
-            if quick and summing.repeated:
-                raise _StartOver()  # a run may appear twice in the file: find it exactly
             from ..store import blocks
 
             if skipped:  # some rows did not go in: sum the cells from what was stored
@@ -1271,6 +1269,8 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 block_rows = blocks.from_sums(summaries, campaign_id, import_id, group_of)
                 if wh.is_sqlite:
                     run_statements(conn.connection.driver_connection, summing.parts())
+                    if quick and summing.repeated:  # (known once the parts are all handed over)
+                        raise _StartOver()  # a run may appear twice in the file: find it exactly
                 else:
                     from ..store import cells
 
