@@ -390,6 +390,7 @@ def test_date_slices_take_exactly_the_runs_whose_time_meets_the_test(cli, locati
     from sqlalchemy import func, select
 
     from warehouse.select import resolve
+    from warehouse.store import ranges
     from warehouse.select.slices import parse
     from warehouse.store import schema as S
     from warehouse.store.connect import open_warehouse
@@ -419,10 +420,10 @@ def test_date_slices_take_exactly_the_runs_whose_time_meets_the_test(cli, locati
                 # the same slice with the time tests alone, over every run
                 expect = c.execute(select(func.count()).select_from(R).where(_plain(text, dims, c))).scalar()
                 assert got == expect, text
-                monkeypatch.setattr(resolve, "MAX_RANGES", 1)  # one range around them all: the same runs
+                monkeypatch.setattr(ranges, "MAX_RANGES", 1)  # one range around them all: the same runs
                 assert c.execute(select(func.count()).select_from(R).where(
                     resolve.condition(parse(text), dims, c))).scalar() == expect, text
-                monkeypatch.setattr(resolve, "MAX_RANGES", 64)
+                monkeypatch.setattr(ranges, "MAX_RANGES", 64)
             assert c.execute(select(func.count()).select_from(R).where(
                 resolve.condition(parse("since=2026-11-02"), dims, c))).scalar() > 0
     finally:

@@ -27,6 +27,7 @@ from .select.resolve import Dims, cells_can_answer, condition
 from .select.slices import Slice
 from .session import Collapse
 from .store import schema as S
+from .store.blocks import W_MOD  # 2**31 - 1: weighted id terms and their sums stay exact in SQL
 
 R = S.runs
 
@@ -249,7 +250,8 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
 
 def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense: str, unit: str,
                      st: dict) -> Collapsed | None:
-    """The default collapse as one SQL statement over the cell summaries (see `collapse`).
+    """The default collapse in SQL: from the block summaries where they serve the slice, else as
+    one statement over the cell summaries (see `collapse`).
 
     Per treatment and block it returns the fingerprint's sums over every cell and, over the
     instances every treatment present in the block has a value for, the observation. None when
@@ -257,47 +259,12 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
     """
     from sqlalchemy.exc import DBAPIError
 
-    C, I = S.cell_stats, S.instances
+    C = S.cell_stats
     where = and_(condition(sl, dims, conn, table=C), C.c.slot == slot)
-    c = (select(C.c.solver_id, C.c.instance_id, func.sum(C.c.n).label("n"), func.sum(C.c.n_ok).label("n_ok"),
-                func.sum(C.c.sum_ok).label("sum_ok"), func.sum(C.c.n_fail).label("n_fail"),
-                func.sum(C.c.id_sum).label("id_sum"), func.max(C.c.id_max).label("id_max"))
-         .where(where).group_by(C.c.solver_id, C.c.instance_id)).cte("c")
-    v = (select(c.c.solver_id, I.c.group_id, c.c.instance_id, c.c.n, c.c.n_ok, c.c.n_fail, c.c.id_sum, c.c.id_max,
-                case((c.c.n_ok > 0, c.c.sum_ok * 1.0 / c.c.n_ok), else_=None).label("value"))
-         .join_from(c, I, I.c.id == c.c.instance_id)).cte("v")
-    has_value = v.c.value.is_not(None)
-    # per instance, the treatments with a value on it; per block, the treatments with any value
-    per_inst = (select(v.c.instance_id, v.c.group_id, func.count().label("k")).where(has_value)
-                .group_by(v.c.instance_id, v.c.group_id)).cte("per_inst")
-    present = (select(v.c.group_id, func.count(func.distinct(v.c.solver_id)).label("k")).where(has_value)
-               .group_by(v.c.group_id)).cte("present")
-    common = (select(per_inst.c.instance_id)
-              .join_from(per_inst, present, and_(present.c.group_id == per_inst.c.group_id,
-                                                 present.c.k == per_inst.c.k))).cte("common")
-    m = common.alias("m")
-    used = m.c.instance_id.is_not(None)
-
-    def where_used(col):
-        return case((used, col), else_=None)
-
-    # one pass: the fingerprint's sums over every cell, the observation over the common instances
-    query = (select(v.c.solver_id, v.c.group_id, func.sum(v.c.n).label("n"), func.sum(v.c.n_ok).label("n_ok"),
-                    func.sum(v.c.n_fail).label("n_fail"), func.sum(v.c.id_sum).label("id_sum"),
-                    func.sum((v.c.id_sum % W_MOD) * (v.c.instance_id % 9973 + 1) % W_MOD).label("w_ids"),
-                    func.count().label("cells"), func.sum(v.c.instance_id).label("inst"),
-                    func.max(v.c.id_max).label("id_max"),
-                    func.sum(case(((v.c.n_ok == 0) & (v.c.n_fail > 0), 1), else_=0)).label("lost"),
-                    func.avg(where_used(v.c.value)).label("value"), func.count(m.c.instance_id).label("instances"),
-                    func.sum(where_used(v.c.n)).label("runs"), func.sum(where_used(v.c.n_fail)).label("failed"),
-                    func.sum(where_used(v.c.n_ok)).label("ok"),
-                    select(func.count()).select_from(per_inst).scalar_subquery().label("valid_instances"))
-             .join_from(v, m, and_(m.c.instance_id == v.c.instance_id, has_value), isouter=True)
-             .group_by(v.c.solver_id, v.c.group_id))
     rows = _rows_from_blocks(conn, sl, dims, slot)
     if rows is None:
         try:
-            rows = conn.execute(query).all()
+            rows = conn.execute(_cells_statement(where)).all()
         except DBAPIError:  # an integer sum past 64 bits, say: the pandas way has no such limit
             conn.rollback()
             return None
@@ -343,6 +310,49 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=sum(int(r.n) for r in rows), runs_used=runs_used,
         instances_used=instances_used, notes=notes, hosts=hosts, campaigns=campaigns,
         fingerprint=fingerprint, max_run_id=max(int(r.id_max) for r in rows), hash_conflicts=conflicts)
+
+
+def _cells_statement(where):
+    """The collapse statement over the slice's cell summaries (`where`): per treatment and block,
+    the fingerprint's sums over every cell and the observation over the instances every
+    treatment present in the block has a value for."""
+    C, I = S.cell_stats, S.instances
+    c = (select(C.c.solver_id, C.c.instance_id, func.sum(C.c.n).label("n"), func.sum(C.c.n_ok).label("n_ok"),
+                func.sum(C.c.sum_ok).label("sum_ok"), func.sum(C.c.n_fail).label("n_fail"),
+                func.sum(C.c.id_sum).label("id_sum"), func.max(C.c.id_max).label("id_max"))
+         .where(where).group_by(C.c.solver_id, C.c.instance_id)).cte("c")
+    v = (select(c.c.solver_id, I.c.group_id, c.c.instance_id, c.c.n, c.c.n_ok, c.c.n_fail, c.c.id_sum, c.c.id_max,
+                case((c.c.n_ok > 0, c.c.sum_ok * 1.0 / c.c.n_ok), else_=None).label("value"))
+         .join_from(c, I, I.c.id == c.c.instance_id)).cte("v")
+    has_value = v.c.value.is_not(None)
+    # per instance, the treatments with a value on it; per block, the treatments with any value
+    per_inst = (select(v.c.instance_id, v.c.group_id, func.count().label("k")).where(has_value)
+                .group_by(v.c.instance_id, v.c.group_id)).cte("per_inst")
+    present = (select(v.c.group_id, func.count(func.distinct(v.c.solver_id)).label("k")).where(has_value)
+               .group_by(v.c.group_id)).cte("present")
+    common = (select(per_inst.c.instance_id)
+              .join_from(per_inst, present, and_(present.c.group_id == per_inst.c.group_id,
+                                                 present.c.k == per_inst.c.k))).cte("common")
+    m = common.alias("m")
+    used = m.c.instance_id.is_not(None)
+
+    def where_used(col):
+        return case((used, col), else_=None)
+
+    # one pass: the fingerprint's sums over every cell, the observation over the common instances
+    query = (select(v.c.solver_id, v.c.group_id, func.sum(v.c.n).label("n"), func.sum(v.c.n_ok).label("n_ok"),
+                    func.sum(v.c.n_fail).label("n_fail"), func.sum(v.c.id_sum).label("id_sum"),
+                    func.sum((v.c.id_sum % W_MOD) * (v.c.instance_id % 9973 + 1) % W_MOD).label("w_ids"),
+                    func.count().label("cells"), func.sum(v.c.instance_id).label("inst"),
+                    func.max(v.c.id_max).label("id_max"),
+                    func.sum(case(((v.c.n_ok == 0) & (v.c.n_fail > 0), 1), else_=0)).label("lost"),
+                    func.avg(where_used(v.c.value)).label("value"), func.count(m.c.instance_id).label("instances"),
+                    func.sum(where_used(v.c.n)).label("runs"), func.sum(where_used(v.c.n_fail)).label("failed"),
+                    func.sum(where_used(v.c.n_ok)).label("ok"),
+                    select(func.count()).select_from(per_inst).scalar_subquery().label("valid_instances"))
+             .join_from(v, m, and_(m.c.instance_id == v.c.instance_id, has_value), isouter=True)
+             .group_by(v.c.solver_id, v.c.group_id))
+    return query
 
 
 def _rows_from_blocks(conn, sl: Slice, dims: Dims, slot: int) -> list | None:
@@ -559,7 +569,6 @@ def _fingerprint(agg: pd.DataFrame, st: dict, metric: str, sl: Slice) -> str:
                             for (t, b), r in zip(g.index, g.itertuples(index=False))], st, metric, sl)
 
 
-W_MOD = 2147483647  # 2**31 - 1: each weighted term stays below 2**31, so their sums stay exact in SQL too
 
 
 def _fingerprint_of(groups: list[tuple], st: dict, metric: str, sl: Slice) -> str:

@@ -109,3 +109,16 @@ def test_a_large_first_load_gives_the_page_cache_back(location, tmp_path):
             assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
     finally:
         w.close()
+
+
+def test_values_one_chunk_holds_alike_are_stored_as_bound_ones_would_be(cli, location, tmp_path):
+    # A column with one value on every row goes into the statement as a literal (SQLite); whole
+    # numbers and NULL only: a float keeps its exact double, an integer column its integer type.
+    text = H + "".join(f"s,1,g1,i{k},7,ok,0.1\n" for k in range(40))  # one seed, one float value
+    load_json(cli, write(tmp_path / "a.csv", text))
+    got = query(location, "SELECT seed, replicate, v1, count(*) FROM runs GROUP BY seed, replicate, v1")
+    assert got == [(7, 0, 0.1, 40)]
+    assert query(location, "SELECT v1 = 0.1 FROM runs LIMIT 1") in ([(1,)], [(True,)])
+    if not ON_POSTGRES:
+        assert query(location, "SELECT DISTINCT typeof(seed), typeof(v1), typeof(host_id) FROM runs") == \
+            [("integer", "real", "null")]

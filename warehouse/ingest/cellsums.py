@@ -133,12 +133,9 @@ class CellSums:
         self.parts[slot] = [(cell_keys, merged)]
         self.sizes[slot] = len(cell_keys)
 
-    def sqlite_statements(self, campaign_id: int, import_id: int) -> list[tuple[str, "list | np.ndarray", int]]:
-        """(statement, parameter rows, cells) to write the cells with, built without the database."""
-        return list(self.iter_statements(campaign_id, import_id))
-
     def iter_statements(self, campaign_id: int, import_id: int):
-        """The statements of `sqlite_statements` one after the other, slot by slot.
+        """(statement, parameter rows, cells) to write the cells with, built without the database,
+        slot after slot.
 
         The rows stay a float table until they are written (Python floats take four times the room).
 
@@ -250,7 +247,7 @@ def constant_columns(table: np.ndarray, names: list[str], whole: frozenset) -> d
 
 def run_statements(raw, parts) -> int:
     """Write the cells through a SQLite driver connection: (statement, rows, cells) parts, as
-    `Summing.parts` hands them over (or `CellSums.sqlite_statements` gave them)."""
+    `Summing.parts` hands them over (or `CellSums.iter_statements` gives them)."""
     written = 0
     for sql, params, cells in parts:
         raw.executemany(sql, params.tolist() if isinstance(params, np.ndarray) else params)
@@ -261,7 +258,7 @@ def run_statements(raw, parts) -> int:
 PART_ROWS = 20_000  # cell rows converted per part: the writer takes a part while the next is converted
 
 
-def _pieces(statements: list[tuple]):
+def _pieces(statements):
     """The statements' float tables cut into parts of about PART_ROWS cell rows each."""
     for sql, params, cells in statements:
         if not isinstance(params, np.ndarray) or cells <= PART_ROWS:
@@ -331,13 +328,15 @@ class Summing:
 
     def close(self) -> None:
         """Stop the helper (a load that failed part-way); harmless after the parts were written."""
+        import queue
+
         self._stop.set()
         if self._thread.is_alive():
             self._q.put(("stop", None))
             while self._thread.is_alive():
                 try:  # let a helper waiting to hand over a part go on to see the stop
                     self._out.get_nowait()
-                except Exception:  # noqa: BLE001 - queue.Empty
+                except queue.Empty:
                     pass
                 self._thread.join(0.01)
 

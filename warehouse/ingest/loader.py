@@ -79,7 +79,8 @@ class FileReport:
 
 
 class _StartOver(Exception):
-    """Internal: the set-aside unique index found a run twice; load again with the indexes kept."""
+    """Internal: a quick load could not prove its runs new (`_StoredCells`, `_RunHashes`); load the
+    file again the exact way, with the campaign's key index (`_campaign_key`)."""
 
 
 # --- dimension tables --------------------------------------------------------------------------
@@ -863,7 +864,8 @@ class _RunHashes:
 
     @staticmethod
     def _mix(z: np.ndarray) -> np.ndarray:
-        # splitmix64's finalizer (Steele, Lea and Flood 2014): each input bit moves every output bit
+        # splitmix64's finalizer (constants from memory of Steele, Lea and Flood 2014; the tests only need
+        # it to spread keys): each input bit moves every output bit
         z = z + np.uint64(0x9E3779B97F4A7C15)
         z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
         z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)

@@ -12,6 +12,7 @@ from sqlalchemy import and_, false, not_, or_, select, true
 
 from ..errors import SliceError
 from ..store import schema as S
+from ..store.ranges import id_ranges
 from .slices import STATUSES, Slice, Term, _suggest, parse_when
 from .versions import compare
 
@@ -112,32 +113,6 @@ def _version_ok(op: str, value: str, version: str) -> bool:
     return {"<": c < 0, "<=": c <= 0, ">": c > 0, ">=": c >= 0}[op]
 
 
-MAX_RANGES = 64  # beyond this many separate id ranges a date slice tests one range around them all
-
-
-def _id_ranges(conn, imports_hit, T=R):
-    """The run ids of the imports whose time range meets a date condition, as id ranges.
-
-    A date slice reads the imports' ranges (revision 0004), then only those id ranges of the
-    runs; the time test itself still applies to every run. Ranges that touch are joined, so the
-    runs of a week of nightly loads are one range. An import without runs holds no range.
-    """
-    I = S.imports
-    rows = conn.execute(select(I.c.first_run_id, I.c.last_run_id)
-                        .where(imports_hit, I.c.first_run_id.is_not(None)).order_by(I.c.first_run_id)).all()
-    merged: list[list[int]] = []
-    for lo, hi in rows:
-        if merged and lo <= merged[-1][1] + 1:
-            merged[-1][1] = max(merged[-1][1], hi)
-        else:
-            merged.append([int(lo), int(hi)])
-    if not merged:
-        return false()
-    if len(merged) > MAX_RANGES:
-        return T.c.id.between(merged[0][0], merged[-1][1])  # (sorted and apart: the last ends last)
-    return or_(*[T.c.id.between(lo, hi) for lo, hi in merged])
-
-
 def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
     neg = term.op == "!="
     key = term.key
@@ -165,7 +140,7 @@ def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
         if T is R and ids and not neg:
             # the runs of a campaign lie in its imports' id ranges: SQLite has no index on the
             # runs' campaign (revision 0007), so a slice reads those ranges, not the whole table
-            cond = and_(cond, _id_ranges(conn, S.imports.c.campaign_id.in_(ids), T))
+            cond = and_(cond, id_ranges(conn, S.imports.c.campaign_id.in_(ids), T))
         return cond
     if key == "host":
         cond = _in(T.c.host_id, _ids(dims.hosts, term, n, "host"), neg)
@@ -209,10 +184,10 @@ def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
         return {"<": col < vals[0], "<=": col <= vals[0], ">": col > vals[0], ">=": col >= vals[0]}[term.op]
     if key == "since":
         t = parse_when(term.values[0], "since")
-        return and_(T.c.finished_at >= t, _id_ranges(conn, S.imports.c.last_finished >= t, T))
+        return and_(T.c.finished_at >= t, id_ranges(conn, S.imports.c.last_finished >= t, T))
     if key == "until":
         t = parse_when(term.values[0], "until")
-        return and_(T.c.finished_at < t, _id_ranges(conn, S.imports.c.first_finished < t, T))
+        return and_(T.c.finished_at < t, id_ranges(conn, S.imports.c.first_finished < t, T))
     raise SliceError(f"slice term {n}: key {key} is not handled")  # pragma: no cover
 
 

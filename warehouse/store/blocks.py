@@ -17,7 +17,7 @@ from . import schema as S
 
 B = S.block_stats
 C = S.cell_stats
-W_MOD = 2147483647  # the fingerprint's modulus (collapse.W_MOD): weighted id sums stay exact
+W_MOD = 2147483647  # the fingerprint's modulus (2**31 - 1): each weighted id term stays below 2**31
 COLUMNS = ["campaign_id", "import_id", "slot", "solver_id", "group_id", "n", "n_ok", "n_fail", "id_sum", "w_ids",
            "cells", "inst", "id_max", "lost", "vcells", "vsum", "v_n", "v_fail", "v_ok", "group_valued"]
 

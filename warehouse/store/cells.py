@@ -11,6 +11,7 @@ from . import schema as S
 
 R = S.runs
 C = S.cell_stats
+C_IMPORTS = S.imports
 KEY = ["solver_id", "instance_id", "host_id"]
 SUMS = ["n", "n_ok", "sum_ok", "sq_ok", "n_fail", "n_fail_v", "sum_fail_v", "id_sum"]
 COLUMNS = ["campaign_id", "import_id", "solver_id", "instance_id", "host_id", "slot", "n", "n_ok", "sum_ok",
@@ -84,7 +85,9 @@ def _rebuild_cells(conn, keys: list[tuple]) -> int:
     solvers = sorted({k[1] for k in keys})
     instances = sorted({k[2] for k in keys})
     touched = 0
-    spans = _spans(conn, imports)
+    from .ranges import id_ranges
+
+    spans = id_ranges(conn, C_IMPORTS.c.id.in_(imports))
     for i in range(0, len(instances), 5000):
         part = instances[i:i + 5000]
         rect_c = and_(C.c.import_id.in_(imports), C.c.solver_id.in_(solvers), C.c.instance_id.in_(part))
@@ -105,18 +108,6 @@ def _rebuild_cells(conn, keys: list[tuple]) -> int:
                  .group_by(R.c.campaign_id, R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.host_id))
             touched += conn.execute(insert(C).from_select(COLUMNS, q)).rowcount or 0
     return touched
-
-
-def _spans(conn, imports: list[int]):
-    """The run id ranges of these imports (each import's runs are one range, revision 0004)."""
-    from sqlalchemy import or_
-
-    I = S.imports
-    rows = conn.execute(select(I.c.first_run_id, I.c.last_run_id)
-                        .where(I.c.id.in_(imports), I.c.first_run_id.is_not(None))).all()
-    if not rows:
-        return R.c.id.is_(None)  # no runs (never true): the imports hold none
-    return or_(*[R.c.id.between(int(lo), int(hi)) for lo, hi in rows])
 
 
 def _slots(conn, imports: list[int], rect_r) -> list[int]:
