@@ -74,6 +74,23 @@ def test_open_missing_warehouse_names_the_init_command(tmp_path):
         open_warehouse(str(tmp_path / "nope.db"))
 
 
+def test_a_new_sqlite_warehouse_has_large_pages_and_wal(tmp_path):
+    # SQLite's page size must be set before the first table is made (sqlite.org, PRAGMA
+    # page_size; recalled from memory): init sets it, and WAL, on the new file
+    import sqlite3
+
+    from warehouse.store.connect import PAGE_BYTES
+
+    wh = init_warehouse(str(tmp_path / "pages.db"))
+    wh.close()
+    con = sqlite3.connect(str(tmp_path / "pages.db"))
+    try:
+        assert con.execute("PRAGMA page_size").fetchone()[0] == PAGE_BYTES == 16384
+        assert con.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    finally:
+        con.close()
+
+
 def test_init_refuses_an_existing_warehouse(location):
     with pytest.raises(StorageError, match="already"):
         init_warehouse(location)

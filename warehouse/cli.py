@@ -147,7 +147,20 @@ def main() -> None:
     except BrokenPipeError:  # output piped into head: not an error
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         code = 0
-    sys.exit(code)
+    _leave(code or 0)
+
+
+def _leave(code: int) -> None:
+    """End the process without taking the interpreter apart. Everything a command stores is
+    committed and its connections closed before `run` returns; what is left is freeing every
+    module and array one by one, a twentieth of a large load's time (measured in pairs). The
+    output is flushed first; a reader that went away (head) is not an error."""
+    try:
+        sys.stdout.flush()
+        sys.stderr.flush()
+    except BrokenPipeError:
+        pass
+    os._exit(code)
 
 
 if __name__ == "__main__":

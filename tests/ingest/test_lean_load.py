@@ -14,9 +14,10 @@ from .kit import csv_text, jsonl_text, parquet, runs, write
 
 PROBE = r"""
 import sys
-from warehouse.cli import main
+import warehouse.cli as cli
+cli._leave = sys.exit  # the real entry point, ending with an exception so that the probe can report
 try:
-    main()
+    cli.main()
 finally:
     sys.stderr.write("\npandas-imported=%s\n" % ("pandas" in sys.modules))
 """

@@ -39,7 +39,47 @@ def as_text(arr) -> pa.Array:
         arr = pc.cast(arr, pa.string())
     if arr.null_count:
         arr = pc.fill_null(arr, "")
+    if not _may_need_trim(arr):
+        return arr
     return pc.utf8_trim_whitespace(arr)
+
+
+# bytes a value may start or end with when it has white space there: ASCII white space, and any
+# byte of a multi-byte character (some of those are white space, e.g. U+00A0 and U+3000)
+_EDGE = np.zeros(256, dtype=bool)
+_EDGE[[9, 10, 11, 12, 13, 28, 29, 30, 31, 32]] = True
+_EDGE[128:] = True
+_DIGITS = np.zeros(256, dtype=bool)  # what a plain whole number is made of: digits and a minus sign
+_DIGITS[list(b"0123456789-")] = True
+
+
+def _bytes_of(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """A string array's offsets and the bytes its values span, as numpy views (no copies)."""
+    _, offsets, data = arr.buffers()
+    off = np.frombuffer(offsets, dtype=np.int32, count=len(arr) + 1, offset=arr.offset * 4)
+    if data is None or len(arr) == 0:
+        return off, np.zeros(0, dtype=np.uint8)
+    return off, np.frombuffer(data, dtype=np.uint8)[int(off[0]):int(off[-1])]
+
+
+def _may_need_trim(arr: pa.Array) -> bool:
+    """False when no value starts or ends with a byte of white space (or of a non-ASCII
+    character): then trimming would change nothing. Looks at two bytes a value, not at every
+    character, which is most of the cost of trimming a column that needs none."""
+    off, data = _bytes_of(arr)
+    if len(data) == 0:
+        return False
+    starts, ends = off[:-1] - off[0], off[1:] - off[0]
+    full = ends > starts
+    if not full.all():
+        starts, ends = starts[full], ends[full]
+    return bool(_EDGE[data[starts]].any() or _EDGE[data[ends - 1]].any())
+
+
+def byte_lengths(arr: pa.Array) -> np.ndarray:
+    """Each value's length in bytes (at least its length in characters)."""
+    off, _ = _bytes_of(arr)
+    return np.diff(off)
 
 
 def mask(arr) -> np.ndarray:
@@ -137,6 +177,14 @@ def wholes(arr, default: int = 0) -> tuple[np.ndarray, np.ndarray, pa.Array]:
         bad = ~np.isfinite(f) | (np.floor(f) != f) | (np.abs(f) >= WHOLE_LIMIT)
         return np.where(bad, 0, f).astype(np.int64), bad, as_text(arr)
     text = as_text(arr)
+    off, data = _bytes_of(text)
+    if len(text) and (np.diff(off) > 0).all() and _DIGITS[data].all():
+        # only digits and minus signs, none empty: a cast that succeeds read each value as
+        # WHOLE_RE would have (the cast alone would also read '0x10')
+        try:
+            return pc.cast(text, pa.int64()).to_numpy(), np.zeros(n, dtype=bool), text
+        except pa.ArrowInvalid:
+            pass
     empty = mask(pc.equal(text, ""))
     sd = pc.if_else(pa.array(empty), pa.scalar(str(default)), text) if empty.any() else text
     plain = mask(pc.match_substring_regex(sd, WHOLE_RE))
@@ -198,15 +246,18 @@ def instants(arr) -> tuple[np.ndarray, np.ndarray, np.ndarray, pa.Array]:
     has = ~mask(pc.equal(text, ""))
     if not has.any():
         return out, has, np.zeros(n, dtype=bool), text
-    upper = pc.utf8_upper(text)  # 't' and 'z' as RFC 3339 allows
-    some = _keep_where(upper, has)
-    for zoned in (True, False):  # the common case: every value in one form
-        try:
-            cast = pc.cast(some, pa.timestamp("s", tz="UTC") if zoned else pa.timestamp("s"))
-        except pa.ArrowInvalid:
-            continue
-        out[has] = _ints(cast)[has]
-        return out, has, np.zeros(n, dtype=bool), text
+    upper = None
+    for upper_case in (False, True):
+        if upper_case:  # 't' and 'z' as RFC 3339 allows (a value that reads as it is reads the same)
+            upper = pc.utf8_upper(text)
+        some = _keep_where(upper if upper_case else text, has)
+        for zoned in (True, False):  # the common case: every value in one form
+            try:
+                cast = pc.cast(some, pa.timestamp("s", tz="UTC") if zoned else pa.timestamp("s"))
+            except pa.ArrowInvalid:
+                continue
+            out[has] = _ints(cast)[has]
+            return out, has, np.zeros(n, dtype=bool), text
     dated = has & mask(pc.match_substring_regex(upper, DATE_START_RE))
     zoned_m = dated & mask(pc.match_substring_regex(upper, ZONED_RE))
     bad = has & ~dated
