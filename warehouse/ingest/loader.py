@@ -133,33 +133,44 @@ class Dimensions:
         return [seen[k] for k in keys]
 
     def _instance_ids(self, keys: list[tuple], warnings: list[str]) -> list[int]:
-        out: list[int | None] = []
-        new: list[tuple[int, int, str, str]] = []  # (position in out, group id, name, content hash)
-        for family, group, inst, chash in keys:
+        # the few (family, group) pairs first, in the order the keys bring them (ids follow it)
+        gid_of = {}
+        for family, group in dict.fromkeys((k[0], k[1]) for k in keys):
             fid = self.families.get(family)
             if fid is None:
                 fid = self.families[family] = self._add(S.families, name=family)
             gid = self.groups.get((fid, group))
             if gid is None:
                 gid = self.groups[(fid, group)] = self._add(S.groups, family_id=fid, name=group)
-            iid = self.instances.get((gid, inst, chash))
-            if iid is None:
-                known = self.hashes.setdefault((gid, inst), set())
+            gid_of[(family, group)] = gid
+        triples = [(gid_of[(f, g)], inst, chash) for f, g, inst, chash in keys]
+        get = self.instances.get
+        out: list[int | None] = [get(t) for t in triples]
+        new: list[int] = []  # positions of the keys not stored yet (distinct: each is added once)
+        hashes = self.hashes
+        for j, iid in enumerate(out):
+            if iid is not None:
+                continue
+            gid, inst, chash = triples[j]
+            known = hashes.get((gid, inst))
+            if known is None:
+                hashes[(gid, inst)] = {chash}
+            else:
                 if known:
+                    family, group = keys[j][0], keys[j][1]
                     warnings.append(
                         f"instance {family}/{group}/{inst} has content hash '{chash or '(none)'}' here but "
                         f"'{sorted(known)[0] or '(none)'}' elsewhere: kept as a different instance"
                     )
                 known.add(chash)
-                new.append((len(out), gid, inst, chash))  # the keys are distinct: each is added once
-            out.append(iid)
+            new.append(j)
         if new:
-            for (j, gid, inst, chash), iid in zip(new, self._add_instances([n[1:] for n in new])):
-                self.instances[(gid, inst, chash)] = out[j] = iid
+            for j, iid in zip(new, self._add_instances([triples[j] for j in new])):
+                self.instances[triples[j]] = out[j] = iid
         return out
 
     def _add_instances(self, rows: list[tuple[int, str, str]]) -> list[int]:
-        """New instances, in one executemany on SQLite (a first load may bring tens of thousands).
+        """New instances, many rows per statement on SQLite (a first load may bring tens of thousands).
 
         The ids are ours to give: the load holds the write lock from BEGIN, so nobody else adds
         instances meanwhile, and the next id is one past the largest.
@@ -169,8 +180,16 @@ class Dimensions:
         raw = self.conn.connection.driver_connection
         first = (raw.execute("SELECT max(id) FROM instances").fetchone()[0] or 0) + 1
         ids = list(range(first, first + len(rows)))
-        raw.executemany("INSERT INTO instances (id, group_id, name, content_hash) VALUES (?, ?, ?, ?)",
-                        [(i, g, n, h) for i, (g, n, h) in zip(ids, rows)])
+        flat = [v for i, row in zip(ids, rows) for v in (i, *row)]
+        limit = raw.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if hasattr(raw, "getlimit") else 999
+        per = max(1, min(500, limit // 4))  # rows per statement, four values each
+        head = "INSERT INTO instances (id, group_id, name, content_hash) VALUES "
+        full = len(rows) // per * per
+        if full:
+            raw.executemany(head + ", ".join(["(?, ?, ?, ?)"] * per),
+                            [flat[a:a + 4 * per] for a in range(0, 4 * full, 4 * per)])
+        if len(rows) > full:
+            raw.execute(head + ", ".join(["(?, ?, ?, ?)"] * (len(rows) - full)), flat[4 * full:])
         return ids
 
     def host_ids(self, names: list[str]) -> list[int | None]:
