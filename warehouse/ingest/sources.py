@@ -24,7 +24,7 @@ from ..errors import InputError
 from .scan import FORMATS, SourceInfo, _line_of_offset, detect_format, first_pass  # noqa: F401  (the first pass lives there)
 
 CHUNK_ROWS = 100_000  # rows per chunk handed to the checks and the writer; memory stays flat
-FIRST_CHUNK_ROWS = 20_000  # the first chunk is smaller, so that the writer starts sooner
+FIRST_CHUNK_ROWS = 5_000  # the first chunk is smaller, so that the writer starts sooner (then they double)
 BLOCK_BYTES = 1 << 20  # bytes of text the CSV parser reads at a time (it reads a few blocks ahead)
 def locate_bad_text(info: SourceInfo) -> InputError | None:
     """The first place where the text is not UTF-8, as an error naming the line; None if it all is."""
@@ -208,6 +208,9 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
             return  # a header and nothing else (with or without a final newline)
         raise failed(exc) from None
     good = 0  # good records so far
+    # The chunks grow from FIRST_CHUNK_ROWS to CHUNK_ROWS, doubling: the writer starts on a small
+    # chunk, and each next one is checked while the one before it (half its size) is written
+    limit = min(FIRST_CHUNK_ROWS, CHUNK_ROWS)
     buffer: list[pa.RecordBatch] = []
     buffered = 0
 
@@ -235,8 +238,9 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
             continue
         buffer.append(batch)
         buffered += batch.num_rows
-        if buffered >= (CHUNK_ROWS if good else min(FIRST_CHUNK_ROWS, CHUNK_ROWS)):
+        if buffered >= limit:
             yield flush()
+            limit = min(CHUNK_ROWS, limit * 2)
     if buffer:
         yield flush()
 
