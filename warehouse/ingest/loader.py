@@ -635,6 +635,7 @@ class _Writer:
             self.sql_one = self.head + self._marks({})
             self._statements: dict[tuple, tuple[str, str, int]] = {}
             self._same: dict[str, str] | None = None  # the columns written as literals so far
+            self._buf = np.empty(0, dtype=np.float64)  # the bound values of a chunk, reused
         else:
             self.campaign_id, self.import_id = campaign_id, import_id
             # made again for each writer: a metric new in this file may have added a column to runs
@@ -690,13 +691,11 @@ class _Writer:
             # One float64 table, many rows per statement. SQLite stores a whole-valued REAL in an
             # INTEGER column as an INTEGER, and a NaN as NULL, so the stored values and types are
             # the same as when binding ints and None (the tests check both).
-            table = np.empty((m, self.width), dtype=np.float64)
-            for i, a in enumerate(ints):
-                table[:, i] = a
-            table[~rows.has_finished, at] = np.nan
-            table[~has_host, at + 1] = np.nan
-            for i, s in enumerate(self.slots):
-                table[:, len(ints) + i] = rows.metrics[metric_of_slot[s]]
+            # The table's columns in order, each with the rows where it is NULL (None: none are)
+            sources: list[tuple[np.ndarray, np.ndarray | None]] = [(a, None) for a in ints]
+            sources[at] = (rows.finished, ~rows.has_finished)
+            sources[at + 1] = (host, ~has_host)
+            sources += [(rows.metrics[metric_of_slot[s]], None) for s in self.slots]  # NaN where empty
             # A column with one value on every row of the chunk (one host per file, no replicate
             # column, a metric the file leaves empty) is written once in the statement instead of
             # bound on every row: binding is most of the Python side of an insert. Only whole
@@ -705,7 +704,7 @@ class _Writer:
             # a prepared statement SQLite keeps (a large one, for hundreds of rows), so a file
             # whose constants change chunk after chunk (a new night, the next treatment) makes a
             # few texts, not one per chunk.
-            same = constant_columns(table, self.bound, _WHOLE_COLUMNS)
+            same = _constant_sources(sources, self.bound)
             if self._same is not None:
                 same = {c: v for c, v in self._same.items() if same.get(c) == v}
             self._same = same
@@ -715,8 +714,16 @@ class _Writer:
                 marks = self._marks(same)
                 self._statements[key] = (self.head + ", ".join([marks] * per), self.head + marks, per)
             sql_many, sql_one, k = self._statements[key]
-            if same:
-                table = table[:, [i for i, c in enumerate(self.bound) if c not in same]]
+            # only the bound columns go into the table, which reuses one buffer from chunk to
+            # chunk (fresh memory for each chunk costs the kernel's zeroing of it)
+            kept = [sources[i] for i, c in enumerate(self.bound) if c not in same]
+            if len(self._buf) < m * len(kept):
+                self._buf = np.empty(m * len(kept), dtype=np.float64)
+            table = self._buf[:m * len(kept)].reshape(m, len(kept))
+            for j, (a, nulls) in enumerate(kept):
+                table[:, j] = a
+                if nulls is not None and nulls.any():
+                    table[nulls, j] = np.nan
             width = table.shape[1]
             full = m // k * k
             if width == 0:  # every column the same: nothing to bind
@@ -734,6 +741,31 @@ class _Writer:
             vals = rows.metrics[metric_of_slot[s]]
             columns.append(_with_nulls(vals, ~np.isnan(vals)))
         self.raw.executemany(self.sql_one, zip(*columns))
+
+
+def _constant_sources(sources: list, names: list[str]) -> dict[str, str]:
+    """The columns of a chunk with one value on every row, as SQL literals: NULL where every row
+    is NULL (or NaN), the number where a whole-number column holds one value. A float column's
+    value stays bound (its decimal text need not read back as the same double). The same
+    literals as `cellsums.constant_columns` gives for the float table of these columns."""
+    out: dict[str, str] = {}
+    for (a, nulls), c in zip(sources, names):
+        if len(a) == 0:
+            return {}
+        if c not in _WHOLE_COLUMNS:
+            if np.isnan(a[0]) and np.isnan(a).all():
+                out[c] = "NULL"
+            continue
+        if nulls is not None and nulls[0]:
+            if nulls.all():
+                out[c] = "NULL"
+            continue
+        if nulls is not None and nulls.any():
+            continue
+        v = a[0]
+        if a.min() == v == a.max() and abs(int(v)) < V.WHOLE_LIMIT:
+            out[c] = str(int(v))
+    return out
 
 
 @dataclass
