@@ -56,7 +56,8 @@ _DIGITS[list(b"0123456789-")] = True
 def _bytes_of(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     """A string array's offsets and the bytes its values span, as numpy views (no copies)."""
     _, offsets, data = arr.buffers()
-    off = np.frombuffer(offsets, dtype=np.int32, count=len(arr) + 1, offset=arr.offset * 4)
+    width = np.int64 if pa.types.is_large_string(arr.type) else np.int32
+    off = np.frombuffer(offsets, dtype=width, count=len(arr) + 1, offset=arr.offset * np.dtype(width).itemsize)
     if data is None or len(arr) == 0:
         return off, np.zeros(0, dtype=np.uint8)
     return off, np.frombuffer(data, dtype=np.uint8)[int(off[0]):int(off[-1])]
