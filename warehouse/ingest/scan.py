@@ -180,6 +180,9 @@ def start_early(argv: list[str]) -> None:
         break
     if command is None or argv[command] != "load":
         return
+    # A load multiplies no matrices: numpy's BLAS starts no threads of its own (they wait for
+    # work by spinning, on the cores the load's own threads use). Set before numpy is imported.
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     todo: list[tuple[Path, str, object]] = []
     for tok in argv[command + 1:]:
         if tok.startswith("-"):
