@@ -64,6 +64,7 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="100,000 and 1,000,000 runs instead of 1M and 10M")
     ap.add_argument("--workdir", help="where to put the files (default: a temporary folder, removed after)")
     ap.add_argument("--repeat", type=int, default=3, help="repetitions of each timed analysis (best is kept)")
+    ap.add_argument("--rounds", type=int, default=5, help="interleaved (load, naive, import) rounds of item 1")
     a = ap.parse_args()
     small = 100_000 if a.quick else 1_000_000
     nights = 10
@@ -101,12 +102,12 @@ def main() -> None:
     # interleaved (load, naive, import) rounds: a virtual machine's speed drifts within minutes, and
     # a ratio of two bests taken minutes apart moves with it; the median of the rounds' own ratios
     # is printed beside the ratio of the bests
-    rounds = [(load_once(), naive_once(), import_once()) for _ in range(3)]
+    rounds = [(load_once(), naive_once(), import_once()) for _ in range(max(1, a.rounds))]
     t_load, t_naive, t_import = (min(r[i] for r in rounds) for i in range(3))
     pair = statistics.median(r[0] / r[1] for r in rounds)
     from ingest import time_floor  # noqa: E402  (the same floor as benchmarks/ingest.py)
     t_floor = min(time_floor(last, work) for _ in range(2))
-    print(f"\n1. load {small:,} runs (best of 3 interleaved rounds, whole process)")
+    print(f"\n1. load {small:,} runs (best of {len(rounds)} interleaved rounds, whole process)")
     print(f"   blockyard load        {t_load:7.2f} s")
     print(f"   naive csv+executemany {t_naive:7.2f} s   ratio {t_load / t_naive:5.2f}  (target <= 1.0); "
           f"median of the rounds' ratios {pair:5.2f} ({', '.join(f'{r[0] / r[1]:.2f}' for r in rounds)})")
