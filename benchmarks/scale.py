@@ -2,6 +2,7 @@
 
     python benchmarks/scale.py            # 1,000,000 and 10,000,000 runs (needs ~3 GB of disk, minutes)
     python benchmarks/scale.py --quick    # 100,000 and 1,000,000 runs, for a laptop
+    python benchmarks/scale.py --load-only    # item 1 alone (five interleaved rounds; --rounds N)
 
 Everything goes through the real `blockyard load` path and whole processes, and every figure is a
 ratio against a reference measured in the same run. It prints; it never asserts.
@@ -65,6 +66,7 @@ def main() -> None:
     ap.add_argument("--workdir", help="where to put the files (default: a temporary folder, removed after)")
     ap.add_argument("--repeat", type=int, default=3, help="repetitions of each timed analysis (best is kept)")
     ap.add_argument("--rounds", type=int, default=5, help="interleaved (load, naive, import) rounds of item 1")
+    ap.add_argument("--load-only", action="store_true", help="item 1 only (the load against its references)")
     a = ap.parse_args()
     small = 100_000 if a.quick else 1_000_000
     nights = 10
@@ -114,6 +116,11 @@ def main() -> None:
     print(f"   sqlite3 .import       {t_import:7.2f} s   ratio {t_load / t_import:5.2f}  (SQLite's own speed, the near limit)")
     print(f"   floor                 {t_floor:7.2f} s   {t_floor / t_naive:5.2f} of the naive reference: SQLite alone "
           "storing the parsed runs in our runs table (no start-up, reading, checks or summaries)")
+
+    if a.load_only:
+        if not a.workdir:
+            shutil.rmtree(work, ignore_errors=True)
+        return
 
     # 2. peak memory is flat in file size
     big_file = work / "all-nights.csv"
