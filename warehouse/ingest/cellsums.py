@@ -276,7 +276,8 @@ class Summing:
 
     The loading thread hands each chunk's reduced cells over with `add_reduced` and, after the
     last chunk, asks with `finish` for the statements that write them; `result` waits for the
-    sums and raises whatever the helper raised. The helper then turns the statements' rows into
+    sums (with ids given to `finish`: until the parts are all handed over, so take the parts
+    first) and raises whatever the helper raised. The helper then turns the statements' rows into
     Python objects part by part while the loading thread writes the parts before (`parts`):
     the conversion holds Python's lock, SQLite's work lets go of it, so the two overlap.
     """
@@ -368,19 +369,21 @@ class Summing:
                     continue
                 campaign_id, import_id = arg
                 statements = iter(())
-                if self._error is None:
-                    self.sums.merge_all()
-                    if campaign_id is not None:  # built slot by slot as the parts are handed over
-                        statements = self.sums.iter_statements(campaign_id, import_id)
-                self._ready.set()
-                if self._error is None and self._keys is not None:
-                    # while the loading thread makes the block rows from the merged sums; read
-                    # by it once the parts are all handed over
-                    self.repeated = self._keys.repeated()
+                if self._error is None and campaign_id is not None:
+                    # merged and built slot by slot as the parts are handed over: the loading
+                    # thread writes the first slot's cells while the next slot is merged
+                    statements = self.sums.iter_statements(campaign_id, import_id)
                 for sql, params, cells in _pieces(statements):
                     rows = params.tolist() if isinstance(params, np.ndarray) else params
                     if not self._hand((sql, rows, cells)):
                         return
+                if self._error is None:
+                    self.sums.merge_all()
+                self._ready.set()
+                if self._error is None and self._keys is not None:
+                    # while the loading thread writes the last parts; read by it once the
+                    # parts are all handed over
+                    self.repeated = self._keys.repeated()
                 self._hand(None)
                 return
             except BaseException as exc:  # noqa: BLE001 - raised again by result() or parts()

@@ -1337,27 +1337,29 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 rows_read=read, rows_loaded=loaded, rows_rejected=rejected, rows_skipped=skipped,
                 first_run_id=first_id if loaded else None, last_run_id=next_id - 1 if loaded else None,
                 first_finished=first_fin if loaded else None, last_finished=last_fin if loaded else None))
-            summaries = summing.result()
             from ..store import blocks
 
             if skipped:  # some rows did not go in: sum the cells from what was stored
                 from ..store import cells
 
+                summing.result()
                 cells.from_runs(conn, import_id, first_id, next_id - 1)
                 blocks.rebuild(conn, [import_id])
             else:
-                # the block rows are made while the helper builds the cell rows' statements
-                group_of = {iid: key[0] for key, iid in dims.instances.items()}
-                block_rows = blocks.from_sums(summaries, campaign_id, import_id, group_of)
                 if wh.is_sqlite:
+                    # the helper merges each slot's sums as its cell rows are wanted, then checks
+                    # the run hashes while the last parts are written
                     run_statements(conn.connection.driver_connection, summing.parts())
                     if quick and summing.repeated:  # (known once the parts are all handed over)
                         raise _StartOver()  # a run may appear twice in the file: find it exactly
+                    summaries = summing.result()
                 else:
                     from ..store import cells
 
+                    summaries = summing.result()
                     cells.write_rows(conn, wh.dialect, summaries.rows(campaign_id, import_id))
-                blocks.write(conn, block_rows)
+                group_of = {iid: key[0] for key, iid in dims.instances.items()}
+                blocks.write(conn, blocks.from_sums(summaries, campaign_id, import_id, group_of))
             report.rows_read, report.rows_loaded = read, loaded
             report.rows_rejected, report.rows_skipped = rejected, skipped
             report.import_id = import_id
