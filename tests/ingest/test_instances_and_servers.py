@@ -76,3 +76,16 @@ def test_postgresql_and_sqlite_hold_the_same_after_the_same_loads(cli, location,
         assert pg == sl, kind
     sums = "SELECT count(*), sum(seed), sum(status), sum(finished_at), sum(v1), sum(v2) FROM runs"
     assert query(location, sums) == query(lite, sums)
+
+
+def test_many_new_instances_in_one_file_keep_their_names_and_runs(cli, location, tmp_path):
+    # SQLite writes new instances several hundred to a statement: 1,203 of them fill two whole
+    # statements and part of a third; every run must point at the instance its row names
+    n = 1203
+    body = "".join(f"s,g{k % 7},inst-{k},{k},{k % 50}\n" for k in range(n))
+    rep = load_json(cli, write(tmp_path / "many.csv", "solver,group,instance,seed,pallets\n" + body))
+    assert rep["rows_loaded"] == n
+    got = query(location, "SELECT i.name, g.name, r.seed FROM runs r JOIN instances i ON i.id = r.instance_id "
+                          "JOIN groups g ON g.id = i.group_id ORDER BY r.seed")
+    assert got == [(f"inst-{k}", f"g{k % 7}", k) for k in range(n)]
+    assert query(location, "SELECT count(*), count(DISTINCT name) FROM instances") == [(n, n)]

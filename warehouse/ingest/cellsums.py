@@ -173,7 +173,7 @@ class CellSums:
                     t[:, i] = s[name]
             # columns with one value on every row (the host of a one-host file, the seeds per cell)
             # go into the statement as literals, as for runs
-            same = constant_columns(t, names, CELL_WHOLE)
+            same = constant_columns([(t[:, i], None) for i in range(width)], names, CELL_WHOLE)
             if same:
                 fixed.update(same)
                 t = np.ascontiguousarray(t[:, [i for i, c in enumerate(names) if c not in same]])
@@ -226,21 +226,33 @@ class CellSums:
 CELL_WHOLE = frozenset({"solver_id", "instance_id", "host_id"} | set(INTS))
 
 
-def constant_columns(table: np.ndarray, names: list[str], whole: frozenset) -> dict[str, str]:
-    """The columns of a float table with one value on every row, as SQL literals: NULL where every
-    value is NaN, the number where a whole-number column holds one value. A float column's value
-    stays bound (its decimal text need not read back as the same double)."""
+def constant_columns(columns: list, names: list[str], whole: frozenset) -> dict[str, str]:
+    """The columns with one value on every row, as SQL literals: NULL where every row is NULL,
+    the number where a whole-number column holds one value. A float column's value stays bound
+    (its decimal text need not read back as the same double).
+
+    `columns` are (values, the rows that are NULL) pairs; with no mask (None), a NaN is NULL.
+    """
     out: dict[str, str] = {}
-    if len(table) == 0:
-        return out
-    first = table[0]
-    for i, c in enumerate(names):
-        v = first[i]
-        col = table[:, i]
-        if np.isnan(v):
-            if np.isnan(col).all():
+    for (a, nulls), c in zip(columns, names):
+        if len(a) == 0:
+            return {}
+        if nulls is not None:
+            if nulls[0]:
+                if nulls.all():
+                    out[c] = "NULL"
+                continue
+            if nulls.any():
+                continue
+        elif a.dtype.kind == "f" and np.isnan(a[0]):
+            if np.isnan(a).all():
                 out[c] = "NULL"
-        elif c in whole and abs(v) < 2**53 and v == int(v) and (col == v).all():
+            continue
+        if c not in whole:
+            continue
+        v = a[0]
+        # (a NaN further down makes min and max NaN, and the comparison false)
+        if a.min() == v == a.max() and abs(v) < 2**53 and v == int(v):
             out[c] = str(int(v))
     return out
 
@@ -253,6 +265,21 @@ def run_statements(raw, parts) -> int:
         raw.executemany(sql, params.tolist() if isinstance(params, np.ndarray) else params)
         written += cells
     return written
+
+
+def put_unless_stopped(q, item, stop, wait: float) -> bool:
+    """Put `item` on the bounded queue `q`, looking every `wait` seconds whether `stop` (an
+    Event) is set meanwhile; False if it was, and the item was not put (a helper thread's
+    hand-over to a loading thread that may have given up)."""
+    import queue
+
+    while not stop.is_set():
+        try:
+            q.put(item, timeout=wait)
+            return True
+        except queue.Full:
+            continue
+    return False
 
 
 PART_ROWS = 20_000  # cell rows converted per part: the writer takes a part while the next is converted
@@ -342,15 +369,7 @@ class Summing:
                 self._thread.join(0.01)
 
     def _hand(self, item) -> bool:
-        import queue
-
-        while not self._stop.is_set():
-            try:
-                self._out.put(item, timeout=0.05)
-                return True
-            except queue.Full:
-                continue
-        return False
+        return put_unless_stopped(self._out, item, self._stop, 0.05)
 
     def _run(self) -> None:
         while True:

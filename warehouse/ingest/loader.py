@@ -33,7 +33,7 @@ from ..store import schema as S
 from ..store import value_columns
 from ..store.connect import Warehouse
 from . import values as V
-from .cellsums import Summing, constant_columns, reduce_chunk, run_statements
+from .cellsums import Summing, constant_columns, put_unless_stopped, reduce_chunk, run_statements
 from .layout import FIELDS, NAME_LIMIT, Layout
 from .scan import first_pass_of, take_early_read
 from .sources import SourceInfo, read_delimited, read_header, read_jsonl, read_parquet
@@ -703,7 +703,7 @@ class _Writer:
             # a prepared statement SQLite keeps (a large one, for hundreds of rows), so a file
             # whose constants change chunk after chunk (a new night, the next treatment) makes a
             # few texts, not one per chunk.
-            same = _constant_sources(sources, self.bound)
+            same = constant_columns(sources, self.bound, _WHOLE_COLUMNS)
             if self._same is not None:
                 same = {c: v for c, v in self._same.items() if same.get(c) == v}
             self._same = same
@@ -743,31 +743,6 @@ class _Writer:
             vals = rows.metrics[metric_of_slot[s]]
             columns.append(_with_nulls(vals, ~np.isnan(vals)))
         self.raw.executemany(self.sql_one, zip(*columns))
-
-
-def _constant_sources(sources: list, names: list[str]) -> dict[str, str]:
-    """The columns of a chunk with one value on every row, as SQL literals: NULL where every row
-    is NULL (or NaN), the number where a whole-number column holds one value. A float column's
-    value stays bound (its decimal text need not read back as the same double). The same
-    literals as `cellsums.constant_columns` gives for the float table of these columns."""
-    out: dict[str, str] = {}
-    for (a, nulls), c in zip(sources, names):
-        if len(a) == 0:
-            return {}
-        if c not in _WHOLE_COLUMNS:
-            if np.isnan(a[0]) and np.isnan(a).all():
-                out[c] = "NULL"
-            continue
-        if nulls is not None and nulls[0]:
-            if nulls.all():
-                out[c] = "NULL"
-            continue
-        if nulls is not None and nulls.any():
-            continue
-        v = a[0]
-        if a.min() == v == a.max() and abs(int(v)) < V.WHOLE_LIMIT:
-            out[c] = str(int(v))
-    return out
 
 
 @dataclass
@@ -964,15 +939,7 @@ class _Prefetch:
         self._thread.start()
 
     def _put(self, item) -> bool:
-        import queue
-
-        while not self._stop.is_set():
-            try:
-                self._q.put(item, timeout=0.1)
-                return True
-            except queue.Full:
-                continue
-        return False
+        return put_unless_stopped(self._q, item, self._stop, 0.1)
 
     def _run(self) -> None:
         try:
