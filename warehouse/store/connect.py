@@ -170,11 +170,15 @@ def open_warehouse(location: str | None = None) -> Warehouse:
 
 
 def migrations_dir() -> Path:
-    here = Path(__file__).resolve()
-    for candidate in (here.parents[2] / "migrations", here.parents[1] / "migrations"):
-        if (candidate / "env.py").exists():
-            return candidate
-    raise StorageError("the schema migrations are missing from this installation; reinstall Blockyard")
+    """The alembic folder: the package `warehouse.migrations` (the repository's `migrations/`)."""
+    try:
+        from .. import migrations
+    except ImportError:
+        migrations = None
+    where = Path(migrations.__file__).parent if migrations is not None and migrations.__file__ else None
+    if where is None or not (where / "env.py").exists() or not (where / "versions").is_dir():
+        raise StorageError("the schema migrations are missing from this installation; reinstall Blockyard")
+    return where
 
 
 def _alembic_config(conn):
@@ -191,8 +195,17 @@ def migrate(wh: Warehouse, revision: str = "head") -> None:
     from alembic import command
 
     with wh.write() as conn:
-        with conn.begin():
-            command.upgrade(_alembic_config(conn), revision)
+        if wh.is_sqlite:
+            # a migration that rebuilds a table drops the old one while other tables refer to it:
+            # SQLite's prescribed way is foreign keys off around the transaction (they cannot be
+            # switched inside one), and the rebuild copies every id as it was
+            conn.connection.dbapi_connection.execute("PRAGMA foreign_keys = OFF")  # no autobegin
+        try:
+            with conn.begin():
+                command.upgrade(_alembic_config(conn), revision)
+        finally:
+            if wh.is_sqlite:
+                conn.connection.dbapi_connection.execute("PRAGMA foreign_keys = ON")
 
 
 PAGE_BYTES = 16384  # new SQLite warehouses; a file keeps the page size it was made with

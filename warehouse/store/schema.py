@@ -23,7 +23,7 @@ from sqlalchemy import (
 )
 
 # The alembic revision this module describes; a test checks it equals the migrations' head.
-SCHEMA_REVISION = "0007"
+SCHEMA_REVISION = "0008"
 
 NAME = 255  # longest name accepted for solvers, instances, groups, hosts, metrics
 
@@ -45,7 +45,9 @@ imports = Table(
     Column("id", Integer, primary_key=True),
     Column("campaign_id", Integer, ForeignKey("campaigns.id"), nullable=False),
     Column("file_name", Text, nullable=False),
-    Column("sha256", String(64), nullable=False, unique=True),
+    # unique with the import it replaces (revision 0008): `load --again` stores a wholly
+    # retracted file's bytes anew, and each import is replaced at most once
+    Column("sha256", String(64), nullable=False),
     Column("layout", Text, nullable=False, server_default=""),
     Column("rows_read", Integer, nullable=False),
     Column("rows_loaded", Integer, nullable=False),
@@ -60,6 +62,9 @@ imports = Table(
     Column("last_run_id", BigInteger, nullable=True),
     Column("first_finished", BigInteger, nullable=True),
     Column("last_finished", BigInteger, nullable=True),
+    # (revision 0008) the wholly retracted import this one loads again (`load --again`)
+    Column("replaces_import_id", Integer, ForeignKey("imports.id"), nullable=True),
+    Index("ux_imports_reload", "sha256", text("coalesce(replaces_import_id, 0)"), unique=True),
 )
 
 solvers = Table(
@@ -188,6 +193,8 @@ analyses = Table(
     Column("result_digest", String(64), nullable=False),
     Column("software", Text, nullable=False),
     Column("created_at", BigInteger, nullable=False),
+    # (revision 0008) the stale analysis this one re-ran and took the claims of (`recheck --renew`)
+    Column("renewed_from_id", Integer, ForeignKey("analyses.id"), nullable=True),
 )
 
 claims = Table(

@@ -1,0 +1,1 @@
+"""The schema migrations (alembic), shipped inside the package as `warehouse.migrations`."""
