@@ -461,3 +461,112 @@ def test_an_analysis_kept_with_the_earlier_fingerprint_rechecks_unchanged(campai
     assert doc["status"] == "unchanged" and doc["stored_fingerprint"] == old_fp
     load(cli, tmp_path, "more.csv", runs_of("1.0", "f1", 0.0, random.Random(99), seeds=(3,)))
     assert recheck(cli, aid)["status"] in ("data-changed", "conclusion-changed")
+
+
+# --- recall marks what it cuts -------------------------------------------------------------------
+
+def test_recall_marks_a_cut_claim_with_an_ellipsis(campaign, cli):
+    aid = blocktest(cli, "family=f1")["analysis_id"]
+    long_claim = ("stk 2.0 packs the f1 orders onto about two pallets fewer than stk 1.0 on every group, "
+                  "seed and instance we ran")
+    assert cli("keep", long_claim, "--analysis", str(aid)).code == 0
+    row = next(l for l in cli("recall").out.splitlines() if l.startswith(str(aid)))
+    assert "stk 2.0 packs the f1 orders onto" in row and "…" in row and long_claim not in row
+    # with a second claim the count stays whole after the cut text
+    assert cli("keep", "short", "--analysis", str(aid)).code == 0
+    row = next(l for l in cli("recall").out.splitlines() if l.startswith(str(aid)))
+    assert "… (+1 more)" in row
+    # JSON and recall ID keep the claim whole
+    assert recall_one(cli, aid)["claims"][0]["text"] == long_claim
+    assert long_claim in cli("recall", str(aid)).out
+
+
+def test_recall_leaves_text_that_fits_as_it_is(campaign, cli):
+    aid = blocktest(cli, "family=f1")["analysis_id"]
+    assert cli("keep", "2.0 needs fewer pallets", "--analysis", str(aid), "--tag", "paper").code == 0
+    row = next(l for l in cli("recall").out.splitlines() if l.startswith(str(aid)))
+    assert "2.0 needs fewer pallets" in row and "…" not in row
+
+
+def test_cut_says_when_it_shortened():
+    from warehouse.present.ledger import cut
+
+    assert cut("pallets vs stk@1.0", 70) == "pallets vs stk@1.0"
+    assert cut("x" * 70, 70) == "x" * 70
+    shortened = cut("x" * 71, 70)
+    assert len(shortened) == 70 and shortened.endswith("…")
+    assert cut("two\nlines", 20) == "two lines"  # a break inside a claim would split the table's row
+
+
+# --- plan --from: the source's state and the blocks its slice holds -------------------------------
+
+def plan_json(cli, *argv) -> dict:
+    r = cli("plan", *argv, "--json")
+    assert r.code == 0, r
+    return r.json()
+
+
+def test_plan_from_a_stale_analysis_says_so(campaign, cli):
+    aid = blocktest(cli, "family=f1")["analysis_id"]
+    fresh = plan_json(cli, "--effect", "0.5", "--from", str(aid))
+    assert fresh["from"]["stale"] is False and fresh["from"]["state"] == "fresh"
+    assert not any("stale" in w for w in fresh["warnings"])
+    assert "stale" not in cli("plan", "--effect", "0.5", "--from", str(aid)).out
+
+    assert cli("retract", "--slice", "family=f1 stk@2.0 seed=1", "--reason", "build 2.0 mis-counted").code == 0
+    doc = plan_json(cli, "--effect", "0.5", "--from", str(aid))
+    assert doc["from"]["stale"] is True and doc["from"]["stale_runs"] == 12
+    assert any(w.startswith(f"analysis {aid} is stale") for w in doc["warnings"])
+    text = cli("plan", "--effect", "0.5", "--from", str(aid)).out
+    assert f"caution   analysis {aid} is stale: 12 of the runs" in text
+    # the F-test plan has its cautions too
+    doc = plan_json(cli, "--means", "40,39,38.5", "--from", str(aid))
+    assert doc["from"]["stale"] is True and any("is stale" in w for w in doc["warnings"])
+
+
+def test_plan_from_says_how_many_more_blocks_it_needs(campaign, cli):
+    aid = blocktest(cli, "family=f1")["analysis_id"]  # 6 blocks: f1/g1 .. f1/g6
+    # d = 0.5 at 80 % power, two-sided 5 %: 34 blocks (Cohen's tables, from memory; as in test_analysis_commands)
+    doc = plan_json(cli, "--effect", "0.5", "--from", str(aid))
+    assert doc["blocks_needed"] == 34
+    assert doc["from"]["blocks_held"] == 6 and doc["from"]["blocks_more"] == 28
+    text = cli("plan", "--effect", "0.5", "--from", str(aid)).out
+    assert f"needs 34 blocks; the slice of analysis {aid} holds 6: 28 more" in text
+    # a difference of many sds needs few blocks: the slice holds enough
+    doc = plan_json(cli, "--effect", "3", "--from", str(aid))
+    assert doc["blocks_needed"] <= 6 and doc["from"]["blocks_more"] == 0
+    assert f"the slice of analysis {aid} holds 6 blocks: enough" in cli("plan", "--effect", "3", "--from", str(aid)).out
+    # without --from there is no slice to count
+    assert "blocks_more" not in str(plan_json(cli, "--effect", "0.5"))
+
+
+def test_a_plan_from_an_analysis_rechecks_unchanged(campaign, cli):
+    aid = blocktest(cli, "family=f1")["analysis_id"]
+    for argv in (("--effect", "0.5"), ("--means", "40,39,38.5"), ("--means", "40,39", "--blocks", "8")):
+        plan = plan_json(cli, *argv, "--from", str(aid))["analysis_id"]
+        assert recheck(cli, plan)["status"] == "unchanged", argv
+
+
+def test_a_plan_kept_before_the_source_notes_still_rechecks_unchanged(campaign, cli, location):
+    # a plan kept by an earlier version holds no state or block counts of its source
+    from warehouse import ledger
+    from warehouse.store.connect import open_warehouse
+
+    aid = blocktest(cli, "family=f1")["analysis_id"]
+    plan = plan_json(cli, "--means", "40,39,38.5", "--from", str(aid))["analysis_id"]
+    w = open_warehouse(location)
+    try:
+        with w.engine.begin() as c:
+            row = c.execute(text("SELECT kind, slice_text, settings, observations, fingerprint, result FROM analyses "
+                                 "WHERE id = :i"), {"i": plan}).one()
+            doc = json.loads(row.result)
+            for key in ("state", "stale", "stale_runs", "blocks_held", "blocks_more"):
+                doc["from"].pop(key)
+            doc.pop("warnings")
+            old = json.dumps(doc)
+            dig = ledger.digest(row.kind, row.slice_text, row.settings, row.observations, row.fingerprint, old)
+            c.execute(text("UPDATE analyses SET result = :r, result_digest = :d WHERE id = :i"),
+                      {"r": old, "d": dig, "i": plan})
+    finally:
+        w.close()
+    assert recheck(cli, plan)["status"] == "unchanged"

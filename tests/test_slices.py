@@ -346,6 +346,52 @@ def test_unknown_names_are_one_line_errors_with_the_nearest_known_value(cli, tmp
     assert "slice term 2 'vesion>=1.5': unknown key 'vesion' (did you mean 'version'?)" in r.err
 
 
+# --- whatever a term holds, its error stays one line -------------------------------------------
+
+LONG = 10_000  # characters: a value pasted by mistake
+NASTY_SLICES = [
+    pytest.param('solver="a\nb"', id="quoted-newline"),
+    pytest.param("solver=a\nb", id="bare-newline"),
+    pytest.param('solver~"a\nb"', id="glob-newline-no-runs"),
+    pytest.param("solver=a\tb", id="tab"),
+    pytest.param('solver="\x1b[31mred\x1b[0m"', id="terminal-escape"),
+    pytest.param('status="ok\r\nfailed"', id="carriage-return"),
+    pytest.param('host="bell\x07\x00nul"', id="bell-and-nul"),
+    pytest.param('group="g1\x85"', id="next-line-character"),
+    pytest.param('solver="pallets\u2028stacker"', id="unicode-line-separator"),
+    pytest.param('solver="\u202eevil"', id="bidi-override"),
+    pytest.param('solver="\udcff"', id="lone-surrogate"),  # what undecodable bytes in argv become
+    pytest.param('solver="日本語 パレット"', id="unicode-letters"),
+    pytest.param("""solver="it's \\"odd\\"" campaign='"'""", id="quotes"),
+    pytest.param('solver="' + "x" * LONG + '"', id="long-quoted"),
+    pytest.param("solver=" + "y" * LONG, id="long-bare"),
+    pytest.param("solver~" + "z" * LONG, id="long-glob-no-runs"),
+    pytest.param("k" * LONG + "=1", id="long-key"),
+    pytest.param("seed=" + "9" * LONG, id="long-seed"),
+    pytest.param("seed=" + "0" * LONG + "1", id="long-seed-of-zeros"),
+    pytest.param("since=" + "7" * LONG + "x", id="long-date"),
+    pytest.param('"' + "q" * LONG, id="long-unclosed-quote"),
+    pytest.param('"stacker@1.4\n"', id="treatment-with-newline"),
+    pytest.param("since=\"2026-11-01\n\"", id="date-with-newline"),
+]
+
+
+@pytest.mark.parametrize("text", NASTY_SLICES)
+def test_a_slice_error_is_one_short_line_whatever_the_term_holds(cli, tmp_path, text):
+    """Through the command line: one line on stderr, exit 2, the term escaped (no raw control or
+    line-breaking character: str.splitlines knows them all) and cut to a few dozen characters."""
+    assert cli("load", _write(tmp_path / "a.csv", _rows("stacker", "1.4", 0.0) + _rows("packer", "1.4", 1.0)),
+               "--campaign", "oct").code == 0
+    for argv in (("peek", "--slice", text), ("blocktest", "--slice", text, "--metric", "pallets")):
+        res = cli(*argv)
+        assert res.code == 2 and res.out == "", res
+        assert len(res.err.splitlines()) == 1 and res.err.endswith("\n"), res
+        line = res.err.rstrip("\n")
+        assert line.startswith("blockyard: ") and "internal error" not in line, line
+        assert line.isprintable(), line  # no control, format or separator character, no lone surrogate
+        assert len(line) < 600, len(line)  # a 10 kB term is cut (with '...')
+
+
 def test_version_ranges_select_in_natural_order(cli, tmp_path):
     rows = []
     for v in ("1.9", "1.10", "2.0rc1", "2.0"):

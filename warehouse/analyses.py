@@ -84,7 +84,7 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
     """The blocked analysis of `metric` over slice `sl`. With `quick`, the collapse may run in SQL
     and leave out the per-instance table (the generalized design needs it; re-checks of analyses
     kept by Blockyard 0.1 need the pandas collapse for their fingerprint)."""
-    from .analyze.blocked import generalized_anova, incomplete_anova, rcbd_anova
+    from .analyze.blocked import generalized_anova, incomplete_anova, rcbd_anova, refuse_overflow
     from .cautions import design_cautions, host_caution, pseudo_replication
 
     if transform not in ("none", "log", "boxcox", "rank"):
@@ -98,6 +98,7 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
         raise DesignError(f"the slice holds one treatment ({', '.join(c.treatments)}); a blocked comparison needs two or more")
     if c.obs.empty:
         raise DesignError("no block has every treatment; use --holes keep to analyse the incomplete design, or narrow the slice")
+    refuse_overflow(c.obs["value"], f"metric {c.metric}")  # before any sum of squares, cautions' too
     warnings = list(design_cautions(c)) + host_caution(c) + pseudo_replication(c)
     if c.dropped_blocks and settings.holes == "drop":
         warnings.append(f"{len(c.dropped_blocks)} blocks with holes were dropped (complete-case analysis): "
@@ -242,6 +243,7 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
                adjust: str = "holm", better: str | None = None, margin: str | None = None,
                confidence: float = 0.95, quick: bool = True) -> VersusResult:
     from .analyze.baseline import dunnett_vs_baseline, paired_vs_baseline
+    from .analyze.blocked import refuse_overflow
     from .cautions import design_cautions, host_caution, pseudo_replication
 
     if method not in ("dunnett", "paired-t", "wilcoxon"):
@@ -267,6 +269,7 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
         raise DesignError("the slice holds only the baseline; add the treatments to compare with it")
     if c.obs.empty:
         raise DesignError("no block holds the baseline and every other treatment; narrow the slice to common blocks")
+    refuse_overflow(c.obs["value"], f"metric {c.metric}")
     sense_better = "lower" if c.sense == "min" else "higher"
     word = better or sense_better
     alternative = "two-sided" if better is None else ("less" if better == "lower" else "greater")
@@ -309,6 +312,11 @@ class PlanResult:
     options: dict = field(default_factory=dict)
 
     kind = "plan"
+
+    @property
+    def warnings(self) -> list[str]:
+        """The plan's own cautions, which the front ends add to (a read-only warehouse, say)."""
+        return self.plan.warnings
 
     def to_dict(self) -> dict:
         d = self.plan.to_dict()

@@ -91,19 +91,26 @@ def cmd_peek(session: Session, a) -> PeekResult:
         return PeekResult(coverage(conn, slice_of(session, a), metric_of(session, a), settings), getattr(a, "limit", None))
 
 
-def _record(session: Session, result, sl, settings: Collapse) -> None:
+def _record(session: Session, result, sl, settings: Collapse | None) -> None:
+    """Keep the analysis in the ledger; on a read-only or full warehouse, say once that it is not
+    kept and let the numbers stand. A plan has no collapse settings (None)."""
     from . import ledger
 
     from .store.connect import database_trouble
 
     wh = session.warehouse()
+    if wh.read_only:  # known when it was opened: no write is tried, and it is said once
+        result.warnings.append(f"the warehouse is read-only here ({wh.read_only}): "
+                               "this analysis is not kept in the ledger")
+        return
     try:
-        result.analysis_id = ledger.record(wh, result, sl, {"collapse": settings.to_dict(), "options": result.options})
-    except Exception as exc:  # a read-only or full warehouse: the numbers still stand, unkept
+        kept = {"options": result.options} if settings is None else {"collapse": settings.to_dict(), "options": result.options}
+        result.analysis_id = ledger.record(wh, result, sl, kept)
+    except Exception as exc:  # a full disk, or a write refused: the numbers still stand, unkept
         trouble = database_trouble(exc, wh.display)
         if trouble is None:
             raise
-        result.warnings.append(f"this analysis was not kept in the ledger: {trouble}")
+        result.warnings.append(f"this analysis is not kept in the ledger: {trouble}")
         return
     session.last_analysis = result.analysis_id
 
@@ -191,7 +198,8 @@ def _plan_args(p):
     g.add_argument("--means", metavar="A,B,...", help="treatment means for the RCBD F test (with --sigma or --from)")
     p.add_argument("--sd", type=float, metavar="S", help="sd of block differences (with --delta)")
     p.add_argument("--sigma", type=float, metavar="S", help="residual standard deviation of the block model (with --means)")
-    p.add_argument("--from", dest="from_id", type=int, metavar="ANALYSIS", help="take sigma from a stored analysis (blocktest or Dunnett versus)")
+    p.add_argument("--from", dest="from_id", metavar="ANALYSIS", help="take sigma from a stored analysis (blocktest or "
+                   "Dunnett versus); the plan also says how many blocks its slice holds")
     p.add_argument("--blocks", type=int, metavar="B", help="with --means: the power reached with this many blocks instead")
     p.add_argument("--power", type=float, default=0.8, help="target power (default 0.8)")
     p.add_argument("--alpha", type=float, default=0.05, help="family-wise significance level (default 0.05)")
@@ -206,23 +214,25 @@ def cmd_plan(session: Session, a):
     from . import ledger
     from .analyses import run_plan
 
-    source = None
+    source = st = None
     if a.from_id is not None:
-        st = ledger.get(session.warehouse(), a.from_id, with_state=False)
+        # with its state: a plan on a stale analysis's sigma says so
+        st = ledger.get(session.warehouse(), ledger.parse_id(a.from_id, "--from"))
         source = dict(st.result)
         source["analysis_id"] = st.id
     res = run_plan(effect=a.effect, delta=a.delta, sd=a.sd, source=source, power=a.power, alpha=a.alpha,
                    comparisons=a.comparisons, means=_floats(a.means) if a.means else None, sigma=a.sigma,
                    blocks=a.blocks)
+    if st is not None:
+        ledger.note_source(res, st.result, st.kind, st.state, st.stale_runs)
     # a plan is kept like any analysis, so that a claim made on it ("we need 34 blocks") is tied to
     # it and not to whatever ran before; without a warehouse it is only printed
     from .errors import StorageError
     from .select.slices import Slice
 
     try:
-        wh = session.warehouse()
+        session.warehouse()
     except StorageError:
         return res
-    res.analysis_id = ledger.record(wh, res, Slice(), {"options": res.options})
-    session.last_analysis = res.analysis_id
+    _record(session, res, Slice(), None)
     return res

@@ -35,6 +35,24 @@ class _Parser(argparse.ArgumentParser):
         where = f"{cmd}: " if cmd else ""
         raise ArgumentMistake(f"blockyard: {where}{message} (see {self.prog} --help)")
 
+    def parse_args(self, args=None, namespace=None):
+        # argparse's own "unrecognized arguments" names neither the command nor the option meant
+        a, extras = self.parse_known_args(args, namespace)
+        if extras:
+            from .commands import unknown_words
+
+            command = getattr(a, "command", None)
+            parser = self._command_parser(command) or self
+            where = f"{command}: " if command else ""
+            raise ArgumentMistake(f"blockyard: {where}{unknown_words(parser, extras)} (see {parser.prog} --help)")
+        return a
+
+    def _command_parser(self, name):
+        for action in self._actions:
+            if isinstance(action, argparse._SubParsersAction) and name in action.choices:
+                return action.choices[name]
+        return None
+
 
 def build_parser():
     from . import __version__
@@ -88,10 +106,10 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
         status = getattr(result, "exit_status", 0)
         if status and not getattr(a, "json", False):
             for line in getattr(result, "errors", lambda: [])():
-                err.write(f"blockyard: {line}\n")
+                err.write(f"blockyard: {_one_line(line)}\n")
         return status
     except BlockyardError as exc:
-        err.write(f"blockyard: {exc}\n")
+        err.write(f"blockyard: {_one_line(str(exc))}\n")
         return exc.exit_status
     except KeyboardInterrupt:
         err.write("blockyard: interrupted; nothing half-written was kept\n")
@@ -99,13 +117,11 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
     except Exception as exc:  # a defect of ours, not the user's: say so, keep the traceback on request
         if isinstance(exc, BrokenPipeError):  # output piped into head: main() leaves quietly
             raise
-        from .store.connect import database_trouble
+        from .store.connect import database_trouble, shown
 
-        from .store.connect import shown
-
-        trouble = database_trouble(exc, shown(session.where))
+        trouble = database_trouble(exc, shown(session.where), session.read_only)
         if trouble is not None:
-            err.write(f"blockyard: {trouble}\n")
+            err.write(f"blockyard: {_one_line(str(trouble))}\n")
             return trouble.exit_status
         if os.environ.get("BLOCKYARD_DEBUG"):
             raise
@@ -114,6 +130,13 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
         return 1
     finally:
         session.close()
+
+
+def _one_line(message: str) -> str:
+    """A message stays one line whatever text of the user's it quotes (a file name with a newline)."""
+    from .select.slices import brief
+
+    return brief(message, None)
 
 
 def _json_default(o):

@@ -24,7 +24,7 @@ from sqlalchemy import and_, case, func, select
 
 from .errors import DesignError, InputError
 from .select.resolve import Dims, cells_can_answer, condition
-from .select.slices import Slice
+from .select.slices import Slice, brief
 from .session import Collapse
 from .store import schema as S
 from .store.blocks import W_MOD  # 2**31 - 1: weighted id terms and their sums stay exact in SQL
@@ -186,7 +186,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
         query, names = _cell_query(cond, v, extremes)
     agg = rows_frame(conn.execute(query), columns=["solver_id", "instance_id", *names])
     if agg.empty:
-        raise DesignError(f"no runs in slice '{sl.text or '(everything)'}'; see blockyard inventory for what is stored")
+        raise DesignError(f"no runs in slice '{brief(sl.text, 200) or '(everything)'}'; see blockyard inventory for what is stored")
     for c in EXTREME_COLS:
         if c not in agg:
             agg[c] = np.nan
@@ -269,7 +269,7 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
             conn.rollback()
             return None
     if not rows:
-        raise DesignError(f"no runs in slice '{sl.text or '(everything)'}'; see blockyard inventory for what is stored")
+        raise DesignError(f"no runs in slice '{brief(sl.text, 200) or '(everything)'}'; see blockyard inventory for what is stored")
     label = {int(sid): dims.treatment(int(sid)) for sid in {r.solver_id for r in rows}}
     if len(set(label.values())) != len(label):
         return None  # two solvers under one label: the pandas way groups them

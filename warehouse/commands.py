@@ -65,6 +65,35 @@ def add_json(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout instead of text")
 
 
+def unknown_words(parser: argparse.ArgumentParser, extras: list[str]) -> str:
+    """What a parser could not place, said in one line: the first mistyped option with the nearest
+    real one ("--metirc: did you mean --metric?"). The CLI and the shell both say it this way."""
+    from difflib import get_close_matches
+
+    from .select.slices import brief
+
+    known = sorted({s for action in parser._actions for s in action.option_strings if s.startswith("--")})
+    for word in extras:
+        name = word.split("=", 1)[0]
+        if not name.startswith("-") or _is_number(name):
+            continue
+        # the names are compared without their dashes, which would make every pair look alike
+        bare = {k.lstrip("-"): k for k in known}
+        near = [bare[k] for k in get_close_matches(name.lstrip("-"), list(bare), n=2)]
+        if near:
+            return f"{brief(name)}: did you mean {' or '.join(near)}?"
+        return f"{brief(name)}: no such option"
+    return f"unexpected {'argument' if len(extras) == 1 else 'arguments'}: {brief(' '.join(extras))}"
+
+
+def _is_number(word: str) -> bool:
+    try:
+        float(word)
+    except ValueError:
+        return False
+    return True
+
+
 # --- init, upgrade -----------------------------------------------------------------------------
 
 def _init_args(p):
@@ -112,6 +141,8 @@ def _load_args(p):
     p.add_argument("--skip-bad", action="store_true", help="load the good rows; write rejected ones with a reason")
     p.add_argument("--rejects", metavar="FILE", help="where --skip-bad writes rejected rows (default: beside the source)")
     p.add_argument("--dry-run", action="store_true", help="read and check everything, print the mapping, store nothing")
+    p.add_argument("--again", action="store_true",
+                   help="load a file loaded before whose earlier import is wholly retracted (e.g. with a corrected layout)")
     add_json(p)
 
 
@@ -119,13 +150,18 @@ def _load_args(p):
 class LoadResult:
     reports: list
     dry_run: bool
+    created: str | None = None  # the warehouse this load created (a SQLite path that held no file)
+    unmade: str | None = None  # a dry run's warehouse path that holds no file yet (checked against an empty one)
 
     @property
     def exit_status(self) -> int:
         return 2 if any(r.status == "refused" for r in self.reports) else 0
 
     def to_dict(self) -> dict:
-        return {"imports": [r.to_dict() for r in self.reports]}
+        doc = {"imports": [r.to_dict() for r in self.reports]}
+        if self.created:
+            doc["created_warehouse"] = self.created
+        return doc
 
     def errors(self) -> list[str]:
         return [r.message for r in self.reports if r.status == "refused"]
@@ -140,25 +176,83 @@ class LoadResult:
          "blockyard load runs-nov.csv --campaign nov-tuning --layout rack-b.toml")
 @args(_load_args)
 def cmd_load(session: Session, a) -> LoadResult:
-    from .errors import BlockyardError
     from .ingest.layout import read_layout
-    from .ingest.loader import FileReport, load_file
+    from .ingest.loader import check_campaign
 
-    layout = read_layout(a.layout)
-    wh = session.warehouse()
-    reports = []
+    # every option first: a mistake in one is told before any file is read or compared with the
+    # files loaded before (a file loaded already is no reason to keep quiet about a broken layout)
     if a.rejects and len(a.files) > 1:
         raise InputError("--rejects names one file; with several sources leave it out (each gets its own beside it)")
+    check_campaign(a.campaign)
+    layout = read_layout(a.layout)
+    missing = _missing_sqlite_warehouse(session)
+    if missing is None:
+        wh = session.warehouse()
+        if wh.read_only and not a.dry_run:
+            raise StorageError(f"cannot load into warehouse {wh.display}: it is read-only here ({wh.read_only}); "
+                               "nothing was stored")
+        return LoadResult(_load_each(wh, a, layout), a.dry_run)
+    if a.dry_run:  # stores nothing, so makes no warehouse either: checks against an empty one aside
+        import tempfile
+        from pathlib import Path
+
+        from .store.connect import init_warehouse
+
+        with tempfile.TemporaryDirectory(prefix="blockyard-dry-run-") as aside:
+            wh = init_warehouse(str(Path(aside) / "empty.db"))
+            try:
+                return LoadResult(_load_each(wh, a, layout), True, unmade=missing)
+            finally:
+                wh.close()
+    from .store.connect import init_warehouse
+
+    try:
+        made = init_warehouse(missing)  # as `blockyard init` would
+        created = made.display
+        made.close()
+    except StorageError:
+        if not _missing_sqlite_warehouse(session):  # another load made it meanwhile: use it
+            created = None
+        else:
+            raise
+    return LoadResult(_load_each(session.warehouse(), a, layout), a.dry_run, created=created)
+
+
+def _missing_sqlite_warehouse(session: Session) -> str | None:
+    """The SQLite path the load goes to when no file is there yet, for the load to create the
+    warehouse in; None when one is there (or it is a server: a database there is made by `init`,
+    whose own message says so). A path in a folder that does not exist is refused here."""
+    from pathlib import Path
+
+    where = session.where
+    if "://" in where:  # a server URL (store.connect reads locations the same way)
+        return None
+    path = Path(where).expanduser()
+    if path.exists() or path.is_symlink():
+        return None
+    if not path.parent.is_dir():
+        raise StorageError(f"no folder {path.parent} for warehouse {where}; create the folder first, "
+                           "or give -w a path in a folder that exists")
+    return where
+
+
+def _load_each(wh, a, layout) -> list:
+    """Each file in turn; a refused one is reported and does not stop the others."""
+    from .errors import BlockyardError
+    from .ingest.loader import FileReport, load_file
+
+    reports = []
     for f in a.files:
         progress = _progress_bar(f) if (sys.stderr.isatty() and not getattr(a, "json", False)) else None
         try:
             with progress or _Null() as bar:
                 rep = load_file(wh, f, a.campaign, layout, skip_bad=a.skip_bad, dry_run=a.dry_run,
-                                rejects=a.rejects, progress=bar.update if progress else None)
+                                rejects=a.rejects, progress=bar.update if progress else None,
+                                again=getattr(a, "again", False))  # (the demo's own steps leave it out)
         except BlockyardError as exc:
             rep = FileReport(file=f, status="refused", campaign=a.campaign, message=str(exc))
         reports.append(rep)
-    return LoadResult(reports, a.dry_run)
+    return reports
 
 
 class _Null:
@@ -180,10 +274,18 @@ def _progress_bar(name: str):
 def _inventory_args(p):
     from .inventory import KINDS
 
-    p.add_argument("kind", nargs="?", choices=KINDS, metavar="LISTING",
+    p.add_argument("kind", nargs="?", choices=_Listings(KINDS), metavar="LISTING",
                    help=f"list one kind of thing: {', '.join(KINDS)} (default: counts only)")
     p.add_argument("--limit", type=int, help="show at most this many rows")
     add_json(p)
+
+
+class _Listings(list):
+    """The listings, for help and shell completion; argparse takes any word, so that inventory()
+    answers a wrong one in its own words (with the nearest listing)."""
+
+    def __contains__(self, item) -> bool:
+        return True
 
 
 @dataclass

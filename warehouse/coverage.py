@@ -8,7 +8,7 @@ from sqlalchemy import case, func, select
 
 from .errors import DesignError
 from .select.resolve import Dims, condition
-from .select.slices import Slice
+from .select.slices import Slice, brief
 from .store import schema as S
 
 R = S.runs
@@ -47,7 +47,7 @@ def coverage(conn, sl: Slice, metric: str | None = None, collapse_settings=None)
          .group_by(R.c.solver_id, S.instances.c.group_id))
     frame = rows_frame(conn.execute(q), columns=["solver_id", "group_id", "runs", "instances", *("n_" + k for k in S.STATUS_CODES)])
     if frame.empty:
-        raise DesignError(f"no runs in slice '{sl.text or '(everything)'}'; see blockyard inventory for what is stored")
+        raise DesignError(f"no runs in slice '{brief(sl.text, 200) or '(everything)'}'; see blockyard inventory for what is stored")
     frame["treatment"] = [dims.treatment(s) for s in frame["solver_id"]]
     frame["block"] = [dims.block(g) for g in frame["group_id"]]
     frame["failed"] = frame["n_timeout"] + frame["n_failed"] + frame["n_infeasible"]

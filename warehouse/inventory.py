@@ -33,6 +33,11 @@ def _when(epoch) -> str:
     return time.strftime("%Y-%m-%d %H:%M", time.gmtime(epoch)) if epoch else ""
 
 
+def _moment(epoch) -> str | None:
+    """A run's finish time as a since= or until= slice value takes it, to the second."""
+    return time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(epoch)) if epoch is not None else None
+
+
 def counts(conn) -> dict[str, int]:
     n = lambda t: conn.execute(select(func.count()).select_from(t)).scalar()  # noqa: E731
     # runs are never deleted, so the imports' own counts add up to the table without scanning it
@@ -40,8 +45,10 @@ def counts(conn) -> dict[str, int]:
     retracted = conn.execute(
         select(func.coalesce(func.sum(S.retractions.c.runs), 0)).where(S.retractions.c.undone_at.is_(None))
     ).scalar()
+    # a solver is a name; a treatment is a solver at one version (one row of the solvers table)
+    names = conn.execute(select(func.count(func.distinct(S.solvers.c.name)))).scalar()
     return {
-        "campaigns": n(S.campaigns), "solvers": n(S.solvers), "families": n(S.families),
+        "campaigns": n(S.campaigns), "solvers": int(names), "treatments": n(S.solvers), "families": n(S.families),
         "groups": n(S.groups), "instances": n(S.instances), "metrics": n(S.metrics),
         "imports": n(S.imports), "hosts": n(S.hosts), "runs": total - int(retracted),
         "retracted": int(retracted),
@@ -54,7 +61,11 @@ def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) 
 
         near = get_close_matches(kind, KINDS, n=1)
         hint = f" (did you mean '{near[0]}'?)" if near else ""
-        raise InputError(f"inventory: unknown listing '{kind}'{hint}; choose from {', '.join(KINDS)}")
+        if kind.lower().startswith("treatment"):
+            hint = " (inventory solvers lists them: each solver with its versions)"
+        from .select.slices import brief
+
+        raise InputError(f"inventory: unknown listing '{brief(kind)}'{hint}; choose from {', '.join(KINDS)}")
     with wh.engine.connect() as conn:
         inv = Inventory(wh.display, counts(conn), kind)
         if kind is None:
@@ -66,23 +77,33 @@ def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) 
                  .join(first, (first.c.import_id == cs.c.import_id) & (first.c.slot == cs.c.slot)).subquery())
         if kind == "campaigns":
             per = select(cells.c.campaign_id, func.sum(cells.c.n).label("n")).group_by(cells.c.campaign_id).subquery()
-            q = (select(S.campaigns.c.name, func.coalesce(per.c.n, 0), S.campaigns.c.created_at)
-                 .select_from(S.campaigns.outerjoin(per, per.c.campaign_id == S.campaigns.c.id))
+            # the first and last finish time of the imports that hold live runs (the imports' own
+            # time ranges, revision 0004; a wholly retracted import has no cell rows)
+            live = select(cs.c.import_id).where(cs.c.import_id == S.imports.c.id).exists()
+            times = (select(S.imports.c.campaign_id, func.min(S.imports.c.first_finished).label("first"),
+                            func.max(S.imports.c.last_finished).label("last"))
+                     .where(live).group_by(S.imports.c.campaign_id).subquery())
+            q = (select(S.campaigns.c.name, func.coalesce(per.c.n, 0), S.campaigns.c.created_at, times.c.first,
+                        times.c.last)
+                 .select_from(S.campaigns.outerjoin(per, per.c.campaign_id == S.campaigns.c.id)
+                              .outerjoin(times, times.c.campaign_id == S.campaigns.c.id))
                  .order_by(S.campaigns.c.name))
-            inv.headers = ["campaign", "runs", "created"]
-            inv.rows = [[a, int(b), _when(c)] for a, b, c in conn.execute(q)]
+            inv.headers = ["campaign", "runs", "created", "first run", "last run"]
+            inv.rows = [[a, int(b), _when(c), _moment(d), _moment(e)] for a, b, c, d, e in conn.execute(q)]
         elif kind == "solvers":
             from .select.resolve import Dims
 
             dims = Dims.load(conn)
             per = select(cells.c.solver_id, func.sum(cells.c.n).label("n")).group_by(cells.c.solver_id).subquery()
-            q = (select(S.solvers.c.id, S.solvers.c.build, S.solvers.c.params, func.coalesce(per.c.n, 0))
+            q = (select(S.solvers.c.id, S.solvers.c.name, S.solvers.c.version, S.solvers.c.build,
+                        S.solvers.c.params, func.coalesce(per.c.n, 0))
                  .select_from(S.solvers.outerjoin(per, per.c.solver_id == S.solvers.c.id)))
-            rows = [[dims.treatment(i), b, p, int(n)] for i, b, p, n in conn.execute(q)]
             from .select.versions import version_key
 
-            rows.sort(key=lambda x: (x[0].split("@")[0], version_key(x[0].split("@", 1)[1] if "@" in x[0] else "")))
-            inv.headers = ["treatment", "build", "parameters", "runs"]
+            # each solver with its versions, each version a treatment (what NAME@VERSION names in a slice)
+            rows = sorted(([name, version, dims.treatment(i), b, p, int(n)] for i, name, version, b, p, n in conn.execute(q)),
+                          key=lambda x: (x[0], version_key(x[1] or ""), x[2]))
+            inv.headers = ["solver", "version", "treatment", "build", "parameters", "runs"]
             inv.rows = rows
         elif kind == "families":
             q = (select(S.families.c.name, func.count(func.distinct(S.groups.c.id)), func.count(func.distinct(S.instances.c.id)))
@@ -109,12 +130,14 @@ def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) 
             inv.headers = ["host", "runs"]
             inv.rows = [[a, int(b)] for a, b in conn.execute(q)]
         else:  # imports
-            q = (select(S.imports.c.id, S.campaigns.c.name, S.imports.c.file_name, S.imports.c.rows_read,
-                        S.imports.c.rows_loaded, S.imports.c.rows_rejected, S.imports.c.rows_skipped,
-                        S.imports.c.loaded_at, S.imports.c.sha256)
-                 .join(S.campaigns).order_by(S.imports.c.id))
-            inv.headers = ["import", "campaign", "file", "read", "loaded", "rejected", "skipped", "loaded at", "sha256"]
-            inv.rows = [[a, b, c, d, e, f, g, _when(h), i[:12]] for a, b, c, d, e, f, g, h, i in conn.execute(q)]
+            q = (select(S.imports.c.id, S.campaigns.c.name, S.imports.c.file_name, S.imports.c.replaces_import_id,
+                        S.imports.c.rows_read, S.imports.c.rows_loaded, S.imports.c.rows_rejected,
+                        S.imports.c.rows_skipped, S.imports.c.loaded_at, S.imports.c.sha256)
+                 .join(S.campaigns, S.campaigns.c.id == S.imports.c.campaign_id).order_by(S.imports.c.id))
+            # replaces: the wholly retracted import this one loaded again (load --again; revision 0008)
+            inv.headers = ["import", "campaign", "file", "replaces", "read", "loaded", "rejected", "skipped",
+                           "loaded at", "sha256"]
+            inv.rows = [[a, b, c, r, d, e, f, g, _when(h), i[:12]] for a, b, c, r, d, e, f, g, h, i in conn.execute(q)]
         if limit is not None:
             inv.rows = inv.rows[:limit]
     return inv

@@ -71,9 +71,17 @@ def digest(kind: str, slice_text: str, settings: str, observations: str, fingerp
 
 def record(wh: Warehouse, result, sl: Slice, settings: dict, now: float | None = None) -> int:
     """Store an analysis result (blocktest, versus, plan) with everything needed to re-run it."""
+    with wh.write() as conn:
+        with conn.begin():
+            return _insert(conn, result, sl, settings, now)
+
+
+def _insert(conn, result, sl: Slice, settings: dict, now: float | None = None, renewed_from: int | None = None) -> int:
+    """Write one analysis row on `conn`, inside the caller's transaction (a renewal moves claims in
+    the same one). The retractions it stands after are read on the same connection, so that a
+    retraction committed meanwhile cannot slip between that count and the row."""
     now = time.time() if now is None else now
-    with wh.engine.connect() as conn:
-        settings = dict(settings, retractions_before=int(conn.execute(select(func.coalesce(func.max(S.retractions.c.id), 0))).scalar()))
+    settings = dict(settings, retractions_before=int(conn.execute(select(func.coalesce(func.max(S.retractions.c.id), 0))).scalar()))
     c = getattr(result, "collapsed", None)
     doc = _clean(result.to_dict())
     doc.pop("analysis_id", None)
@@ -89,10 +97,9 @@ def record(wh: Warehouse, result, sl: Slice, settings: dict, now: float | None =
     values = dict(kind=result.kind, slice_text=sl_text, slice_parsed=sl.to_json(), metric=metric,
                   settings=settings_text, observations=obs_text, max_run_id=max_run, fingerprint=fingerprint,
                   result=result_text, software=_canon(software()), created_at=int(now),
-                  result_digest=digest(result.kind, sl_text, settings_text, obs_text, fingerprint, result_text))
-    with wh.write() as conn:
-        with conn.begin():
-            return conn.execute(insert(S.analyses).values(**values)).inserted_primary_key[0]
+                  result_digest=digest(result.kind, sl_text, settings_text, obs_text, fingerprint, result_text),
+                  renewed_from_id=renewed_from)
+    return conn.execute(insert(S.analyses).values(**values)).inserted_primary_key[0]
 
 
 @dataclass
@@ -112,6 +119,8 @@ class Stored:
     intact: bool
     claims: list[dict] = field(default_factory=list)
     stale_runs: int = 0
+    renewed_from: int | None = None  # the stale analysis this one re-ran (recheck --renew)
+    renewed_as: int | None = None  # the analysis that re-ran this one and took its claims
 
     @property
     def state(self) -> str:
@@ -136,7 +145,7 @@ def _stored(row, intact: bool) -> Stored:
         sl, intact = Slice(), False
     return Stored(row.id, row.kind, row.slice_text, sl, row.metric, load(row.settings, {}),
                   load(row.observations, []), row.max_run_id, row.fingerprint, load(row.result, {}),
-                  load(row.software, {}), row.created_at, intact)
+                  load(row.software, {}), row.created_at, intact, renewed_from=row.renewed_from_id)
 
 
 def _intact(row) -> bool:
@@ -182,14 +191,46 @@ def stale_runs(conn, st: Stored, dims: Dims | None = None) -> int:
     return int(conn.execute(q).scalar() or 0)
 
 
+# Ids come from people: the largest one any warehouse can hold is PostgreSQL's INTEGER (32 bits;
+# SQLite's are 64). A number beyond it names no analysis, and is answered so before the database
+# is asked, which would refuse to bind it.
+MAX_ID = 2 ** 31 - 1
+
+
+def parse_id(value, where: str) -> int:
+    """An analysis id as a person typed it (`where` names the argument, for the message)."""
+    import re
+
+    text = str(value).strip()
+    if not re.fullmatch(r"[0-9]+", text):
+        shown = text if len(text) <= 24 else text[:20] + "…"
+        raise InputError(f"{where} '{shown}': an analysis id is a whole number such as 17 (blockyard recall lists them)")
+    if len(text) > 4000:  # int() refuses digits past 4300; no id comes near
+        raise InputError(f"no analysis {text[:20]}… (blockyard recall lists them)")
+    return int(text)
+
+
+def _no_analysis(conn, analysis_id) -> InputError:
+    shown = str(analysis_id)
+    shown = shown if len(shown) <= 24 else shown[:20] + "…"
+    last = conn.execute(select(func.max(S.analyses.c.id))).scalar()
+    hint = f"; the latest is {last}" if last else "; none is stored yet"
+    return InputError(f"no analysis {shown}{hint} (blockyard recall lists them)")
+
+
+def renewed_as(conn, analysis_id: int) -> int | None:
+    return conn.execute(select(func.min(S.analyses.c.id)).where(S.analyses.c.renewed_from_id == analysis_id)).scalar()
+
+
 def get(wh: Warehouse, analysis_id: int, with_state: bool = True) -> Stored:
     with wh.engine.connect() as conn:
-        row = conn.execute(select(S.analyses).where(S.analyses.c.id == analysis_id)).first()
+        row = None
+        if 1 <= analysis_id <= MAX_ID:
+            row = conn.execute(select(S.analyses).where(S.analyses.c.id == analysis_id)).first()
         if row is None:
-            last = conn.execute(select(func.max(S.analyses.c.id))).scalar()
-            hint = f"; the latest is {last}" if last else "; none is stored yet"
-            raise InputError(f"no analysis {analysis_id}{hint} (blockyard recall lists them)")
+            raise _no_analysis(conn, analysis_id)
         st = _stored(row, _intact(row))
+        st.renewed_as = renewed_as(conn, st.id)
         st.claims = [dict(id=c.id, text=c.text, tags=[t for t in c.tags.split(",") if t], created_at=c.created_at)
                      for c in conn.execute(select(S.claims).where(S.claims.c.analysis_id == analysis_id).order_by(S.claims.c.id))]
         if with_state and st.intact:
@@ -246,6 +287,11 @@ def recall(wh: Warehouse, text: str | None = None, tags: list[str] | None = None
     out: list[Stored] = []
     with wh.engine.connect() as conn:
         claims: dict[int, list[dict]] = {}
+        later: dict[int, int] = {}
+        for new_id, old_id in conn.execute(select(S.analyses.c.id, S.analyses.c.renewed_from_id)
+                                           .where(S.analyses.c.renewed_from_id.is_not(None))
+                                           .order_by(S.analyses.c.id.desc())):
+            later[old_id] = new_id  # the first renewal wins, as in renewed_as()
         for c in conn.execute(select(S.claims).order_by(S.claims.c.id)):
             claims.setdefault(c.analysis_id, []).append(
                 dict(id=c.id, text=c.text, tags=[t for t in c.tags.split(",") if t], created_at=c.created_at))
@@ -256,6 +302,7 @@ def recall(wh: Warehouse, text: str | None = None, tags: list[str] | None = None
         for row in conn.execute(q).all():
             st = _stored(row, _intact(row))
             st.claims = claims.get(st.id, [])
+            st.renewed_as = later.get(st.id)
             if tags and not all(any(t == x.lower() for c in st.claims for x in c["tags"]) for t in tags):
                 continue
             if solver:
@@ -344,7 +391,9 @@ def undo_retraction(wh: Warehouse, retraction_id: int, now: float | None = None)
     now = time.time() if now is None else now
     with wh.write() as conn:
         with conn.begin():
-            row = conn.execute(select(S.retractions).where(S.retractions.c.id == retraction_id)).first()
+            row = None
+            if 1 <= retraction_id <= MAX_ID:  # beyond any id: the database would refuse to bind it
+                row = conn.execute(select(S.retractions).where(S.retractions.c.id == retraction_id)).first()
             if row is None:
                 raise InputError(f"no retraction {retraction_id} (inventory lists none; retract prints its id)")
             if row.undone_at is not None:
@@ -393,16 +442,53 @@ def rerun(wh: Warehouse, st: Stored):
                               opts.get("adjust", "holm"), opts.get("better"), opts.get("margin"),
                               opts.get("confidence", 0.95), quick=False)
     if st.kind == "plan":
-        source = None
+        source = src = None
         if opts.get("from") is not None:
             src = get(wh, int(opts["from"]), with_state=False)
             source = dict(rerun(wh, src).to_dict())
             source["analysis_id"] = src.id
-        return run_plan(effect=opts.get("effect"), delta=opts.get("delta"), sd=opts.get("sd"), source=source,
-                        power=opts.get("power", 0.8), alpha=opts.get("alpha", 0.05),
-                        comparisons=opts.get("comparisons", 1), means=opts.get("means"), sigma=opts.get("sigma"),
-                        blocks=opts.get("blocks"))
+        res = run_plan(effect=opts.get("effect"), delta=opts.get("delta"), sd=opts.get("sd"), source=source,
+                       power=opts.get("power", 0.8), alpha=opts.get("alpha", 0.05),
+                       comparisons=opts.get("comparisons", 1), means=opts.get("means"), sigma=opts.get("sigma"),
+                       blocks=opts.get("blocks"))
+        if src is not None:
+            # the source re-ran on today's data: no longer stale, whatever it was when the plan was made
+            note_source(res, source, src.kind, "fresh" if src.intact else "tampered", 0)
+        return res
     raise InputError(f"analysis {st.id} is of kind {st.kind}, which cannot be re-run")
+
+
+def note_source(res, doc: dict, kind: str, state: str, stale: int) -> None:
+    """What `plan --from` says of its source besides sigma: its state (a stale source's sigma stood
+    on runs retracted since), and the blocks its slice holds against the blocks the plan needs."""
+    from .analyze.planning import more_blocks
+
+    src = res.source
+    if not src:
+        return
+    src.update(state=state, stale=state == "stale", stale_runs=int(stale))
+    held = doc.get("blocks") if kind in ("blocktest", "versus") else None
+    need = getattr(res.plan, "blocks_needed", None)
+    if isinstance(held, int) and not isinstance(held, bool):
+        src["blocks_held"] = held
+        if need is not None:
+            src["blocks_more"] = more_blocks(need, held)
+    aid = src.get("analysis_id")
+    if state == "stale":
+        res.plan.warnings.append(f"analysis {aid} is stale: {stale} of the runs behind its sigma were retracted "
+                                 f"since; blockyard recheck {aid} --renew re-runs it, then plan from the new one")
+    elif state == "tampered":
+        res.plan.warnings.append(f"analysis {aid} is tampered: its record does not match its digest, so its sigma "
+                                 "is not what was kept; do not rely on this plan")
+
+
+def _as_kept(new: dict, old: dict) -> dict:
+    """A plan's new document cut to the keys the stored one holds: a plan kept by an earlier
+    version lacks the keys added since, and only what it holds can have changed."""
+    out = {k: v for k, v in new.items() if k in old}
+    if isinstance(out.get("from"), dict) and isinstance(old.get("from"), dict):
+        out["from"] = {k: v for k, v in out["from"].items() if k in old["from"]}
+    return out
 
 
 @dataclass
@@ -415,19 +501,34 @@ class Recheck:
     runs_withdrawn: int
     changes: list[str]
     error: str | None = None
+    rerun: object = None  # the re-run's own result: what a renewal stores
+    renew: bool = False  # --renew was asked
+    stored_analysis: int | None = None  # the analysis this renewal stored
+    claims_moved: list[int] = field(default_factory=list)
 
     def to_dict(self) -> dict:
         return {"analysis_id": self.stored.id, "status": self.status, "kind": self.stored.kind,
                 "slice": self.stored.slice_text, "metric": self.stored.metric,
                 "stored_fingerprint": self.stored.fingerprint, "new_fingerprint": self.new_fingerprint,
                 "runs_arrived": self.runs_arrived, "runs_withdrawn": self.runs_withdrawn, "changes": self.changes,
-                "old": self.stored.result, "new": self.new_doc, "error": self.error}
+                "old": self.stored.result, "new": self.new_doc, "error": self.error,
+                "renewed_from": self.stored.renewed_from, "renewed_as": self.stored.renewed_as,
+                "renew": self.renew, "stored_analysis": self.stored_analysis, "claims_moved": self.claims_moved}
 
 
-def recheck(wh: Warehouse, analysis_id: int) -> Recheck:
+def _renewed_already(analysis_id: int, later: int) -> InputError:
+    return InputError(f"analysis {analysis_id} was already renewed as analysis {later}, which holds its claims; "
+                      f"renew that one instead (blockyard recheck {later} --renew)")
+
+
+def recheck(wh: Warehouse, analysis_id: int, renew: bool = False, now: float | None = None) -> Recheck:
+    """Re-run a stored analysis on today's data and compare. With `renew`, a re-run that differs
+    is stored as a new analysis renewing this one, and this one's claims move to it."""
     from .errors import BlockyardError
 
     st = get(wh, analysis_id)
+    if renew and st.renewed_as is not None:  # before the re-run: the answer does not depend on it
+        raise _renewed_already(st.id, st.renewed_as)
     withdrawn = st.stale_runs
     arrived = 0
     if st.kind != "plan":
@@ -443,8 +544,9 @@ def recheck(wh: Warehouse, analysis_id: int) -> Recheck:
         new = rerun(wh, st)
     except BlockyardError as exc:
         status = "tampered" if not st.intact else "conclusion-changed"
-        return Recheck(st, status, None, None, arrived, withdrawn,
-                       [f"the analysis cannot be re-run on today's data: {exc}"], error=str(exc))
+        rc = Recheck(st, status, None, None, arrived, withdrawn,
+                     [f"the analysis cannot be re-run on today's data: {exc}"], error=str(exc), renew=renew)
+        return _renew(wh, rc, now) if renew else rc
     new_doc = _clean(new.to_dict())
     new_doc.pop("analysis_id", None)
     new_fp = new.collapsed.fingerprint if getattr(new, "collapsed", None) is not None else None
@@ -459,11 +561,50 @@ def recheck(wh: Warehouse, analysis_id: int) -> Recheck:
     elif changes:
         status = "conclusion-changed"
     elif (new_fp is not None and st.fingerprint not in (new_fp, new.collapsed.fingerprint_v1)) or (
-            new_fp is None and _canon(new_doc) != _canon(st.result)):
+            new_fp is None and _canon(_as_kept(new_doc, st.result)) != _canon(st.result)):
         status = "data-changed"
     else:
         status = "unchanged"
-    return Recheck(st, status, new_doc, new_fp, arrived, withdrawn, changes)
+    rc = Recheck(st, status, new_doc, new_fp, arrived, withdrawn, changes, rerun=new, renew=renew)
+    return _renew(wh, rc, now) if renew else rc
+
+
+def _renew(wh: Warehouse, rc: Recheck, now: float | None) -> Recheck:
+    from .errors import DesignError
+
+    st = rc.stored
+    if rc.status == "tampered":
+        raise InputError(f"analysis {st.id} is tampered (its record does not match its digest), so it is not "
+                         "renewed: its claims would move onto numbers nobody kept; run the analysis afresh instead")
+    if rc.error is not None:
+        raise DesignError(f"analysis {st.id} cannot be re-run on today's data ({rc.error}); nothing was stored")
+    if rc.status == "unchanged":
+        return rc  # nothing to renew: the stored analysis still stands as kept
+    # the same settings it was run with; the retractions it stands after are counted anew
+    settings = {k: v for k, v in st.settings.items() if k != "retractions_before"}
+    with wh.write() as conn:
+        with conn.begin():  # the new analysis and its claims together, or neither
+            # PostgreSQL: hold the old row, so that two renewals of it cannot both pass the check
+            # below (SQLite's write transaction already admits one writer at a time)
+            conn.execute(select(S.analyses.c.id).where(S.analyses.c.id == st.id).with_for_update()).first()
+            later = renewed_as(conn, st.id)
+            if later is not None:
+                raise _renewed_already(st.id, later)
+            new_id = _insert(conn, rc.rerun, st.slice, settings, now, renewed_from=st.id)
+            rc.claims_moved = _move_claims(conn, st.id, new_id)
+    rc.stored_analysis = new_id
+    st.renewed_as = new_id
+    st.claims = []
+    return rc
+
+
+def _move_claims(conn, old_id: int, new_id: int) -> list[int]:
+    """Claims follow the analysis that renews theirs; their text, tags and times stay as kept."""
+    ids = [r.id for r in conn.execute(select(S.claims.c.id).where(S.claims.c.analysis_id == old_id)
+                                      .order_by(S.claims.c.id))]
+    if ids:
+        conn.execute(update(S.claims).where(S.claims.c.analysis_id == old_id).values(analysis_id=new_id))
+    return ids
 
 
 def _say(v) -> str:

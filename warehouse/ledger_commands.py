@@ -1,6 +1,7 @@
 """keep, recall, recheck, retract: the ledger's commands."""
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 
 from .analysis_commands import slice_of
@@ -11,7 +12,7 @@ from .session import Session
 
 def _keep_args(p):
     p.add_argument("claim", metavar="CLAIM", help="the sentence you stand behind, in quotes")
-    p.add_argument("--analysis", type=int, metavar="ID", help="the analysis it rests on (default: the last one)")
+    p.add_argument("--analysis", metavar="ID", help="the analysis it rests on (default: the last one)")
     p.add_argument("--tag", action="append", default=[], metavar="T", help="a tag to find it by (repeatable)")
     add_json(p)
 
@@ -22,7 +23,7 @@ def cmd_keep(session: Session, a) -> Done:
     from . import ledger
 
     wh = session.warehouse()
-    analysis = a.analysis if a.analysis is not None else session.last_analysis
+    analysis = ledger.parse_id(a.analysis, "--analysis") if a.analysis is not None else session.last_analysis
     doc = ledger.keep(wh, a.claim, analysis, a.tag)
     tags = f" [{', '.join(a.tag)}]" if a.tag else ""
     return Done(f"kept claim {doc['claim_id']} on analysis {doc['analysis_id']}{tags}: {doc['text']}", doc)
@@ -74,13 +75,18 @@ def cmd_recall(session: Session, a):
     from . import ledger
 
     wh = session.warehouse()
-    if a.what is not None and a.what.isdigit() and not (a.tag or a.solver or a.since or a.stale):
-        return RecallOne(ledger.get(wh, int(a.what)))
+    filtered = a.tag or a.solver or a.since or a.stale
+    # a signed number is a mistyped id, not words to search for
+    if a.what is not None and re.fullmatch(r"[-+]?[0-9]+", a.what.strip()) and not filtered:
+        return RecallOne(ledger.get(wh, ledger.parse_id(a.what, "recall")))
     return RecallList(ledger.recall(wh, a.what, a.tag, a.solver, a.since, a.stale, a.limit))
 
 
 def _recheck_args(p):
-    p.add_argument("id", type=int, metavar="ID", help="the stored analysis to re-run on today's data")
+    p.add_argument("id", metavar="ID", help="the stored analysis to re-run on today's data")
+    p.add_argument("--renew", action="store_true",
+                   help="when today's data give another result, store it as a new analysis that renews this one "
+                   "and move this one's claims to it (all in one transaction; this one stays as kept)")
     add_json(p)
 
 
@@ -97,12 +103,17 @@ class RecheckResult:
         return render_recheck(self.rc)
 
 
-@command("recheck", "re-run a stored analysis on today's data and say what changed", "blockyard recheck 17")
+@command("recheck", "re-run a stored analysis on today's data and say what changed; --renew keeps the re-run",
+         "blockyard recheck 17 --renew")
 @args(_recheck_args)
 def cmd_recheck(session: Session, a) -> RecheckResult:
     from . import ledger
 
-    return RecheckResult(ledger.recheck(session.warehouse(), a.id))
+    renew = bool(getattr(a, "renew", False))
+    rc = ledger.recheck(session.warehouse(), ledger.parse_id(a.id, "recheck"), renew=renew)
+    if rc.stored_analysis is not None:  # a claim kept next rests on the renewal
+        session.last_analysis = rc.stored_analysis
+    return RecheckResult(rc)
 
 
 def _retract_args(p):

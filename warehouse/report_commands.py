@@ -14,13 +14,10 @@ KINDS = ("profile", "qq", "residuals", "differences", "performance")
 REPORT_FORMATS = {".html": "html", ".md": "markdown"}
 
 
-def _analysis_id(text) -> int | None:
-    if text is None:
-        return None
-    try:
-        return int(str(text).strip())
-    except ValueError:
-        raise InputError(f"analysis '{text}': give the number of a stored analysis (blockyard recall lists them)") from None
+def _analysis_id(text, where: str = "analysis") -> int | None:
+    from .ledger import parse_id
+
+    return None if text is None else parse_id(text, where)
 
 
 def _stored(session: Session, analysis_id: int):
@@ -115,7 +112,7 @@ def cmd_plot(session: Session, a) -> PlotResult:
 
     F.figure_format(a.to)  # refuse a wrong extension before any work
     explicit = getattr(a, "slice", None) is not None or getattr(a, "metric", None) is not None
-    aid = _analysis_id(a.analysis)
+    aid = _analysis_id(a.analysis, "--analysis")
     if aid is not None and explicit:
         raise InputError("--analysis draws the stored slice and metric; leave out --slice and --metric, "
                          "or leave out --analysis to draw fresh data")
@@ -248,4 +245,4 @@ def export_report(session: Session, analysis_id: int, path: str, now: float | No
          "blockyard export 2 --to pallets-vs-1.4.html")
 @args(_export_args)
 def cmd_export(session: Session, a) -> ExportResult:
-    return export_report(session, _analysis_id(a.id), a.to)
+    return export_report(session, _analysis_id(a.id, "export"), a.to)

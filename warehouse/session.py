@@ -37,6 +37,11 @@ class Session:
             self._wh = open_warehouse(self.location)
         return self._wh
 
+    @property
+    def read_only(self) -> str | None:
+        """Why the open warehouse can only be read here, or None (also when none is open yet)."""
+        return self._wh.read_only if self._wh is not None else None
+
     def reset(self) -> None:
         if self._wh is not None:
             self._wh.close()

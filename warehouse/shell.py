@@ -96,6 +96,14 @@ class ShellParser(argparse.ArgumentParser):
     def error(self, message):
         raise ShellArgError(f"{self.prog}: {message} (help {self.prog} shows its arguments)")
 
+    def parse_args(self, args=None, namespace=None):
+        a, extras = self.parse_known_args(args, namespace)
+        if extras:  # a mistyped option gets the nearest real one, as on the command line
+            from .commands import unknown_words
+
+            self.error(unknown_words(self, extras))
+        return a
+
     def exit(self, status=0, message=None):
         if message:
             (self.out or sys.stdout).write(message)

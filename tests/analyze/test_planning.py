@@ -13,6 +13,7 @@ from warehouse.analyze.planning import (
     blocks_for_dunnett,
     blocks_for_paired,
     blocks_for_rcbd,
+    more_blocks,
     paired_t_power,
     rcbd_power,
 )
@@ -159,3 +160,41 @@ def test_small_answers_warn():
     plan = blocks_for_paired(3.0)
     # common practice: fewer than 6 blocks leave the assumption checks without power
     assert plan.blocks_needed < 6 and plan.warnings
+
+
+def test_more_blocks_counts_what_a_slice_lacks():
+    assert more_blocks(24, 18) == 6
+    assert more_blocks(6, 18) == 0  # holds enough: nothing more
+    assert more_blocks(18, 18) == 0
+    with pytest.raises(InputError, match="whole number"):
+        more_blocks(24, -1)
+    with pytest.raises(InputError, match="whole number"):
+        more_blocks(2.5, 1)
+
+
+def test_every_plan_carries_its_cautions():
+    # plan --from adds a caution about its source to whichever plan it made
+    for plan in (blocks_for_paired(0.5), blocks_for_rcbd([10.0, 10.5, 11.0], 0.8), rcbd_power([10.0, 11.0], 0.8, 8)):
+        assert isinstance(plan.warnings, list)
+        assert isinstance(json.loads(json.dumps(plan.to_dict()))["warnings"], list)
+        assert "warnings" not in plan.table().columns
+
+
+@pytest.mark.parametrize("effect", [8.0, 3 / 0.3757, 20.0])
+def test_a_large_effect_plans_without_library_warnings(effect):
+    # statsmodels' root finder gives up on such effects (it warns and returns NaN); the plan answers
+    # by itself, and the warning would only be noise on the user's screen
+    import warnings
+
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        plan = blocks_for_paired(effect)
+    assert [str(w.message) for w in seen] == []
+    # the smallest count, by scipy's upper tail alone: the lower tail P(T < -c) is at most
+    # P(Z < -nc), below 1e-25 here (T < -c needs Z + nc < 0)
+    def upper(n):
+        return stats.nct.sf(stats.t.ppf(0.975, n - 1), n - 1, effect * math.sqrt(n))
+
+    n = plan.blocks_needed
+    assert upper(n) >= 0.8 and (n == 2 or upper(n - 1) < 0.8)
+    assert plan.achieved_power == pytest.approx(upper(n), abs=1e-12)

@@ -138,4 +138,4 @@ def test_huge_seeds_are_kept_exactly(cli, location, tmp_path):
 
 def test_seed_past_64_bits_is_refused(cli, location, tmp_path):
     path = write(tmp_path / "t.csv", H + "s,1,f,g,a,9223372036854775808,ok,,,3\n")
-    assert "line 2, field seed: '9223372036854775808' is not a whole number" in refusal(cli, path)
+    assert "line 2, field seed: '9223372036854775808' is out of range" in refusal(cli, path)

@@ -32,7 +32,7 @@ CASES = [
     ("quoted-header", '"' + H.strip().replace(",", '","') + '"\n' + GOOD + '"stacker","1.6","g1","a",2,ok,,"n/a"\n',
      " line 3, field pallets: 'n/a' is not a number"),
     ("quoted-header-later-break", '"' + H.strip().replace(",", '","') + '"\n' + GOOD + GOOD.replace(",1,", ",2,")
-     + 'stacker,1.6,g1,"two\nlines",3,ok,,30\n' + "stacker,1.6,g1,a,4,ok,,n/a\n", " line 6, field pallets: 'n/a' is not a number"),
+     + 'stacker,1.6,g1,a,3,"ok\n",,30\n' + "stacker,1.6,g1,a,4,ok,,n/a\n", " line 6, field pallets: 'n/a' is not a number"),
     ("metric-infinite", H + GOOD + "stacker,1.6,g1,a,2,ok,,inf\n", " line 3, field pallets: 'inf' is not a finite number"),
     ("metric-nan", H + GOOD + "stacker,1.6,g1,a,2,ok,,NaN\n", " line 3, field pallets: 'NaN' is not a finite number"),
     ("metric-empty-on-ok", H + GOOD + "stacker,1.6,g1,a,2,ok,,\n", " line 3, field pallets: is empty on an ok run"),

@@ -43,6 +43,11 @@ TRANSFORMS = ("none", "log", "boxcox", "rank")
 
 _EPS = 1e-12
 
+#: values larger than this in size are refused. The checks raise values to powers up to 3 (Box-Cox)
+#: and square them: (1e50)^6 = 1e300, so sums over millions of cells stay below the largest
+#: double, about 1.8e308 (IEEE 754 binary64). A metric this large is a stand-in, not a measurement.
+LARGEST_VALUE = 1e50
+
 
 # --------------------------------------------------------------------------- shared helpers
 
@@ -130,7 +135,25 @@ def _prepare(obs, extra: tuple[str, ...] = ()) -> pd.DataFrame:
         raise InputError(
             f"{int(bad.sum())} value(s) are missing, infinite or not numbers: drop or fill them before analysis")
     df["value"] = values.astype(float)
+    refuse_overflow(df["value"])
     return df.reset_index(drop=True)
+
+
+def refuse_overflow(values, what: str = "the values") -> None:
+    """Refuse, in one line, values whose sums of squares would overflow a double (and print
+    numpy's overflow warnings on the way to meaningless numbers). Infinite values mean that a sum
+    over runs overflowed already (every stored value is finite)."""
+    v = np.abs(np.asarray(values, dtype=float))
+    v = v[~np.isnan(v)]
+    if not v.size:
+        return
+    top = float(v.max())
+    if top <= LARGEST_VALUE:
+        return
+    why = ("adding up its runs overflows the largest number a double holds (about 1.8e+308)" if math.isinf(top)
+           else f"a value of {top:.3g} is too large for sums of squares (the analysis takes values up to {LARGEST_VALUE:.0e} in size)")
+    raise DesignError(f"{what}: {why}; such a value is usually a stand-in for a failed run: mark those runs "
+                      "failed in the source, or leave them out of the slice")
 
 
 def _labels(df: pd.DataFrame) -> tuple[list[str], list[str]]:
@@ -214,11 +237,13 @@ def _tukey_nonadditivity(Y: np.ndarray, fit: dict) -> dict:
     ta = fit["tm"] - fit["grand"]
     be = fit["bm"] - fit["grand"]
     df2 = fit["df_e"] - 1
-    den = float((ta ** 2).sum() * (be ** 2).sum())
+    na, nb = math.sqrt(float((ta ** 2).sum())), math.sqrt(float((be ** 2).sum()))
     out = {"ss": None, "f": None, "df1": 1, "df2": df2, "p": None}
-    if df2 < 1 or den <= _EPS * max(fit["ss_tot"], 1e-300) ** 2:
+    # the formula above with the effects as unit vectors: the same SS_N, but no product of three
+    # values (values of 1e60 would overflow it) and no square of SS_total in the guard
+    if df2 < 1 or na * nb <= math.sqrt(_EPS) * max(fit["ss_tot"], 1e-300):
         return out
-    ss_n = float((Y * ta[:, None] * be[None, :]).sum() ** 2 / den)
+    ss_n = float((Y * (ta / na)[:, None] * (be / nb)[None, :]).sum() ** 2)
     ss_rem = max(fit["ss_e"] - ss_n, 0.0)
     f, p = _f_test(ss_n, ss_rem / df2, 1, df2, fit["ss_tot"])
     out.update(ss=ss_n, f=None if math.isnan(f) else f, p=_none_if_nan(p))
@@ -270,7 +295,9 @@ def _positive(Y: np.ndarray) -> tuple[np.ndarray, float]:
     if mn > 0:
         return Y, 0.0
     shift = 1.0 - mn
-    return Y + shift, shift
+    # (Y - min) + 1, not Y + (1 - min): with values of 1e20 the 1 would be lost, and the smallest
+    # value would become 0, whose log is -inf
+    return (Y - mn) + 1.0, shift
 
 
 def _sse_additive(Z: np.ndarray) -> float:

@@ -10,6 +10,7 @@ blocks_for_delta(delta, sd, power=0.8, alpha=0.05, comparisons=1, alternative="t
 blocks_for_dunnett(delta, sigma, treatments, power=0.8, alpha=0.05, alternative="two-sided")
 rcbd_power(means, sigma, blocks, alpha=0.05)
 blocks_for_rcbd(means, sigma, power=0.8, alpha=0.05)
+more_blocks(needed, held)
 """
 from __future__ import annotations
 
@@ -82,6 +83,16 @@ def _search(power_of, target: float, start: int, lo_limit: int = 2) -> tuple[int
     return hi, pw(hi)
 
 
+def _below(c: float, df: int, nc: float) -> float:
+    """P(T < -c) for T noncentral t(df, nc), nc >= 0, c > 0. scipy gives NaN for this far tail when
+    nc is large; T < -c needs Z + nc < 0 (Z standard normal), so it is then at most P(Z < -nc),
+    and taken as 0 when that bound is below 1e-12."""
+    p = float(stats.nct.cdf(-c, df, nc))
+    if math.isnan(p) and stats.norm.sf(nc) < 1e-12:
+        return 0.0
+    return p
+
+
 def paired_t_power(effect: float, blocks: int, alpha: float = 0.05, alternative: str = "two-sided") -> float:
     """Power of the paired t-test on ``blocks`` block differences with standardized effect d.
 
@@ -95,7 +106,7 @@ def paired_t_power(effect: float, blocks: int, alpha: float = 0.05, alternative:
     nc = abs(effect) * math.sqrt(n)
     if _sides(alternative) == 2:
         c = stats.t.ppf(1 - alpha / 2, df)
-        return float(stats.nct.sf(c, df, nc) + stats.nct.cdf(-c, df, nc))
+        return float(stats.nct.sf(c, df, nc) + _below(c, df, nc))
     c = stats.t.ppf(1 - alpha, df)
     return float(stats.nct.sf(c, df, nc))
 
@@ -156,10 +167,18 @@ def blocks_for_paired(effect: float, power: float = 0.8, alpha: float = 0.05, co
     a_pc = alpha / int(comparisons)
     alt = "two-sided" if sides == 2 else "one-sided"
     try:
+        import warnings
+
+        import statsmodels.tools.sm_exceptions  # noqa: F401  (on import it sets its warnings to
+        # "always": imported first, so that the filter below is the one that holds)
         from statsmodels.stats.power import TTestPower
 
-        guess = TTestPower().solve_power(effect_size=d, alpha=a_pc, power=power,
-                                         alternative="two-sided" if sides == 2 else "larger")
+        # a large effect leaves the root finder without a solution: it warns on stderr and gives
+        # NaN, which the fallback below answers, so the warning would only be noise for the user
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            guess = TTestPower().solve_power(effect_size=d, alpha=a_pc, power=power,
+                                             alternative="two-sided" if sides == 2 else "larger")
         start = int(math.ceil(float(np.squeeze(guess))))
     except Exception:  # noqa: BLE001 - fall back to the normal approximation
         z = stats.norm.ppf(1 - a_pc / sides) + stats.norm.ppf(power)
@@ -234,7 +253,7 @@ def dunnett_power(delta: float, sigma: float, treatments: int, blocks: int, alph
     c = dunnett_critical_value(a - 1, df, 1 - alpha, "two-sided" if sides == 2 else "greater")
     nc = abs(delta) / (sigma * math.sqrt(2.0 / b))
     if sides == 2:
-        pw = stats.nct.sf(c, df, nc) + stats.nct.cdf(-c, df, nc)
+        pw = stats.nct.sf(c, df, nc) + _below(c, df, nc)
     else:
         pw = stats.nct.sf(c, df, nc)
     return float(pw), float(c)
@@ -294,7 +313,7 @@ class RcbdPower(_Result):
 
     Fields: treatments (a), blocks (b), means (list), sigma, alpha, noncentrality
     (b sum (mu_i - mean)^2 / sigma^2), effect_f (Cohen's f = sqrt(mean (mu_i - mean)^2) / sigma),
-    df1 (a-1), df2 ((a-1)(b-1)), f_critical, power.
+    df1 (a-1), df2 ((a-1)(b-1)), f_critical, power, warnings.
     """
 
     treatments: int
@@ -308,12 +327,14 @@ class RcbdPower(_Result):
     df2: int
     f_critical: float
     power: float
+    warnings: list[str] = field(default_factory=list)
 
     def table(self):
         import pandas as pd
 
         d = self.to_dict()
         d.pop("means")
+        d.pop("warnings")
         return pd.DataFrame([d])
 
 
@@ -366,7 +387,7 @@ class RcbdPlan(_Result):
     """Blocks needed for the RCBD treatment F test.
 
     Fields: blocks_needed, achieved_power, power (target), alpha, sigma, means, treatments,
-    effect_f, and at blocks_needed: noncentrality, df1, df2, f_critical.
+    effect_f, and at blocks_needed: noncentrality, df1, df2, f_critical; warnings.
     """
 
     blocks_needed: int
@@ -381,12 +402,14 @@ class RcbdPlan(_Result):
     df1: int
     df2: int
     f_critical: float
+    warnings: list[str] = field(default_factory=list)
 
     def table(self):
         import pandas as pd
 
         d = self.to_dict()
         d.pop("means")
+        d.pop("warnings")
         return pd.DataFrame([d])
 
 
@@ -410,3 +433,19 @@ def blocks_for_rcbd(means, sigma: float, power: float = 0.8, alpha: float = 0.05
     return RcbdPlan(blocks_needed=b, achieved_power=pw, power=power, alpha=alpha, sigma=float(sigma),
                     means=r.means, treatments=r.treatments, effect_f=r.effect_f, noncentrality=r.noncentrality,
                     df1=r.df1, df2=r.df2, f_critical=r.f_critical)
+
+
+def more_blocks(needed: int, held: int) -> int:
+    """Blocks to add to a slice holding ``held`` complete blocks to reach ``needed`` (0 when it
+    holds enough). A block counts once however many instances and seeds it has: only new
+    instance groups raise the count.
+
+    Example::
+
+        from warehouse.analyze.planning import more_blocks
+        more_blocks(24, 18)      # 6
+    """
+    for name, v in (("needed", needed), ("held", held)):
+        if isinstance(v, bool) or int(v) != v or v < 0:
+            raise InputError(f"{name} must be a whole number of blocks >= 0, not {v!r}")
+    return max(0, int(needed) - int(held))

@@ -48,6 +48,7 @@ class Reduced:
         self.keys, self.common, self.values = keys, common, values
 
 
+@np.errstate(over="ignore")  # values near 1.8e308 sum to inf, which an analysis refuses in one line
 def reduce_chunk(keys: np.ndarray, ordinals: np.ndarray, status: np.ndarray, values: dict) -> Reduced:
     """Sum one chunk by cell (needs no database: keys may be the chunk's own codes)."""
     order, starts, cell_keys = _groups(keys)
@@ -115,6 +116,7 @@ class CellSums:
             if self.sizes[slot] > MERGE_AT and len(self.parts[slot]) > 1:
                 self._merge(slot)
 
+    @np.errstate(over="ignore")  # (as in reduce_chunk)
     def _merge(self, slot: int) -> None:
         parts = self.parts[slot]
         if len(parts) == 1:  # one part is summed by cell already (every part is)

@@ -40,6 +40,11 @@ STATUS_WORDS = {
     "failed": "failed", "fail": "failed", "error": "failed", "crash": "failed", "crashed": "failed",
     "infeasible": "infeasible",
 }
+# Unicode general category Cc (C0, DEL and C1; from memory of the Unicode Character Database):
+# a name holding one prints wrongly in every table and message (a tab or line break shifts
+# columns and lines), so names are refused with them (values.CONTROL_RE is the same set, for Arrow)
+CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
+REPLICATE_SPAN = 2**31  # runs.replicate is a 32-bit integer on PostgreSQL (INTEGER)
 SECTIONS = {"columns", "constants", "status", "group", "metrics", "missing", "ignore", "attributes"}
 
 
@@ -68,6 +73,22 @@ class Layout:
         words = dict(STATUS_WORDS)
         words.update(self.status)
         return words
+
+
+def has_control(text: str) -> bool:
+    return CONTROL.search(text) is not None
+
+
+def control_message(value: str) -> str:
+    """What is wrong with a name that holds a control character, with the value as Python shows
+    it (so that a tab reads as \\t, not as white space)."""
+    return (f"{value[:60]!r} holds a control character; names may not hold tabs, line breaks or "
+            "other control characters")
+
+
+def _plain_name(value: str, where: str, path: str) -> None:
+    if has_control(value):
+        raise _err(path, f"{where}: {control_message(value)}")
 
 
 def _err(path: str, msg: str) -> InputError:
@@ -110,6 +131,12 @@ def read_layout(path: str | Path | None) -> Layout:
         text = p.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise InputError(f"layout {shown}: no such file") from None
+    except IsADirectoryError:
+        raise _err(shown, "is a folder, not a file; give the path of the layout's .toml file") from None
+    except PermissionError:
+        raise _err(shown, "cannot be read (permission denied); make it readable or copy it somewhere readable") from None
+    except OSError as exc:  # a path through a file, a device that fails: the system's own reason
+        raise _err(shown, f"cannot be read ({exc.strerror or type(exc).__name__})") from None
     except UnicodeDecodeError as exc:
         raise _err(shown, f"not UTF-8 text (byte {exc.start})") from None
     try:
@@ -124,6 +151,8 @@ def read_layout(path: str | Path | None) -> Layout:
         target = target.strip()
         if not target:
             raise _err(shown, f"[columns] {src} = '': name a field ({', '.join(FIELDS)}) or a metric")
+        if target.lower() not in FIELDS:
+            _plain_name(target, f"[columns] {src}", shown)  # the name of a metric
         lay.columns[src.strip().lower()] = target.lower() if target.lower() in FIELDS else target
     constants = _strings(_table(doc, "constants", shown), "constants", shown)
     for k, v in constants.items():
@@ -134,8 +163,13 @@ def read_layout(path: str | Path | None) -> Layout:
             raise _err(shown, f"[constants] {k} = '{v}': must be a whole number")
         if k in ("solver", "instance", "group") and not v:
             raise _err(shown, f"[constants] {k} is empty; every run needs a {k}")
+        if k == "replicate" and not -REPLICATE_SPAN <= int(v) < REPLICATE_SPAN:
+            raise _err(shown, f"[constants] {k} = '{v}' is out of range; a replicate is a whole number "
+                              f"from {-REPLICATE_SPAN} to {REPLICATE_SPAN - 1}")
         if k != "params" and len(v) > NAME_LIMIT:
             raise _err(shown, f"[constants] {k} is {len(v)} characters long; names may have at most {NAME_LIMIT}")
+        if k not in ("params", "seed", "replicate", "status", "finished_at"):
+            _plain_name(v, f"[constants] {k}", shown)
         lay.constants[k] = v
     for word, status in _strings(_table(doc, "status", shown), "status", shown).items():
         if status not in STATUSES:
@@ -156,6 +190,7 @@ def read_layout(path: str | Path | None) -> Layout:
         if extra:
             raise _err(shown, f"[group] pattern has a named group '{sorted(extra)[0]}'; the names it may use are family, group and instance")
     for name, spec in _table(doc, "metrics", shown).items():
+        _plain_name(name, "[metrics]", shown)
         if not isinstance(spec, dict):
             raise _err(shown, f"[metrics.{name}] must be a table with sense and unit")
         extra = set(spec) - {"sense", "unit"}

@@ -34,9 +34,10 @@ from ..store import value_columns
 from ..store.connect import Warehouse
 from . import values as V
 from .cellsums import Summing, constant_columns, put_unless_stopped, reduce_chunk, run_statements
-from .layout import FIELDS, NAME_LIMIT, Layout
+from .layout import FIELDS, NAME_LIMIT, REPLICATE_SPAN, Layout, control_message, has_control
 from .scan import first_pass_of, take_early_read
-from .sources import SourceInfo, read_delimited, read_header, read_jsonl, read_parquet
+from .sources import (BLOCK_BYTES, MAX_BLOCK_BYTES, LongRecord, SourceInfo, longest_record, read_delimited,
+                      read_header, read_jsonl, read_parquet)
 
 DEFAULTS = {"version": "", "build": "", "params": "", "family": "default", "seed": "0",
             "replicate": "0", "status": "ok", "finished_at": "", "host": "", "instance_hash": ""}
@@ -46,6 +47,7 @@ BULK_MIN_ROWS = 50_000  # below this, a load writes through WAL (the rollback jo
 BULK_CACHE_KIB = 262_144  # SQLite's page cache while a large first load writes with the rollback journal
 BULK_PAGE_BYTES_PER_RUN = 160  # cache a run takes: 94 bytes of file per run measured, with room for page overhead
 QUICK_MAX_RUNS = 20_000_000  # above this a SQLite load checks its runs with a key index (hashes: 8 bytes a run)
+SEED_SPAN = 2**63  # runs.seed is a signed 64-bit integer
 
 
 @dataclass
@@ -65,6 +67,7 @@ class FileReport:
     metrics: dict[str, str] = field(default_factory=dict)
     ignored: list[str] = field(default_factory=list)
     preview: list[dict] = field(default_factory=list)
+    replaces: int | None = None  # the wholly retracted import this load replaced (--again)
 
     def to_dict(self) -> dict:
         d = {"file": self.file, "status": self.status, "rows_read": self.rows_read,
@@ -73,6 +76,8 @@ class FileReport:
              "import_id": self.import_id, "message": self.message, "warnings": self.warnings}
         if self.rejects_file:
             d["rejects_file"] = self.rejects_file
+        if self.replaces is not None:
+            d["replaces"] = self.replaces
         if self.status == "checked":
             d.update(mapping=self.mapping, metrics=self.metrics, ignored=self.ignored, preview=self.preview)
         return d
@@ -305,8 +310,13 @@ def _status_table(words: dict[str, str]) -> tuple[pa.Array, np.ndarray]:
 # --- per-file state ----------------------------------------------------------------------------
 
 class _FileLoad:
-    def __init__(self, wh: Warehouse, info: SourceInfo, layout: Layout, skip_bad: bool):
+    def __init__(self, wh: Warehouse, info: SourceInfo, layout: Layout, skip_bad: bool, again: bool = False,
+                 block_bytes: int = BLOCK_BYTES):
         self.wh, self.info, self.layout, self.skip_bad = wh, info, layout, skip_bad
+        self.again = again  # a reload (--again): a run a retraction holds the key of refuses the file
+        self.block_bytes = block_bytes  # the CSV reader's block (larger for a file with long records)
+        self.campaign = ""
+        self.replaces: int | None = None  # the import this load replaces (--again)
         self.name = info.name
         self.mapping: dict[str, str] = {}  # source column -> target (field or metric)
         self.ignored: list[str] = []
@@ -372,6 +382,9 @@ class _FileLoad:
                 self.guessed_text.append(col)
 
     def _metric(self, col: str, metric: str) -> None:
+        if has_control(metric):
+            raise InputError(f"{self._header_place()}metric name {control_message(metric)}; rename the column "
+                             "or map it in a layout's [columns]")
         clash = [c for c, m in self.metric_cols.items() if m == metric]
         if clash:
             raise InputError(f"{self._header_place()}columns '{clash[0]}' and '{col}' both give metric {metric}; keep one or rename it in a layout")
@@ -471,6 +484,8 @@ class _FileLoad:
             v = names[f]
             if isinstance(v, str):
                 continue
+            if V.has_controls(v):  # (the bytes first: the full test is for the rare column that needs it)
+                flag(V.controls(v), f, lambda i, t=v: [control_message(x) for x in t.take(pa.array(i)).to_pylist()])
             if len(v) == 0 or V.byte_lengths(v).max() <= NAME_LIMIT:  # no more characters than bytes
                 continue
             lengths = pc.utf8_length(v).to_numpy(zero_copy_only=False)
@@ -481,7 +496,13 @@ class _FileLoad:
         whole = {}
         for f in ("seed", "replicate"):
             if f in by_target:
-                vals, bad, text = V.wholes(raw.column(by_target[f]))
+                vals, bad, text, big = V.wholes(raw.column(by_target[f]))
+                span = SEED_SPAN if f == "seed" else REPLICATE_SPAN
+                if f == "replicate":  # a 32-bit column on PostgreSQL: the same bound on both databases
+                    wide = ~bad & ((vals < -span) | (vals >= span))
+                    big, bad = big | wide, bad | wide
+                flag(big, f, lambda i, t=text, f=f, span=span: [
+                    f"{v} is out of range; a {f} is a whole number from {-span} to {span - 1}" for v in shown(t, i)])
                 flag(bad, f, lambda i, t=text: [f"{v} is not a whole number" for v in shown(t, i)])
                 whole[f] = vals
             else:
@@ -749,6 +770,7 @@ class _Writer:
 class _Holder:
     import_id: int
     source_line: int
+    retraction_id: int | None = None
 
 
 def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.ndarray, solver: np.ndarray,
@@ -766,11 +788,12 @@ def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.nd
     for k in range(0, len(inst_ids), 500):
         # the campaign as a literal: SQLite takes the load's own key index (`_campaign_key`) only
         # for a condition that names its campaign as the index does
-        q = select(r.solver_id, r.instance_id, r.seed, r.replicate, r.import_id, r.source_line).where(
+        q = select(r.solver_id, r.instance_id, r.seed, r.replicate, r.import_id, r.source_line, r.retraction_id).where(
             r.campaign_id == literal(int(campaign_id), literal_execute=True), r.instance_id.in_(inst_ids[k:k + 500]),
             r.solver_id.in_(solver_ids))
         for row in conn.execute(q):
-            holders[(row.solver_id, row.instance_id, row.seed, row.replicate)] = (row.import_id, row.source_line)
+            holders[(row.solver_id, row.instance_id, row.seed, row.replicate)] = (
+                row.import_id, row.source_line, row.retraction_id)
     skipped = 0
     for j in missing.tolist():  # only the runs that did not go in
         found = holders.get((int(solver[j]), int(instance[j]), int(rows.seed[j]), int(rows.replicate[j])))
@@ -784,6 +807,14 @@ def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.nd
             rec = {k: ("" if v is None else v) for k, v in raw.slice(int(rows.src[j]), 1).to_pylist()[0].items()}
             rec.update(line=line, reason=msg)
             fl.rejects.append(rec)
+        elif fl.again and other is not None and other.retraction_id is not None:
+            # A retracted run keeps its key in its campaign (PostgreSQL's unique index holds it,
+            # and SQLite's loads keep the same rule): a reload cannot take its place there, and a
+            # reload that skipped its runs would replace the import with nothing
+            raise InputError(
+                f"{fl.where(line)}: this run ({rows.describe(j)}) is held in campaign {fl.campaign} by a retracted "
+                f"run of import {other.import_id}; a campaign holds a run once, retracted or not, so load the file "
+                f"again into another campaign (e.g. --again --campaign {_shell_word(fl.campaign + '-reload')})")
         else:
             skipped += 1
             if skipped <= 3:
@@ -793,11 +824,29 @@ def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.nd
     return int(kept.sum()), skipped
 
 
-def _campaign_id(conn, name: str) -> int:
+def _shell_word(text: str) -> str:
+    """A value as it is typed in a shell command that a message suggests: in double quotes when
+    nothing in it means something to a POSIX shell there, else as shlex quotes it."""
+    import re
+    import shlex
+
+    if re.fullmatch(r'[^"$`\\!]*', text):
+        return f'"{text}"'
+    return shlex.quote(text)
+
+
+def check_campaign(name: str) -> None:
+    """The --campaign name, checked before any file is read or any warehouse is touched."""
     if not name.strip():
         raise InputError("--campaign needs a name")
     if len(name) > NAME_LIMIT:
         raise InputError(f"campaign name is {len(name)} characters long; names may have at most {NAME_LIMIT}")
+    if has_control(name):
+        raise InputError(f"--campaign {control_message(name)}")
+
+
+def _campaign_id(conn, name: str) -> int:
+    check_campaign(name)
     found = conn.execute(select(S.campaigns.c.id).where(S.campaigns.c.name == name)).scalar()
     if found is not None:
         return found
@@ -827,7 +876,7 @@ def _readers(fl: _FileLoad):
     info = fl.info
     if info.delimited:
         early = take_early_read(info)  # parsed while the command started (scan.start_early)
-        if early is not None and not fl.skip_bad:
+        if early is not None and not fl.skip_bad and fl.block_bytes == BLOCK_BYTES:
             early.ready.wait()
             if early.error is not None:
                 raise early.error
@@ -836,7 +885,7 @@ def _readers(fl: _FileLoad):
             return early.chunks(fl.bad_row)
         fl.header, fl.header_line = read_header(info)
         fl.check_header(fl.header)
-        return read_delimited(info, fl.header, fl.header_line, fl.bad_row)
+        return read_delimited(info, fl.header, fl.header_line, fl.bad_row, fl.block_bytes)
     if info.fmt == "jsonl":
         return read_jsonl(info)
     return read_parquet(info)
@@ -1117,47 +1166,59 @@ class _BulkJournal:
 
 def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | None = None, *,
               skip_bad: bool = False, dry_run: bool = False, rejects: str | Path | None = None,
-              progress: Callable[[int, int], None] | None = None) -> FileReport:
-    """Load one result file into `campaign`; refuse it whole, with one line saying why, on bad input."""
+              progress: Callable[[int, int], None] | None = None, again: bool = False) -> FileReport:
+    """Load one result file into `campaign`; refuse it whole, with one line saying why, on bad input.
+
+    `again`: load bytes loaded before, when every earlier import of them is wholly retracted, as
+    a new import that names the one it replaces (`load --again`)."""
     with _PandasNotForArrow(), _CollectorPaused():
         return _load_file(wh, path, campaign, layout, skip_bad=skip_bad, dry_run=dry_run, rejects=rejects,
-                          progress=progress)
+                          progress=progress, again=again)
 
 
 def _load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | None, *,
                skip_bad: bool, dry_run: bool, rejects: str | Path | None,
-               progress: Callable[[int, int], None] | None) -> FileReport:
+               progress: Callable[[int, int], None] | None, again: bool) -> FileReport:
     layout = layout or Layout()
+    check_campaign(campaign)  # every option is checked before the file is compared with the stored ones
     shown = str(path)
     p = Path(path)
     info = first_pass_of(p, shown)  # started early by the command line when it could
-    with wh.engine.connect() as conn:
-        prior = conn.execute(
-            select(S.imports.c.id, S.imports.c.loaded_at, S.campaigns.c.name)
-            .join(S.campaigns, S.campaigns.c.id == S.imports.c.campaign_id)
-            .where(S.imports.c.sha256 == info.sha256)
-        ).first()
-    if prior is not None:
-        when = time.strftime("%Y-%m-%d %H:%M", time.gmtime(prior.loaded_at))
-        return FileReport(
-            file=shown, status="duplicate", campaign=prior.name, import_id=prior.id,
-            message=f"already loaded into campaign {prior.name} on {when} UTC (import {prior.id}); nothing to do")
+    earlier = _earlier_imports(wh, info.sha256)
+    replaces = None
+    if earlier:
+        live = [e for e in earlier if e.live]
+        if not again:
+            head = earlier[-1]
+            return FileReport(file=shown, status="duplicate", campaign=head.campaign, import_id=head.id,
+                              message=_duplicate_message(earlier))
+        if live:
+            raise InputError(_still_live_message(wh, shown, live[-1]))
+        # the head of the chain: each import is replaced at most once (imports.ux_imports_reload)
+        replaces = earlier[-1].id
+    block = BLOCK_BYTES
     try:
-        try:
-            report = _load(wh, info, p, campaign, layout, skip_bad, dry_run, rejects, progress, allow_bulk=True)
-        except _StartOver:
-            report = _load(wh, info, p, campaign, layout, skip_bad, dry_run, rejects, progress, allow_bulk=False)
+        while True:
+            try:
+                report = _attempts(wh, info, p, campaign, layout, skip_bad, dry_run, rejects, progress,
+                                   again=again, replaces=replaces, block=block)
+                break
+            except LongRecord as exc:  # nothing was stored: read it all again in a larger block
+                block = _block_for(info, exc.block)
     except OperationalError as exc:
         raise StorageError(f"cannot write to warehouse {wh.display}: {_db_reason(exc)}; nothing from {shown} was stored") from None
     except IntegrityError as exc:
         if "sha256" in str(exc.orig) or "imports" in str(exc.orig):
+            what = "loaded these bytes again" if replaces is not None else "loaded the same bytes"
             return FileReport(file=shown, status="duplicate", campaign=campaign,
-                              message="the same bytes were loaded by another process just now; nothing to do")
+                              message=f"another process {what} just now; nothing to do")
         raise StorageError(f"warehouse {wh.display} refused a write: {_db_reason(exc)}; nothing from {shown} was stored") from None
     except Exception as exc:  # the driver's own cursor (bulk writes) raises its errors unwrapped
         if not _is_driver_error(exc):
             raise
         raise StorageError(f"cannot write to warehouse {wh.display}: {_db_reason(exc)}; nothing from {shown} was stored") from None
+    if again and not earlier:
+        report.warnings.append("--again: these bytes were not loaded before; loaded as any new file")
     # No ANALYZE after a load: statistics sampled from the first rows of an index (analysis_limit)
     # told the planner a campaign holds a thousand runs and sent date slices through the campaign
     # index instead of their id ranges, and full statistics cost a pass over every index on each
@@ -1165,11 +1226,160 @@ def _load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | 
     return report
 
 
+def _attempts(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layout, skip_bad: bool,
+              dry_run: bool, rejects, progress, **how) -> FileReport:
+    try:
+        return _load(wh, info, p, campaign, layout, skip_bad, dry_run, rejects, progress, allow_bulk=True, **how)
+    except _StartOver:
+        return _load(wh, info, p, campaign, layout, skip_bad, dry_run, rejects, progress, allow_bulk=False, **how)
+
+
+def _block_for(info: SourceInfo, tried: int) -> int:
+    """The CSV reader's block for a file with a record longer than `tried` bytes: room for two
+    of its longest record; or, past the largest block, a refusal that names that record."""
+    length, line, column = longest_record(info)
+    if length > MAX_BLOCK_BYTES // 2 or tried >= MAX_BLOCK_BYTES:
+        header, _ = read_header(info)
+        name = header[column] if column < len(header) else f"{column + 1} (past the header's columns)"
+        raise InputError(
+            f"{info.name} line {line}, field {name}: the record is {length / 2**20:.0f} MB long; a record may "
+            f"hold at most {MAX_BLOCK_BYTES // 2 // 2**20} MB; shorten that field, or leave its column out of the file")
+    return min(max(2 * length + BLOCK_BYTES, 4 * tried), MAX_BLOCK_BYTES)
+
+
+# --- loads of bytes loaded before ---------------------------------------------------------------
+
+@dataclass
+class _Earlier:
+    """An earlier import of the same bytes, and how much of it is retracted."""
+
+    id: int
+    campaign: str
+    campaign_id: int
+    loaded_at: int
+    loaded: int  # runs it stored
+    retracted: int  # of those, retracted
+    first_run_id: int | None
+    last_run_id: int | None
+    first_finished: int | None
+    last_finished: int | None
+
+    @property
+    def live(self) -> int:
+        return max(self.loaded - self.retracted, 0)
+
+    @property
+    def when(self) -> str:
+        return time.strftime("%Y-%m-%d %H:%M", time.gmtime(self.loaded_at))
+
+    @property
+    def state(self) -> str:
+        if not self.loaded:
+            return "holds no runs"
+        if not self.retracted:
+            return "not retracted"
+        if not self.live:
+            return "wholly retracted"
+        return f"partly retracted ({self.retracted} of {self.loaded} runs)"
+
+
+def _earlier_imports(wh: Warehouse, sha256: str) -> list[_Earlier]:
+    """The imports of these bytes, oldest first. Retracted runs are counted in each import's own id
+    range (revision 0004), so the count costs no more than that import's runs."""
+    I, R = S.imports, S.runs
+    out = []
+    with wh.engine.connect() as conn:
+        rows = conn.execute(
+            select(I.c.id, I.c.campaign_id, S.campaigns.c.name, I.c.loaded_at, I.c.rows_loaded, I.c.first_run_id,
+                   I.c.last_run_id, I.c.first_finished, I.c.last_finished)
+            .join(S.campaigns, S.campaigns.c.id == I.c.campaign_id)
+            .where(I.c.sha256 == sha256).order_by(I.c.id)).all()
+        for r in rows:
+            retracted = 0
+            if r.first_run_id is not None:
+                retracted = conn.execute(select(func.count()).select_from(R).where(
+                    R.c.id.between(r.first_run_id, r.last_run_id), R.c.import_id == r.id,
+                    R.c.retraction_id.is_not(None))).scalar() or 0
+            out.append(_Earlier(r.id, r.name, r.campaign_id, r.loaded_at, r.rows_loaded or 0, int(retracted),
+                                r.first_run_id, r.last_run_id, r.first_finished, r.last_finished))
+    return out
+
+
+def _duplicate_message(earlier: list[_Earlier]) -> str:
+    head = earlier[-1]
+    text = f"already loaded into campaign {head.campaign} on {head.when} UTC (import {head.id}); {head.state}"
+    live = [e for e in earlier if e.live]
+    if not live:
+        return text + "; to load it again (with a corrected layout, say), add --again"
+    if live[-1] is not head:
+        e = live[-1]
+        return text + f", but import {e.id} of the same bytes (campaign {e.campaign}) still has {e.live} live runs; nothing to do"
+    if head.retracted:
+        return text + "; nothing to do (to load it again, retract the rest of its runs first, then add --again)"
+    return text + "; nothing to do"
+
+
+def _still_live_message(wh: Warehouse, shown: str, e: _Earlier) -> str:
+    with wh.engine.connect() as conn:
+        sl, exact = _slice_of_import(conn, e)
+    how = f"blockyard retract --slice {_shell_word(sl)} --reason \"...\""
+    if not exact:
+        how += (f" (that slice also takes the live runs of campaign {e.campaign}'s other imports: narrow it "
+                "with solver= or family= terms)")
+    return (f"{shown}: --again loads a file whose earlier imports are wholly retracted, but import {e.id} "
+            f"(campaign {e.campaign}, loaded {e.when} UTC) is {e.state}, with {e.live} live "
+            f"{'run' if e.live == 1 else 'runs'}; retract them first: {how}")
+
+
+def _slice_of_import(conn, e: _Earlier) -> tuple[str, bool]:
+    """Slice text that takes an import's live runs, and whether it takes no other live runs. The
+    slice language has no term for an import: its campaign does when no other import of the
+    campaign has live runs (the cell summaries hold live runs only); else its campaign and time
+    range, when that range meets no other import's and every live run of it has a time."""
+    C, I, R = S.cell_stats, S.imports, S.runs
+    base = f"campaign={_slice_value(e.campaign)}"
+    others = [r[0] for r in conn.execute(select(C.c.import_id).where(
+        C.c.campaign_id == e.campaign_id, C.c.import_id != e.id).distinct())]
+    if not others:
+        return base, True
+    if e.first_finished is None or e.first_run_id is None:
+        return base, False
+    untimed = conn.execute(select(func.count()).select_from(R).where(
+        R.c.id.between(e.first_run_id, e.last_run_id), R.c.import_id == e.id, R.c.retraction_id.is_(None),
+        R.c.finished_at.is_(None))).scalar()
+    meets = conn.execute(select(func.count()).select_from(I).where(
+        I.c.id.in_(others), I.c.first_finished <= e.last_finished, I.c.last_finished >= e.first_finished)).scalar()
+    if untimed or meets:
+        return base, False
+
+    def iso(t: int) -> str:
+        return time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(t))
+
+    # until is exclusive (a run finished before it): one second past the last
+    return f"{base} since={iso(e.first_finished)} until={iso(e.last_finished + 1)}", True
+
+
+def _slice_value(v: str) -> str:
+    """A name as a slice term's value: quoted where a space, comma, bar, quote or operator would
+    otherwise end or split it (the slice language's own rules, docs/analysis.md)."""
+    import re
+
+    if v and not re.search(r"[\s,|'\"=<>!~]", v):
+        return v
+    if '"' not in v:
+        return f'"{v}"'
+    if "'" not in v:
+        return f"'{v}'"
+    return "".join(f"'{part}'" if part[0] == '"' else f'"{part}"' for part in re.findall(r'"+|[^"]+', v))
+
+
 def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layout, skip_bad: bool,
-          dry_run: bool, rejects, progress, allow_bulk: bool) -> FileReport:
+          dry_run: bool, rejects, progress, allow_bulk: bool, again: bool = False, replaces: int | None = None,
+          block: int = BLOCK_BYTES) -> FileReport:
     shown = info.name
-    report = FileReport(file=shown, status="loaded", campaign=campaign)
-    fl = _FileLoad(wh, info, layout, skip_bad)
+    report = FileReport(file=shown, status="loaded", campaign=campaign, replaces=replaces)
+    fl = _FileLoad(wh, info, layout, skip_bad, again, block)
+    fl.campaign, fl.replaces = campaign, replaces
     total = max(info.lines - (1 if info.delimited else 0), 1)
     with wh.engine.connect() as conn:  # the metrics known already (they are not guessed at)
         fl.known_metrics = {r[0] for r in conn.execute(select(S.metrics.c.name))}
@@ -1200,6 +1410,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
             campaign_id = _campaign_id(conn, campaign)
             import_id = conn.execute(insert(S.imports).values(
                 campaign_id=campaign_id, file_name=p.name, sha256=info.sha256, layout=layout.text,
+                replaces_import_id=fl.replaces,
                 rows_read=0, rows_loaded=0, rows_rejected=0, rows_skipped=0,
                 loaded_at=int(time.time()), tool_version=__version__)).inserted_primary_key[0]
             dims = Dimensions(conn)
@@ -1339,7 +1550,9 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 report.status = "checked"
                 report.import_id = None
                 trans.rollback()
-                report.message = f"would load {loaded} {'run' if loaded == 1 else 'runs'} into campaign {campaign}; nothing was stored"
+                instead = f", in place of import {fl.replaces}" if fl.replaces is not None else ""
+                report.message = (f"would load {loaded} {'run' if loaded == 1 else 'runs'} into campaign {campaign}"
+                                  f"{instead}; nothing was stored")
                 return report
             if exact_key:
                 _campaign_key(conn, campaign_id, create=False)
@@ -1348,6 +1561,8 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                 _write_rejects(target, fl.rejects, shown, fl.header)
                 report.rejects_file = str(target)
     parts = [f"{loaded} {'run' if loaded == 1 else 'runs'} loaded into campaign {campaign}"]
+    if fl.replaces is not None:
+        parts.append(f"in place of import {fl.replaces} (wholly retracted)")
     if report.rows_rejected:
         parts.append(f"{report.rows_rejected} rejected (see {report.rejects_file})")
     if skipped:

@@ -65,9 +65,9 @@ def first_pass(path: Path, shown: str) -> SourceInfo:
     Whether the text is UTF-8 is checked by the readers as they go (pyarrow checks every string);
     `locate_bad_text` finds the line when one is not.
     """
+    if path.is_dir():  # before the name is looked at: a folder has no format to guess
+        raise InputError(f"{shown}: is a folder, not a file; name the result files in it")
     fmt, gz = detect_format(path, shown)
-    if path.is_dir():
-        raise InputError(f"{shown}: is a folder, not a file")
     try:
         size = path.stat().st_size
     except FileNotFoundError:

@@ -26,6 +26,20 @@ from .scan import FORMATS, SourceInfo, _line_of_offset, detect_format, first_pas
 CHUNK_ROWS = 100_000  # rows per chunk handed to the checks and the writer; memory stays flat
 FIRST_CHUNK_ROWS = 5_000  # the first chunk is smaller, so that the writer starts sooner (then they double)
 BLOCK_BYTES = 1 << 20  # bytes of text the CSV parser reads at a time (it reads a few blocks ahead)
+MAX_BLOCK_BYTES = 1 << 28  # the largest block a file with long records is read in (records up to ~128 MB)
+CSV_FIELD_LIMIT = 2**31 - 1  # the csv module's field limit raised to (the largest a C long holds everywhere)
+
+
+class LongRecord(InputError):
+    """A record longer than the CSV parser's block (pyarrow parses a record within one block).
+    The loader catches it and reads the file again in a block that holds the longest record
+    (`longest_record`); the message is what a user sees only if that cannot be done."""
+
+    def __init__(self, message: str, block: int):
+        super().__init__(message)
+        self.block = block
+
+
 def locate_bad_text(info: SourceInfo) -> InputError | None:
     """The first place where the text is not UTF-8, as an error naming the line; None if it all is."""
     decoder = codecs.getincrementaldecoder("utf-8")("strict")
@@ -70,6 +84,11 @@ def open_text(info: SourceInfo) -> io.TextIOBase:
 # --- CSV and TSV ------------------------------------------------------------------------------
 
 def _csv_reader(info: SourceInfo, fh):
+    # The csv module refuses a field past 128 KiB (its default limit); pyarrow reads any field
+    # its block holds, and the header and line-number readers must read what it does. The limit
+    # is the module's one process-wide setting; it is only ever raised, and nothing relies on it.
+    if csv.field_size_limit() < CSV_FIELD_LIMIT:
+        csv.field_size_limit(CSV_FIELD_LIMIT)
     if info.fmt == "tsv":
         return csv.reader(fh, delimiter="\t", quoting=csv.QUOTE_NONE)
     return csv.reader(fh, delimiter=",", quotechar='"', doublequote=True)
@@ -142,11 +161,13 @@ class RecordLines:
 
 
 def read_delimited(info: SourceInfo, header: list[str], header_line: int,
-                   on_bad_row: Callable[[int, str, int, int], InputError | None]) -> Iterator[tuple[pa.Table, np.ndarray]]:
+                   on_bad_row: Callable[[int, str, int, int], InputError | None],
+                   block_bytes: int = BLOCK_BYTES) -> Iterator[tuple[pa.Table, np.ndarray]]:
     """Chunks of text columns named as in the header, and each record's physical line.
 
     `on_bad_row(line, text, expected, actual)` is told of every row with the wrong number of
-    fields; it returns an error to stop the read, or None to skip the row.
+    fields; it returns an error to stop the read, or None to skip the row. A record longer than
+    `block_bytes` raises `LongRecord`.
     """
     import pyarrow.csv as pacsv
 
@@ -176,7 +197,7 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
             return "error"
         return "skip"
 
-    read_opts = pacsv.ReadOptions(column_names=names, skip_rows=header_line, block_size=BLOCK_BYTES,
+    read_opts = pacsv.ReadOptions(column_names=names, skip_rows=header_line, block_size=block_bytes,
                                   use_threads=False)  # one thread: in order, and row numbers for ragged rows
     parse_opts = pacsv.ParseOptions(
         delimiter="\t" if info.fmt == "tsv" else ",",
@@ -195,6 +216,9 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
     def failed(exc: Exception) -> Exception:
         if stop and not isinstance(stop[0], UnicodeDecodeError):
             return stop[0]
+        if "straddl" in str(exc):  # pyarrow: "straddling object straddles two block boundaries"
+            return LongRecord(f"{info.name}: a record is longer than the {block_bytes} bytes the reader "
+                              "takes at a time", block_bytes)
         if stop or "UTF8" in str(exc) or "UTF-8" in str(exc):
             found = locate_bad_text(info)
             if found is not None:
@@ -243,6 +267,66 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
             limit = min(CHUNK_ROWS, limit * 2)
     if buffer:
         yield flush()
+
+
+def _text_chunks(info: SourceInfo, size: int = 1 << 22) -> Iterator[bytes]:
+    """The file's text as bytes (gzip undone), a few MB at a time."""
+    opener = gzip.open if info.gzipped else open
+    with opener(info.path, "rb") as fh:
+        while True:
+            data = fh.read(size)
+            if not data:
+                return
+            yield data
+
+
+def longest_record(info: SourceInfo) -> tuple[int, int, int]:
+    """(bytes, line, column) of the longest record of a CSV or TSV file: its length, the physical
+    line it starts on, and the position (from 0) of its longest field. Only for a file whose
+    records outgrow the reader's block, which is rare: two passes over the text, vectorized, with
+    the quotes of a CSV file followed (RFC 4180: a line break or comma inside quotes is data)."""
+    quoted = info.fmt == "csv"
+    parity = 0  # inside quotes at the end of the text so far
+    offset = newlines = 0  # bytes and line breaks before this chunk
+    prev, prev_line = -1, 0  # where the last record ended (its line break), and the line breaks up to it
+    best_len, best_start, best_line = -1, 0, 1
+    for data in _text_chunks(info):
+        b = np.frombuffer(data, dtype=np.uint8)
+        nl = b == 10
+        ends = nl
+        if quoted:
+            inside = (np.cumsum(b == 34, dtype=np.int64) + parity) & 1
+            parity = int(inside[-1])
+            ends = nl & (inside == 0)
+        pos = np.flatnonzero(ends)
+        if len(pos):
+            starts = np.concatenate(([prev + 1 - offset], pos[:-1] + 1))
+            lengths = pos - starts
+            k = int(np.argmax(lengths))
+            if lengths[k] > best_len:
+                best_len, best_start = int(lengths[k]), offset + int(starts[k])
+                best_line = prev_line + 1 if k == 0 else newlines + int(np.count_nonzero(nl[:pos[k - 1] + 1])) + 1
+            prev = offset + int(pos[-1])
+            prev_line = newlines + int(np.count_nonzero(nl[:pos[-1] + 1]))
+        newlines += int(np.count_nonzero(nl))
+        offset += len(b)
+    if offset - (prev + 1) > best_len:  # the last record, when no line break ends it
+        best_len, best_start, best_line = offset - (prev + 1), prev + 1, prev_line + 1
+    # the record's own bytes, and its widest field
+    parts, at = [], 0
+    for data in _text_chunks(info):
+        lo, hi = max(best_start - at, 0), min(best_start + best_len - at, len(data))
+        if lo < hi:
+            parts.append(data[lo:hi])
+        at += len(data)
+        if at >= best_start + best_len:
+            break
+    b = np.frombuffer(b"".join(parts), dtype=np.uint8)
+    seps = b == (44 if quoted else 9)
+    if quoted:
+        seps &= (np.cumsum(b == 34, dtype=np.int64) & 1) == 0
+    cuts = np.concatenate(([-1], np.flatnonzero(seps), [len(b)]))
+    return max(best_len, 0), best_line, int(np.argmax(np.diff(cuts)))
 
 
 def _arrow_msg(exc: Exception) -> str:

@@ -18,6 +18,8 @@ WHOLE_RE = r"^[+-]?[0-9]{1,19}$"
 DATE_START_RE = r"^[0-9]{4}-[0-9]{2}-[0-9]{2}"
 ZONED_RE = r"[T ][0-9]{2}(:?[0-9]{2}(:?[0-9]{2}([.,][0-9]+)?)?)?(Z|[+-][0-9]{2}(:?[0-9]{2})?)$"
 WHOLE_LIMIT = 2**53  # whole numbers written as decimals are exact up to here
+DIGITS_RE = r"^[+-]?[0-9]+$"
+INT64_SPAN = 2.0**63  # a stored seed is a signed 64-bit integer: its magnitude stays below this
 
 
 def combined(arr) -> pa.Array:
@@ -75,6 +77,33 @@ def _may_need_trim(arr: pa.Array) -> bool:
     if not full.all():
         starts, ends = starts[full], ends[full]
     return bool(_EDGE[data[starts]].any() or _EDGE[data[ends - 1]].any())
+
+
+# control characters (Unicode general category Cc): C0 U+0000..U+001F, DEL U+007F and C1
+# U+0080..U+009F (from memory of the Unicode Character Database); RE2 syntax, for Arrow's kernels
+CONTROL_RE = r"[\x{00}-\x{1f}\x{7f}-\x{9f}]"
+
+
+def has_controls(arr: pa.Array) -> bool:
+    """Whether some value holds a control character. Looks at the bytes (a few vectorized passes,
+    no regular expression per value): UTF-8 writes C0 and DEL as those very bytes, and C1 as 0xC2
+    followed by 0x80..0x9F (0xC2 only ever leads a character), so no other character can match."""
+    _, data = _bytes_of(arr)
+    if len(data) == 0:
+        return False
+    if data.min() < 0x20:
+        return True
+    if data.max() < 0x7F:  # ASCII without DEL, the common case: two reductions and done
+        return False
+    if (data == 0x7F).any():
+        return True
+    lead = np.flatnonzero(data[:-1] == 0xC2)
+    return bool(lead.size) and bool((data[lead + 1] <= 0x9F).any())  # (a continuation byte is >= 0x80)
+
+
+def controls(arr: pa.Array) -> np.ndarray:
+    """The values that hold a control character (the full test, once `has_controls` says some do)."""
+    return mask(pc.match_substring_regex(arr, CONTROL_RE))
 
 
 def byte_lengths(arr: pa.Array) -> np.ndarray:
@@ -165,25 +194,30 @@ def numbers(arr, missing: tuple[str, ...] = ()) -> tuple[np.ndarray, np.ndarray,
     return vals, empty, bad, nonfinite, text
 
 
-def wholes(arr, default: int = 0) -> tuple[np.ndarray, np.ndarray, pa.Array]:
-    """(values, not a whole number, the text) for seed or replicate; empty means `default`."""
+def wholes(arr, default: int = 0) -> tuple[np.ndarray, np.ndarray, pa.Array, np.ndarray]:
+    """(values, not read, the text, out of range) for seed or replicate; empty means `default`.
+
+    "Out of range" marks the values among those not read that are whole numbers all the same,
+    only past the 64-bit range (a message tells them apart from '2.5' or 'two').
+    """
     arr = combined(arr)
     n = len(arr)
     if pa.types.is_integer(arr.type):
         filled = pc.fill_null(arr, default) if arr.null_count else arr
         cast, bad = cast_masked(filled, pa.int64())  # an unsigned value past the int64 range
-        return _ints(cast), bad, as_text(arr)
+        return _ints(cast), bad, as_text(arr), bad
     if pa.types.is_floating(arr.type):
         f = _floats(pc.fill_null(arr, float(default)) if arr.null_count else arr)
-        bad = ~np.isfinite(f) | (np.floor(f) != f) | (np.abs(f) >= WHOLE_LIMIT)
-        return np.where(bad, 0, f).astype(np.int64), bad, as_text(arr)
+        whole = np.isfinite(f) & (np.floor(f) == f)
+        bad = ~whole | (np.abs(f) >= WHOLE_LIMIT)
+        return np.where(bad, 0, f).astype(np.int64), bad, as_text(arr), whole & (np.abs(f) >= INT64_SPAN)
     text = as_text(arr)
     off, data = _bytes_of(text)
     if len(text) and (np.diff(off) > 0).all() and _DIGITS[data].all():
         # only digits and minus signs, none empty: a cast that succeeds read each value as
         # WHOLE_RE would have (the cast alone would also read '0x10')
         try:
-            return pc.cast(text, pa.int64()).to_numpy(), np.zeros(n, dtype=bool), text
+            return pc.cast(text, pa.int64()).to_numpy(), np.zeros(n, dtype=bool), text, np.zeros(n, dtype=bool)
         except pa.ArrowInvalid:
             pass
     empty = mask(pc.equal(text, ""))
@@ -192,7 +226,7 @@ def wholes(arr, default: int = 0) -> tuple[np.ndarray, np.ndarray, pa.Array]:
     out = np.zeros(n, dtype=np.int64)
     if plain.all():
         try:
-            return pc.cast(sd, pa.int64()).to_numpy(), np.zeros(n, dtype=bool), text
+            return pc.cast(sd, pa.int64()).to_numpy(), np.zeros(n, dtype=bool), text, np.zeros(n, dtype=bool)
         except pa.ArrowInvalid:  # a '+' sign, or more digits than fit
             pass
     # signs, '3.0', '1e3': read as a number, keep it if it is whole
@@ -203,9 +237,15 @@ def wholes(arr, default: int = 0) -> tuple[np.ndarray, np.ndarray, pa.Array]:
     shaped = rest & mask(pc.match_substring_regex(sd, NUMBER_RE))
     cast, castbad = cast_masked(_keep_where(sd, shaped), pa.float64())
     f = _floats(cast)
-    whole = shaped & ~castbad & np.isfinite(f) & (np.floor(f) == f) & (np.abs(f) < WHOLE_LIMIT)
+    integral = shaped & ~castbad & np.isfinite(f) & (np.floor(f) == f)
+    whole = integral & (np.abs(f) < WHOLE_LIMIT)
     out[whole] = f[whole].astype(np.int64)
-    return out, rest & ~whole, text
+    bad = rest & ~whole
+    # past the range: digits that did not fit (any count of them: a float of 400 digits is inf),
+    # or a whole number written as a float beyond it ('1e19')
+    digits = mask(pc.match_substring_regex(sd, DIGITS_RE))
+    big = bad & (digits | (integral & (np.abs(f) >= INT64_SPAN)))
+    return out, bad, text, big
 
 
 _TS = {"s": 1, "ns": 10**9}

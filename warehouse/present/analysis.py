@@ -221,6 +221,11 @@ def render_plan(res) -> str:
         out.append(f"blocks needed  {d['blocks_needed']}   (power reached: {num(d.get('achieved_power'), 3)})")
     else:
         out.append(f"RCBD F test with {d.get('blocks')} blocks: power {num(d.get('power'), 3)} at alpha {num(d.get('alpha'), 3)}")
+    more, held = (res.source or {}).get("blocks_more"), (res.source or {}).get("blocks_held")
+    if more is not None:
+        aid = res.source["analysis_id"]
+        out.append(f"needs {d['blocks_needed']} blocks; the slice of analysis {aid} holds {held}: {more} more"
+                   if more else f"the slice of analysis {aid} holds {held} blocks: enough")
     out.append("the number of observations is the number of blocks (instance groups), not the number of runs")
     for w in d.get("warnings", []):
         out.append(f"caution   {w}")

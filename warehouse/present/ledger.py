@@ -37,7 +37,8 @@ def summary_doc(st) -> dict:
     return {"analysis_id": st.id, "kind": st.kind, "created_at": _when(st.created_at), "slice": st.slice_text,
             "metric": st.metric, "headline": headline(st.kind, st.result), "state": st.state,
             "stale_runs": st.stale_runs, "claims": st.claims,
-            "tags": sorted({t for c in st.claims for t in c["tags"]})}
+            "tags": sorted({t for c in st.claims for t in c["tags"]}),
+            "renewed_from": st.renewed_from, "renewed_as": st.renewed_as}
 
 
 def full_doc(st) -> dict:
@@ -47,22 +48,44 @@ def full_doc(st) -> dict:
     return d
 
 
+def cut(text: str, width: int) -> str:
+    """`text` in at most `width` characters; a shortened one ends in an ellipsis, so that the
+    reader knows there is more (recall ID shows it whole)."""
+    text = " ".join(str(text).split())  # a line break inside a claim would break the table's rows
+    return text if len(text) <= width else text[: max(width - 1, 0)].rstrip() + "…"
+
+
+def chain(st) -> str:
+    parts = []
+    if st.renewed_from is not None:
+        parts.append(f"renewed from {st.renewed_from}")
+    if st.renewed_as is not None:
+        parts.append(f"renewed as {st.renewed_as}")
+    return ", ".join(parts)
+
+
 def render_recall_list(items) -> str:
     if not items:
         return "no stored analysis matches"
     rows = []
     for st in items:
-        claim = st.claims[0]["text"] if st.claims else ""
-        if len(st.claims) > 1:
-            claim += f" (+{len(st.claims) - 1} more)"
-        tags = ", ".join(sorted({t for c in st.claims for t in c["tags"]}))
-        rows.append([str(st.id), st.when(), st.kind, st.state, headline(st.kind, st.result)[:70], claim[:60], tags])
+        claim = ""
+        if st.claims:
+            more = f" (+{len(st.claims) - 1} more)" if len(st.claims) > 1 else ""
+            claim = cut(st.claims[0]["text"], 60 - len(more)) + more
+        tags = cut(", ".join(sorted({t for c in st.claims for t in c["tags"]})), 40)
+        state = st.state + (f"; {chain(st)}" if chain(st) else "")
+        rows.append([str(st.id), st.when(), st.kind, state, cut(headline(st.kind, st.result), 70), claim, tags])
     return table(rows, ["id", "made", "kind", "state", "result", "claim", "tags"])
 
 
 def render_recall_one(st) -> str:
     items = [("analysis", f"{st.id} ({st.kind}), made {st.when()} UTC"),
              ("state", STATE_WORDS[st.state] + (f" ({st.stale_runs} runs)" if st.state == "stale" else "")),
+             *([("renewed from", f"analysis {st.renewed_from} (this one re-ran it on newer data and took its claims)")]
+               if st.renewed_from is not None else []),
+             *([("renewed as", f"analysis {st.renewed_as} (it re-ran this one on newer data and holds its claims)")]
+               if st.renewed_as is not None else []),
              ("slice", st.slice_text or "(everything)"), ("metric", st.metric or "-"),
              ("collapse", ", ".join(f"{k} {v}" for k, v in st.settings.get("collapse", {}).items()) or "-"),
              ("options", ", ".join(f"{k} {v}" for k, v in st.settings.get("options", {}).items() if v is not None) or "-"),
@@ -76,8 +99,10 @@ def render_recall_one(st) -> str:
         out.append(f"claim {c['id']}  \"{c['text']}\"{tags}  ({_when(c['created_at'])})")
     for w in st.result.get("warnings", []):
         out.append(f"caution   {w}")
-    if st.state != "fresh":
-        out.append(f"next: blockyard recheck {st.id}")
+    if st.renewed_as is not None:
+        out.append(f"next: blockyard recall {st.renewed_as} (the renewal of this analysis)")
+    elif st.state != "fresh":
+        out.append(f"next: blockyard recheck {st.id} (add --renew to keep the re-run and move the claims to it)")
     return "\n".join(out)
 
 
@@ -118,4 +143,24 @@ def render_recheck(rc) -> str:
         out.append(f"changed   {c}")
     if rc.error:
         out.append(f"caution   {rc.error}")
+    out += _renewal_lines(rc)
     return "\n".join(out)
+
+
+def _renewal_lines(rc) -> list[str]:
+    st = rc.stored
+    if rc.stored_analysis is not None:
+        moved = rc.claims_moved
+        claims = (f"claim{'s' if len(moved) > 1 else ''} {', '.join(map(str, moved))} moved to it from analysis {st.id}"
+                  if moved else f"analysis {st.id} had no claims to move")
+        return [f"stored    analysis {rc.stored_analysis}, renewing analysis {st.id} (same kind, slice, metric "
+                f"and settings, on today's data); analysis {st.id} stays as kept",
+                f"claims    {claims}"]
+    if rc.renew:
+        return [f"stored    nothing: analysis {st.id} is unchanged, so it needs no renewal"]
+    if st.renewed_as is not None:
+        return [f"renewed   analysis {st.id} was renewed as analysis {st.renewed_as}, which holds its claims "
+                f"(blockyard recheck {st.renewed_as})"]
+    if rc.status in ("data-changed", "conclusion-changed") and rc.error is None:
+        return [f"next      blockyard recheck {st.id} --renew keeps this re-run and moves the claims to it"]
+    return []

@@ -6,6 +6,10 @@ from .text import pairs, table
 
 def render_load(res) -> str:
     out = []
+    if getattr(res, "created", None):
+        out.append(f"created warehouse {res.created}")
+    if getattr(res, "unmade", None):
+        out.append(f"no warehouse at {res.unmade} yet: checked against an empty one (a load without --dry-run creates it)")
     for r in res.reports:
         if r.status == "refused":
             out.append(f"refused  {r.file}: nothing from it was stored (the reason is on stderr)")
@@ -38,7 +42,7 @@ def render_inventory(inv) -> str:
         lines = [f"warehouse  {inv.warehouse}",
                  f"runs       {c['runs']} ({c['retracted']} retracted, not counted)",
                  f"campaigns  {c['campaigns']}    imports {c['imports']}    hosts {c['hosts']}",
-                 f"solvers    {c['solvers']}    metrics {c['metrics']}",
+                 f"solvers    {c['solvers']} ({c['treatments']} treatments: solver@version)    metrics {c['metrics']}",
                  f"families   {c['families']}    groups (blocks) {c['groups']}    instances {c['instances']}"]
         return "\n".join(lines)
     if not inv.rows:

@@ -393,6 +393,18 @@ def _coverage_blocks(st) -> list:
     return out
 
 
+def _chain_pairs(st) -> list[tuple[str, str]]:
+    """Renewals (recheck --renew): where this analysis's claims came from, or went."""
+    out = []
+    if getattr(st, "renewed_from", None) is not None:
+        out.append(("renewed from", f"analysis {st.renewed_from}: this analysis re-ran it on newer data "
+                                    "and took over its claims"))
+    if getattr(st, "renewed_as", None) is not None:
+        out.append(("renewed as", f"analysis {st.renewed_as}: it re-ran this analysis on newer data "
+                                  "and holds its claims now"))
+    return out
+
+
 def _provenance_blocks(data: ReportData) -> list:
     st = data.stored
     out: list = [Heading("provenance"),
@@ -401,6 +413,7 @@ def _provenance_blocks(data: ReportData) -> list:
                      ("runs", f"ids up to {st.max_run_id}; {getattr(st, 'stale_runs', 0)} of the runs it stood on retracted since"
                       if st.max_run_id else "none: this analysis stands on no runs of its own"),
                      ("record", "intact (matches its digest)" if st.intact else "changed since it was kept (digest mismatch)"),
+                     *_chain_pairs(st),
                      ("analysed at", _utc(st.created_at)),
                      ("exported at", _utc(data.exported_at))])]
     out.append(Heading("imports the slice drew on", 3))
@@ -429,6 +442,9 @@ def content(data: ReportData) -> list:
     if st.claims:
         blocks.append(Items([(f"{c['text']} (claim {c['id']}, kept {_utc(c.get('created_at'))})", list(c.get("tags") or []))
                              for c in st.claims]))
+    elif getattr(st, "renewed_as", None) is not None:
+        blocks.append(Para(f"no claim rests on this analysis now: any it had moved to analysis {st.renewed_as}, "
+                           "which renewed it (see provenance)"))
     else:
         blocks.append(Para(f"no claim has been kept with this analysis (blockyard keep \"...\" --analysis {st.id})"))
     blocks.append(Heading("what was analysed"))

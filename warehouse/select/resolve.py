@@ -13,7 +13,7 @@ from sqlalchemy import and_, false, not_, or_, select, true
 from ..errors import SliceError
 from ..store import schema as S
 from ..store.ranges import id_ranges
-from .slices import STATUSES, Slice, Term, _suggest, parse_when
+from .slices import STATUSES, Slice, Term, _suggest, brief, parse_when
 from .versions import compare
 
 R = S.runs
@@ -96,7 +96,7 @@ def _ids(mapping: dict[int, str], term: Term, n: int, what: str) -> list[int]:
     if term.op == "=":
         for v in term.values:
             if v not in names:
-                raise SliceError(f"slice term {n} '{term.text()}': no {what} '{v}' in this warehouse{_suggest(v, names)}")
+                raise SliceError(f"slice term {n} '{brief(term.text())}': no {what} '{brief(v)}' in this warehouse{_suggest(v, names)}")
     positive = "~" if term.op == "~" else "="
     return [i for i, name in mapping.items() if _match(positive, term.values, name)]
 
@@ -124,7 +124,7 @@ def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
             # (NAME@VERSION+BUILD, NAME@VERSION[PARAMETERS]) names just that one
             ids = [i for i, s in dims.solvers.items() if (s[0] == name and s[1] == version) or dims.treatment(i) == v]
             if not ids:
-                raise SliceError(f"slice term {n} '{term.text()}': no treatment '{v}' in this warehouse{_suggest(v, dims.values('treatment'))}")
+                raise SliceError(f"slice term {n} '{brief(term.text())}': no treatment '{brief(v)}' in this warehouse{_suggest(v, dims.values('treatment'))}")
             wanted.update(ids)
         return T.c.solver_id.in_(sorted(wanted))
     if key == "solver":
@@ -155,7 +155,7 @@ def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
             if term.op == "=":
                 for v in term.values:
                     if v not in short.values() and v not in full.values():
-                        raise SliceError(f"slice term {n} '{term.text()}': no group '{v}' in this warehouse{_suggest(v, dims.values('group'))}")
+                        raise SliceError(f"slice term {n} '{brief(term.text())}': no group '{brief(v)}' in this warehouse{_suggest(v, dims.values('group'))}")
             positive = "~" if term.op == "~" else "="
             gids = [g for g in dims.groups if _match(positive, term.values, short[g]) or _match(positive, term.values, full[g])]
         if "instance_id" not in T.c:  # the block summaries carry the group itself
@@ -176,7 +176,7 @@ def _term_condition(term: Term, n: int, dims: Dims, conn, T=R):
         return _in(T.c.status, codes, neg)
     if key == "seed":
         if term.op == "~":
-            raise SliceError(f"slice term {n} '{term.text()}': seeds are numbers; use = != < <= > >=")
+            raise SliceError(f"slice term {n} '{brief(term.text())}': seeds are numbers; use = != < <= > >=")
         vals = [int(v) for v in term.values]
         if term.op in ("=", "!="):
             return _in(T.c.seed, vals, neg)

@@ -26,6 +26,22 @@ EQ_ONLY = {"since", "until", "retracted"}
 STATUSES = ("ok", "timeout", "failed", "infeasible")
 _KEY = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 _RELATIVE = re.compile(r"^(\d+)([hdw])$")
+SHOWN_CHARS = 60  # of a term or value quoted in an error message
+
+
+def brief(text: str, limit: int | None = SHOWN_CHARS) -> str:
+    """User text as a one-line message shows it: what would break the line or hide itself
+    (newlines, tabs, control and format characters, lone surrogates) escaped as Python writes it,
+    and cut after `limit` characters with '...'."""
+    out, size = [], 0
+    for ch in text:
+        piece = ch if ch.isprintable() else ch.encode("unicode_escape").decode("ascii")  # \n, \x1b, \u2028
+        if limit is not None and size + len(piece) > limit:
+            out.append("...")
+            break
+        out.append(piece)
+        size += len(piece)
+    return "".join(out)
 
 
 @dataclass(frozen=True)
@@ -165,7 +181,7 @@ def parse_when(value: str, key: str, now: float | None = None) -> int:
         try:  # it must name a real moment, so that it can be stored as one
             datetime.fromtimestamp(epoch, tz=timezone.utc)
         except (OverflowError, OSError, ValueError):
-            raise SliceError(f"{key}={value}: that reaches back before any calendar date; use a smaller count") from None
+            raise SliceError(f"{key}={brief(value)}: that reaches back before any calendar date; use a smaller count") from None
         return epoch
     try:
         dt = datetime.fromisoformat(value.replace("Z", "+00:00"))
@@ -173,7 +189,7 @@ def parse_when(value: str, key: str, now: float | None = None) -> int:
             dt = dt.replace(tzinfo=timezone.utc)
         epoch = int(dt.timestamp())
     except (ValueError, OverflowError):
-        raise SliceError(f"{key}={value}: not a date; use an ISO date (2026-10-01), a date and time, or 7d / 4w / 12h") from None
+        raise SliceError(f"{key}={brief(value)}: not a date; use an ISO date (2026-10-01), a date and time, or 7d / 4w / 12h") from None
     if key == "until" and _date_only(value):  # a whole day: up to its end
         epoch += 86400
     return epoch
@@ -208,7 +224,7 @@ def parse(text: str | None) -> Slice:
 
 
 def _term(raw: str, n: int) -> Term:
-    where = f"slice term {n} '{raw}'"
+    where = f"slice term {n} '{brief(raw)}'"
     if raw[:1] in ("'", '"'):  # a quoted treatment: its name may hold operator characters
         vals = _values(raw, where)
         if all("@" in v and v.split("@")[0] and v.rpartition("@")[2] for v in vals):
@@ -227,7 +243,7 @@ def _term(raw: str, n: int) -> Term:
         raise SliceError(f"{where}: expected KEY=VALUE (keys: {', '.join(KEYS)}) or NAME@VERSION")
     key = m.group(0).lower()
     if key not in KEYS:
-        raise SliceError(f"{where}: unknown key '{m.group(0)}'{_suggest(key, KEYS)}")
+        raise SliceError(f"{where}: unknown key '{brief(m.group(0))}'{_suggest(key, KEYS)}")
     value_text = rest[len(op):]
     if value_text == "":
         raise SliceError(f"{where}: no value after '{op}'")
@@ -244,17 +260,19 @@ def _term(raw: str, n: int) -> Term:
         try:
             parse_when(vals[0], key)
         except SliceError as exc:
-            raise SliceError(f"{where}: {str(exc).removeprefix(f'{key}={vals[0]}: ')}") from None
+            raise SliceError(f"{where}: {str(exc).removeprefix(f'{key}={brief(vals[0])}: ')}") from None
     if key == "seed" and op != "~":
         for v in vals:
             if not re.fullmatch(r"-?\d+", v):
-                raise SliceError(f"{where}: seed '{v}' is not a whole number")
-            if not -2**63 <= int(v) < 2**63:
-                raise SliceError(f"{where}: seed '{v}' is out of range (seeds are stored as 64-bit whole numbers)")
+                raise SliceError(f"{where}: seed '{brief(v)}' is not a whole number")
+            # (the length first: Python refuses to read a number of more than 4300 digits, and
+            # a 64-bit seed takes at most 20 characters)
+            if len(v) > 40 or not -2**63 <= int(v) < 2**63:
+                raise SliceError(f"{where}: seed '{brief(v)}' is out of range (seeds are stored as 64-bit whole numbers)")
     if key == "status" and op != "~":
         for v in vals:
             if v not in STATUSES:
-                raise SliceError(f"{where}: status '{v}' is not one of {', '.join(STATUSES)}{_suggest(v, STATUSES)}")
+                raise SliceError(f"{where}: status '{brief(v)}' is not one of {', '.join(STATUSES)}{_suggest(v, STATUSES)}")
     if key == "retracted" and (len(vals) > 1 or vals[0] not in ("yes", "no", "any")):
         raise SliceError(f"{where}: retracted takes one of yes, no or any")
     return Term(key, op, vals)

@@ -3,6 +3,11 @@
 Where it lives: the explicit location, else $BLOCKYARD_WAREHOUSE, else ./blockyard.db. A plain
 path is SQLite (WAL, foreign keys on, a busy timeout); a postgresql:// URL is a team server
 reached through psycopg 3. Passwords are never shown: `Warehouse.display` hides them.
+
+A warehouse that cannot be written here (a read-only file, folder or mount, a full disk, a
+read-only server session) is opened for reading, and `Warehouse.read_only` says why: the reading
+commands work as usual, an analysis says once that it is not kept, and a write is refused in one
+line (docs/reliability.md).
 """
 from __future__ import annotations
 
@@ -32,6 +37,7 @@ class Warehouse:
     engine: Engine
     location: str  # what the user gave (path or URL), password hidden
     path: Path | None  # the SQLite file, or None on a server
+    read_only: str | None = None  # why it is open for reading only ("its file system is mounted read-only")
 
     @property
     def dialect(self) -> str:
@@ -71,8 +77,16 @@ def shown(location: str) -> str:
         return location.split("://", 1)[0] + "://..."
 
 
-def _sqlite_engine(path: Path) -> Engine:
-    engine = create_engine(f"sqlite:///{path}", future=True)
+def _sqlite_engine(path: Path, read_only: str | None = None) -> Engine:
+    """An engine on a SQLite file; `read_only` "ro" opens it read-only, "immutable" also without
+    the -shm file (SQLite documentation, URI filenames: mode=ro, immutable=1)."""
+    extra = {}
+    if read_only:
+        query = "mode=ro&immutable=1" if read_only == "immutable" else "mode=ro"
+        uri = f"{path.resolve().as_uri()}?{query}"  # as_uri escapes ? # % and spaces in the path
+        # the URL still names the file, so that SQLAlchemy pools it as a file (not as :memory:)
+        extra["creator"] = lambda: sqlite3.connect(uri, uri=True, check_same_thread=False)
+    engine = create_engine(f"sqlite:///{path}", future=True, **extra)
 
     @event.listens_for(engine, "connect")
     def _on_connect(dbapi_conn, _record):
@@ -122,13 +136,17 @@ def _make(location: str) -> Warehouse:
     return Warehouse(_sqlite_engine(path), str(path), path)
 
 
+def _read_revision(wh: Warehouse) -> str | None:
+    with wh.engine.connect() as conn:
+        if not inspect(conn).has_table("alembic_version"):
+            return None
+        return conn.execute(text("SELECT version_num FROM alembic_version")).scalar()
+
+
 def stored_revision(wh: Warehouse) -> str | None:
     """The alembic revision a warehouse is at, or None when it has no schema."""
     try:
-        with wh.engine.connect() as conn:
-            if not inspect(conn).has_table("alembic_version"):
-                return None
-            return conn.execute(text("SELECT version_num FROM alembic_version")).scalar()
+        return _read_revision(wh)
     except OperationalError as exc:
         raise StorageError(f"cannot open warehouse {wh.display}: {_reason(exc)}") from None
     except DatabaseError as exc:
@@ -150,7 +168,7 @@ def open_warehouse(location: str | None = None) -> Warehouse:
         )
     if not _is_url(location) and Path(location).expanduser().stat().st_size == 0:
         raise StorageError(f"{location} is an empty file, not a warehouse; create one there with: blockyard init -w {location}")
-    wh = _make(location)
+    wh = _open(location)
     rev = stored_revision(wh)
     if rev is None:
         wh.close()
@@ -166,7 +184,104 @@ def open_warehouse(location: str | None = None) -> Warehouse:
             f"warehouse {wh.display} has schema {rev}, newer than this Blockyard's {SCHEMA_REVISION}; "
             "upgrade Blockyard"
         )
+    if not wh.is_sqlite:
+        wh.read_only = _server_read_only(wh)
     return wh
+
+
+# --- opening for reading where writing is not possible -------------------------------------------
+
+def _open(location: str) -> Warehouse:
+    """The warehouse opened to read and write where it can be written, else to read only.
+
+    SQLite documentation, Write-Ahead Logging ("Read-Only Databases"): a reader of a WAL database
+    needs the -shm file beside it; it opens read-only when the -shm and -wal files exist or can be
+    made, and otherwise only as immutable, which ignores the -wal file.
+    """
+    if _is_url(location):
+        return _make(location)
+    path = Path(location).expanduser()
+    why = _cannot_write(path)
+    if why is None:
+        wh = _make(location)
+        try:
+            _read_revision(wh)
+            return wh
+        except OperationalError as exc:
+            wh.close()
+            # a folder where the -shm file cannot be made, or a disk without room for it
+            why = _cannot_write(path, after_failure=True)
+            if why is None or not _could_not_open(exc):
+                raise StorageError(f"cannot open warehouse {wh.display}: {_reason(exc)}") from None
+        except DatabaseError:
+            return wh  # not a warehouse: stored_revision says so
+    return _open_to_read(path, why)
+
+
+def _cannot_write(path: Path, after_failure: bool = False) -> str | None:
+    """Why a SQLite warehouse cannot be written here, or None. Before any try, only what is sure
+    (a read-only mount or file); after an open failed, also the folder and the disk."""
+    try:
+        fs = os.statvfs(path.parent)
+    except OSError:
+        return None
+    if fs.f_flag & os.ST_RDONLY:
+        return "its file system is mounted read-only"
+    if not os.access(path, os.W_OK):
+        return "its file may not be written"
+    if not after_failure:
+        return None
+    if not os.access(path.parent, os.W_OK):
+        return "its folder may not be written, so SQLite cannot make its -shm file there"
+    if fs.f_bavail == 0:
+        return "the disk under it is full"
+    return None
+
+
+def _could_not_open(exc: Exception) -> bool:
+    low = _reason(exc).lower()
+    return any(w in low for w in ("unable to open", "disk i/o error", "readonly", "read-only", "full"))
+
+
+def _wal_frames(path: Path) -> bool:
+    """True when the -wal file beside the database holds anything (an empty one is what a failed
+    open leaves behind)."""
+    try:
+        return os.path.getsize(f"{path}-wal") > 0
+    except OSError:
+        return False
+
+
+def _open_to_read(path: Path, why: str) -> Warehouse:
+    last: Exception | None = None
+    for how in ("ro", "immutable"):
+        if how == "immutable" and _wal_frames(path):
+            # immutable would read the file without the changes still in its -wal: wrong numbers
+            raise StorageError(
+                f"cannot read warehouse {path}: it is read-only here ({why}), and its {path.name}-wal file holds "
+                f"changes that SQLite reads only through a {path.name}-shm file it cannot make here; open it once "
+                f"where it can be written, or copy {path.name} with {path.name}-wal to a folder that can be written")
+        wh = Warehouse(_sqlite_engine(path, how), str(path), path, read_only=why)
+        try:
+            _read_revision(wh)
+            return wh
+        except OperationalError as exc:
+            wh.close()
+            last = exc
+        except DatabaseError:
+            return wh  # not a warehouse: stored_revision says so
+    raise StorageError(f"cannot open warehouse {path}: {_reason(last)} ({why})")
+
+
+def _server_read_only(wh: Warehouse) -> str | None:
+    """PostgreSQL documentation, transaction_read_only: on for a session set read-only
+    (default_transaction_read_only) and on a hot standby."""
+    try:
+        with wh.engine.connect() as conn:
+            on = conn.exec_driver_sql("SHOW transaction_read_only").scalar()
+    except DatabaseError:
+        return None
+    return "the server session is read-only" if str(on).lower() == "on" else None
 
 
 def migrations_dir() -> Path:
@@ -220,6 +335,9 @@ def init_warehouse(location: str | None = None, revision: str = "head") -> Wareh
             raise StorageError(f"{location} already exists; open it with -w {location} or pick another name")
         if not path.parent.exists():
             raise StorageError(f"folder {path.parent} does not exist")
+        if not os.access(path.parent, os.W_OK):  # (on a read-only mount too, even for root)
+            raise StorageError(f"cannot create warehouse {location}: the folder {path.parent} may not be written "
+                               "here; pick a folder that can be")
     wh = _make(location)
     if stored_revision(wh) is not None:
         wh.close()
@@ -246,7 +364,7 @@ def upgrade_warehouse(location: str | None = None) -> tuple[Warehouse, str | Non
     location = resolve_location(location)
     if not _is_url(location) and not Path(location).expanduser().exists():
         raise StorageError(f"no warehouse at {location}")
-    wh = _make(location)
+    wh = _open(location)
     old = stored_revision(wh)
     if old is None:
         wh.close()
@@ -257,6 +375,14 @@ def upgrade_warehouse(location: str | None = None) -> tuple[Warehouse, str | Non
         wh.close()
         raise StorageError(f"warehouse {wh.display} has schema {old}, newer than this Blockyard's {SCHEMA_REVISION}; "
                            "upgrade Blockyard instead")
+    if wh.read_only is None and not wh.is_sqlite:
+        wh.read_only = _server_read_only(wh)
+    if wh.read_only is None and wh.path is not None and not os.access(wh.path.parent, os.W_OK):
+        wh.read_only = "its folder may not be written, and the upgrade copies the file aside there first"
+    if wh.read_only is not None:
+        wh.close()
+        raise StorageError(f"cannot upgrade warehouse {wh.display}: it is read-only here ({wh.read_only}); "
+                           "nothing was changed")
     backup = None
     if wh.path is not None:
         stamp = time.strftime("%Y%m%d-%H%M%S")
@@ -275,8 +401,9 @@ def upgrade_warehouse(location: str | None = None) -> tuple[Warehouse, str | Non
 
 
 
-def database_trouble(exc: BaseException, where: str = "") -> StorageError | None:
+def database_trouble(exc: BaseException, where: str = "", read_only: str | None = None) -> StorageError | None:
     """A database error a user can act on (disk full, read-only, locked, gone) as one plain line.
+    `read_only` is why the warehouse was opened for reading only, when it was (Warehouse.read_only).
 
     Returns None for anything that is not a database error, so callers can re-raise it.
     """
@@ -288,8 +415,10 @@ def database_trouble(exc: BaseException, where: str = "") -> StorageError | None
     low = text_.lower()
     if "full" in low:
         why = "the disk (or the database's size limit) is full"
+    elif read_only is not None:
+        why = f"it is read-only here ({read_only})"
     elif "readonly" in low or "read-only" in low or "read only" in low:
-        why = "it is read-only for this user"
+        why = "it is read-only here"
     elif "locked" in low:
         why = "another process kept it locked too long; try again"
     else:
