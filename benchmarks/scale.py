@@ -219,7 +219,7 @@ def main() -> None:
 
 WARM = r'''
 import io, sys, time
-from warehouse.cli import run
+from warehouse.front.cli import run
 args = ["-w", sys.argv[1], "blocktest", "--slice", sys.argv[2], "--metric", "pallets", "--json"]
 run(args, out=io.StringIO())
 best = float("inf")
@@ -239,8 +239,8 @@ def warm_blocktest(db: Path, slice_: str, repeat: int) -> float:
 def completion_latency(db: Path) -> tuple[float, float]:
     from prompt_toolkit.document import Document
 
-    from warehouse.session import Session
-    from warehouse.shell import make_completer  # noqa: F401  (raises ImportError if the shell lacks it)
+    from warehouse.commands.session import Session
+    from warehouse.front.shell import make_completer  # noqa: F401  (raises ImportError if the shell lacks it)
 
     session = Session(location=str(db))
     completer = make_completer(session)

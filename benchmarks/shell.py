@@ -49,8 +49,8 @@ def prompt(self, *a, **k):
     return original(self, *a, **k)
 PromptSession.prompt = prompt
 import io
-from warehouse.session import Session
-from warehouse.shell import run_shell
+from warehouse.commands.session import Session
+from warehouse.front.shell import run_shell
 with create_pipe_input() as inp:
     inp.send_text("exit\n")
     run_shell(Session(sys.argv[1]), input=inp, output=DummyOutput(), out=io.StringIO())
@@ -103,7 +103,7 @@ def build(db: Path, runs: int) -> None:
     print(f"building {db} with {runs:,} runs through blockyard load ...")
     t = time.perf_counter()
     write_campaign(src, runs)
-    from warehouse.demo import RACK_A_LAYOUT  # the demo declares these three metrics already
+    from warehouse.demo.scenario import RACK_A_LAYOUT  # the demo declares these three metrics already
 
     layout.write_text(RACK_A_LAYOUT)
     for argv in (["init", "-w", str(db)], ["load", str(src), "--campaign", "bench", "--layout", str(layout), "-w", str(db)]):
@@ -138,8 +138,8 @@ def prompt_ready(db: Path, repeat: int) -> float:
 def completion_latency(db: Path) -> dict:
     from prompt_toolkit.document import Document
 
-    from warehouse.session import Session
-    from warehouse.shell import Shell
+    from warehouse.commands.session import Session
+    from warehouse.front.shell import Shell
 
     session = Session(location=str(db))
     t = time.perf_counter()

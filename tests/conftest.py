@@ -92,7 +92,7 @@ class CliResult:
 @pytest.fixture
 def cli(location):
     """Run a blockyard command in-process against this test's warehouse."""
-    from warehouse.cli import run
+    from warehouse.front.cli import run
 
     def _run(*argv: str, warehouse: str | None = None) -> CliResult:
         out, err = io.StringIO(), io.StringIO()
@@ -103,7 +103,7 @@ def cli(location):
 
 
 def run_counts(location: str) -> dict:
-    from warehouse.inventory import counts
+    from warehouse.select.inventory import counts
     from warehouse.store.connect import open_warehouse
 
     w = open_warehouse(location)

@@ -10,10 +10,10 @@ import csv
 import pytest
 from scipy.stats import trim_mean
 
-from warehouse.collapse import collapse, parse_settings
+from warehouse.collapse.observations import collapse, parse_settings
 from warehouse.errors import InputError
 from warehouse.select.slices import parse
-from warehouse.session import Collapse
+from warehouse.collapse.settings import Collapse
 
 
 def write_runs(path, runs: list[dict]) -> str:

@@ -11,9 +11,10 @@ import random
 
 import pytest
 
-from warehouse.collapse import collapse
+from warehouse.collapse.observations import collapse
 from warehouse.select.slices import parse
-from warehouse.session import Collapse, Session
+from warehouse.collapse.settings import Collapse
+from warehouse.commands.session import Session
 
 from test_collapse import write_runs
 
@@ -183,7 +184,7 @@ WHOLE_SLICES = ["campaign=oct", "campaign=nov", "campaign=nov family=f2", "versi
 
 @pytest.mark.parametrize("metric", ["pallets", "seconds"])
 def test_the_block_summaries_give_what_the_pandas_collapse_gives(whole, metric):
-    from warehouse.collapse import _rows_from_blocks
+    from warehouse.collapse.observations import _rows_from_blocks
     from warehouse.select.resolve import Dims
 
     session = Session(location=whole)
@@ -213,7 +214,7 @@ def test_the_block_summaries_give_what_the_pandas_collapse_gives(whole, metric):
 
 
 def test_the_block_summaries_step_aside_when_a_treatment_misses_instances(varied):
-    from warehouse.collapse import _rows_from_blocks
+    from warehouse.collapse.observations import _rows_from_blocks
     from warehouse.select.resolve import Dims
 
     session = Session(location=varied)

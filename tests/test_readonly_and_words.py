@@ -78,7 +78,7 @@ def writing(tmp: Path, aid: int) -> dict[str, list[str]]:
 
 DRIVER = r"""
 import io, json, sys
-from warehouse.cli import run
+from warehouse.front.cli import run
 done = {}
 for name, argv in json.loads(sys.argv[1]).items():
     out, err = io.StringIO(), io.StringIO()
@@ -351,8 +351,8 @@ def test_a_mistyped_command_is_named_with_the_nearest_one(cli):
 
 
 def test_the_shell_names_the_nearest_option_too(location):
-    from warehouse.session import Session
-    from warehouse.shell import Shell
+    from warehouse.commands.session import Session
+    from warehouse.front.shell import Shell
 
     out = io.StringIO()
     session = Session(location=location)

@@ -16,7 +16,7 @@ import time
 
 import pytest
 
-from warehouse import resident
+from warehouse.front import handoff as resident
 
 pytestmark = pytest.mark.skipif(not resident.supported(), reason="the resident process is for Linux")
 
@@ -187,7 +187,7 @@ def test_commands_it_does_not_take_run_on_their_own(runtime, stocked, tmp_path):
 def test_resident_mistakes_are_one_line(idle, tmp_path, monkeypatch):
     import io
 
-    from warehouse.cli import run
+    from warehouse.front.cli import run
 
     monkeypatch.setenv("BLOCKYARD_RUNTIME_DIR", str(tmp_path / "rt"))
     err = io.StringIO()

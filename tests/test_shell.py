@@ -15,9 +15,12 @@ from prompt_toolkit.document import Document
 from prompt_toolkit.input import create_pipe_input
 from prompt_toolkit.output import DummyOutput
 
-from warehouse.commands import REGISTRY, Command
-from warehouse.session import Session
-from warehouse.shell import Shell, run_shell
+from warehouse.commands.registry import Command
+from warehouse.commands.session import Session
+from warehouse.front.cli import commands
+from warehouse.front.shell import Shell, run_shell
+
+REGISTRY = commands()  # the command line's table, which the shell gets from it
 
 TREATMENTS = [("stacker", "1.4", 0.0), ("stacker", "1.5", -1.5), ("packer", "2.0", 0.8)]
 FAMILIES = {"fam-a": ["g1", "g2", "g3"], "fam-b": ["g1", "g2", "g3"]}
@@ -58,10 +61,10 @@ def loaded(cli, tmp_path, location):
     return location
 
 
-def drive(location, lines, close=False):
+def drive(location, lines, close=False, table=None):
     """Type the lines into a shell on the warehouse; return (everything printed, the shell)."""
     out = io.StringIO()
-    session = Session(location=location)
+    session = Session(location=location, commands=table or commands())
     try:
         with create_pipe_input() as inp:
             inp.send_text("".join(line + "\n" for line in lines))
@@ -354,11 +357,12 @@ def test_help_lists_every_registered_command_and_shows_one(loaded, monkeypatch):
     def stall(session, a):
         raise KeyboardInterrupt
 
-    monkeypatch.setitem(REGISTRY, "stall", Command("stall", "a command that is interrupted", "blockyard stall",
-                                                   lambda p: None, stall))
-    text, sh = drive(loaded, ["help", "help versus", "help focus", "peek --help", "stall", "focus family=fam-a"])
+    table = dict(REGISTRY, stall=Command("stall", "a command that is interrupted", "blockyard stall",
+                                         lambda p: None, stall))
+    text, sh = drive(loaded, ["help", "help versus", "help focus", "peek --help", "stall", "focus family=fam-a"],
+                     table=table)
     listing = text.split("help COMMAND")[0]
-    for name in [*REGISTRY, "focus", "collapse", "metric", "exit", "quit"]:
+    for name in [*table, "focus", "collapse", "metric", "exit", "quit"]:
         if name != "shell":
             assert f"\n  {name} " in listing, name
     assert "usage: versus" in text and "BASELINE" in text and "example: versus stacker@1.4" in text
@@ -402,7 +406,7 @@ def test_history_is_kept_where_asked(loaded, tmp_path):
 
 
 def test_history_location_follows_the_environment(monkeypatch, tmp_path):
-    from warehouse.shell import history_path
+    from warehouse.front.shell import history_path
 
     monkeypatch.delenv("BLOCKYARD_HISTORY")
     monkeypatch.setenv("XDG_DATA_HOME", str(tmp_path / "data"))
@@ -429,10 +433,10 @@ def test_blockyard_shell_reads_piped_lines(loaded, cli, monkeypatch, capsys):
 def test_start_up_and_completion_import_no_analysis_libraries(loaded):
     code = (
         "import sys, io\n"
-        "from warehouse.cli import build_parser\n"
+        "from warehouse.front.cli import build_parser\n"
         "build_parser()\n"
-        "from warehouse.shell import Shell\n"
-        "from warehouse.session import Session\n"
+        "from warehouse.front.shell import Shell\n"
+        "from warehouse.commands.session import Session\n"
         f"sh = Shell(Session({loaded!r}), out=io.StringIO()); sh.start(background=False)\n"
         "from prompt_toolkit.document import Document\n"
         "list(sh.completer.get_completions(Document('focus solver=st'), None))\n"

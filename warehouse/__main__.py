@@ -1,3 +1,3 @@
-from .cli import main
+from .front.cli import main
 
 main()

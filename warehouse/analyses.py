@@ -10,10 +10,10 @@ from dataclasses import dataclass, field
 
 import pandas as pd
 
-from .collapse import Collapsed, collapse
+from .collapse.observations import Collapsed, collapse
 from .errors import DesignError, InputError
 from .select.slices import Slice
-from .session import Collapse
+from .collapse.settings import Collapse
 
 ALPHA = 0.05
 
@@ -85,7 +85,7 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
     and leave out the per-instance table (the generalized design needs it; re-checks of analyses
     kept by Blockyard 0.1 need the pandas collapse for their fingerprint)."""
     from .analyze.blocked import generalized_anova, incomplete_anova, rcbd_anova, refuse_overflow
-    from .cautions import design_cautions, host_caution, pseudo_replication
+    from .collapse.cautions import design_cautions, host_caution, pseudo_replication
 
     if transform not in ("none", "log", "boxcox", "rank"):
         raise InputError(f"--transform {transform}: choose none, log, boxcox or rank")
@@ -244,7 +244,7 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
                confidence: float = 0.95, quick: bool = True) -> VersusResult:
     from .analyze.baseline import dunnett_vs_baseline, paired_vs_baseline
     from .analyze.blocked import refuse_overflow
-    from .cautions import design_cautions, host_caution, pseudo_replication
+    from .collapse.cautions import design_cautions, host_caution, pseudo_replication
 
     if method not in ("dunnett", "paired-t", "wilcoxon"):
         raise InputError(f"--method {method}: choose dunnett, paired-t or wilcoxon")

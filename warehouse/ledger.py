@@ -428,7 +428,7 @@ def verdicts_of(kind: str, doc: dict) -> dict:
 def rerun(wh: Warehouse, st: Stored):
     """Run a stored analysis again on today's data, with its stored slice and settings."""
     from .analyses import run_blocktest, run_plan, run_versus
-    from .session import Collapse
+    from .collapse.settings import Collapse
 
     opts = st.settings.get("options", {})
     col = Collapse(**st.settings.get("collapse", {})) if st.settings.get("collapse") else Collapse()

@@ -82,7 +82,7 @@ def blockyard(*argv, env: dict | None = None, cwd=None, timeout: float = 300, pr
 
 def in_process(location: str, *argv) -> CliResult:
     """Run a command in this process, as the `cli` fixture does, against any warehouse."""
-    from warehouse.cli import run
+    from warehouse.front.cli import run
 
     out, err = io.StringIO(), io.StringIO()
     code = run(["-w", location, *map(str, argv)], out=out, err=err)

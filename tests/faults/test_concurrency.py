@@ -27,7 +27,7 @@ BASE = 2_000
 READER = textwrap.dedent("""
     import io, json, os, sys
     from sqlalchemy import text
-    from warehouse.cli import run
+    from warehouse.front.cli import run
     from warehouse.store.connect import open_warehouse
 
     location, stop, report, ready = sys.argv[1:5]

@@ -434,10 +434,9 @@ SKIP_COMMANDS = {"demo": "builds a whole demo warehouse (seconds per call); the 
 
 
 def registry():
-    from warehouse import commands_all  # noqa: F401  (registers every command)
-    from warehouse.commands import REGISTRY
+    from warehouse.front.cli import commands
 
-    return REGISTRY
+    return commands()  # the command line's whole table
 
 
 def arguments(name: str) -> tuple[list, list]:
@@ -526,7 +525,7 @@ def stocked(shared, monkeypatch):
 def run_argv(location: str, argv: list[str], stdin_lines: list[str] | None = None) -> None:
     import sys
 
-    from warehouse.cli import run
+    from warehouse.front.cli import run
 
     out, err = io.StringIO(), io.StringIO()
     saved = sys.stdin

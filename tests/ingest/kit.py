@@ -153,7 +153,7 @@ def module_warehouse(tmp_path_factory):
 def cli_at(location: str):
     """A `cli`-like runner for a given warehouse."""
     from conftest import CliResult
-    from warehouse.cli import run
+    from warehouse.front.cli import run
 
     def _run(*argv: str, warehouse: str | None = None):
         out, err = io.StringIO(), io.StringIO()

@@ -14,7 +14,7 @@ from .kit import csv_text, jsonl_text, parquet, runs, write
 
 PROBE = r"""
 import sys
-import warehouse.cli as cli
+import warehouse.front.cli as cli
 cli._leave = sys.exit  # the real entry point, ending with an exception so that the probe can report
 try:
     cli.main()

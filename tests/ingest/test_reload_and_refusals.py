@@ -39,7 +39,7 @@ def live_imports(location) -> list[tuple]:
 
 def _run(*argv: str):
     from conftest import CliResult
-    from warehouse.cli import run
+    from warehouse.front.cli import run
 
     out, err = io.StringIO(), io.StringIO()
     code = run(list(argv), out=out, err=err)

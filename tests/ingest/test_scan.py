@@ -98,7 +98,7 @@ def test_the_command_line_loads_and_refuses_as_before(tmp_path):
 def _load_both_ways(tmp_path, monkeypatch, location, data: bytes, name: str = "a.csv", chunk_rows: int | None = None):
     """The same file loaded with the early parse into `location`, and without it into a second
     warehouse: (result of each, whether the early parse was taken)."""
-    from warehouse.cli import run
+    from warehouse.front.cli import run
     from warehouse.ingest import loader, sources
 
     import io

@@ -14,7 +14,6 @@ import gzip
 import io
 import json
 from array import array
-from pathlib import Path
 from typing import Callable, Iterator
 
 import numpy as np

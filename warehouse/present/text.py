@@ -71,3 +71,29 @@ def pairs(items: Iterable[tuple[str, str]], indent: str = "") -> str:
         return ""
     w = max(len(k) for k, _ in items)
     return "\n".join(f"{indent}{k.ljust(w)}  {v}" for k, v in items)
+
+
+def _json_value(o):
+    """What json.dumps cannot write itself: numpy numbers (NaN and infinities as null) and arrays."""
+    import math
+
+    try:
+        import numpy as np
+
+        if isinstance(o, np.integer):
+            return int(o)
+        if isinstance(o, np.floating):
+            v = float(o)
+            return None if math.isnan(v) or math.isinf(v) else v
+        if isinstance(o, np.ndarray):
+            return o.tolist()
+    except ImportError:  # pragma: no cover
+        pass
+    return str(o)
+
+
+def json_document(result) -> str:
+    """A result's --json document: its to_dict(), indented, numpy values made plain."""
+    import json
+
+    return json.dumps(result.to_dict(), indent=2, default=_json_value)

@@ -6,7 +6,7 @@ rows at most), so the condition on runs is a set of integer-key tests that the i
 from __future__ import annotations
 
 import fnmatch
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from sqlalchemy import and_, false, not_, or_, select, true
 

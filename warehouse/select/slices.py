@@ -13,8 +13,8 @@ from __future__ import annotations
 import json
 import re
 import time
-from dataclasses import dataclass, field
-from datetime import datetime, timedelta, timezone
+from dataclasses import dataclass
+from datetime import datetime, timezone
 
 from ..errors import SliceError
 

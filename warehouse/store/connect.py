@@ -12,7 +12,6 @@ line (docs/reliability.md).
 from __future__ import annotations
 
 import os
-import shutil
 import sqlite3
 import time
 from dataclasses import dataclass

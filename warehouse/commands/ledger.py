@@ -4,9 +4,8 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass
 
-from .analysis_commands import slice_of
-from .commands import Done, add_json, args, command
-from .errors import InputError
+from .registry import Done, add_json, args, command
+from ..errors import InputError
 from .session import Session
 
 
@@ -20,7 +19,7 @@ def _keep_args(p):
 @command("keep", "store a claim with the analysis that backs it, with tags", 'blockyard keep "1.6 uses fewer pallets than 1.4" --tag paper')
 @args(_keep_args)
 def cmd_keep(session: Session, a) -> Done:
-    from . import ledger
+    from .. import ledger
 
     wh = session.warehouse()
     analysis = ledger.parse_id(a.analysis, "--analysis") if a.analysis is not None else session.last_analysis
@@ -44,12 +43,12 @@ class RecallList:
     items: list
 
     def to_dict(self) -> dict:
-        from .present.ledger import summary_doc
+        from ..present.ledger import summary_doc
 
         return {"matches": [summary_doc(s) for s in self.items]}
 
     def render(self) -> str:
-        from .present.ledger import render_recall_list
+        from ..present.ledger import render_recall_list
 
         return render_recall_list(self.items)
 
@@ -59,12 +58,12 @@ class RecallOne:
     item: object
 
     def to_dict(self) -> dict:
-        from .present.ledger import full_doc
+        from ..present.ledger import full_doc
 
         return full_doc(self.item)
 
     def render(self) -> str:
-        from .present.ledger import render_recall_one
+        from ..present.ledger import render_recall_one
 
         return render_recall_one(self.item)
 
@@ -72,7 +71,7 @@ class RecallOne:
 @command("recall", "find stored analyses and claims by id, words, tag, solver or date", 'blockyard recall pallets --tag paper')
 @args(_recall_args)
 def cmd_recall(session: Session, a):
-    from . import ledger
+    from .. import ledger
 
     wh = session.warehouse()
     filtered = a.tag or a.solver or a.since or a.stale
@@ -98,7 +97,7 @@ class RecheckResult:
         return self.rc.to_dict()
 
     def render(self) -> str:
-        from .present.ledger import render_recheck
+        from ..present.ledger import render_recheck
 
         return render_recheck(self.rc)
 
@@ -107,7 +106,7 @@ class RecheckResult:
          "blockyard recheck 17 --renew")
 @args(_recheck_args)
 def cmd_recheck(session: Session, a) -> RecheckResult:
-    from . import ledger
+    from .. import ledger
 
     renew = bool(getattr(a, "renew", False))
     rc = ledger.recheck(session.warehouse(), ledger.parse_id(a.id, "recheck"), renew=renew)
@@ -127,8 +126,8 @@ def _retract_args(p):
          'blockyard retract --slice "campaign=nov-tuning host=rack-b version=1.5" --reason "build mis-counted pallets"')
 @args(_retract_args)
 def cmd_retract(session: Session, a) -> Done:
-    from . import ledger
-    from .select.slices import parse
+    from .. import ledger
+    from ..select.slices import parse
 
     wh = session.warehouse()
     if a.undo is not None:

@@ -22,12 +22,12 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import and_, case, func, select
 
-from .errors import DesignError, InputError
-from .select.resolve import Dims, cells_can_answer, condition
-from .select.slices import Slice, brief
-from .session import Collapse
-from .store import schema as S
-from .store.blocks import W_MOD  # 2**31 - 1: weighted id terms and their sums stay exact in SQL
+from ..errors import DesignError, InputError
+from ..select.resolve import Dims, cells_can_answer, condition
+from ..select.slices import Slice, brief
+from .settings import Collapse
+from ..store import schema as S
+from ..store.blocks import W_MOD  # 2**31 - 1: weighted id terms and their sums stay exact in SQL
 
 R = S.runs
 
@@ -135,7 +135,7 @@ def _pick(aggs, extremes: bool):
 
 
 def _cell_query(cond, v, extremes: bool):
-    from .store.cells import run_aggregates
+    from ..store.cells import run_aggregates
 
     cols, names = _pick(run_aggregates(v), extremes)
     return (select(R.c.solver_id, R.c.instance_id, *cols).where(cond)
@@ -144,7 +144,7 @@ def _cell_query(cond, v, extremes: bool):
 
 def _summary_query(cond, slot: int, extremes: bool):
     """The same cells from the cell summaries: work in proportion to cells, not runs."""
-    from .store.cells import C, cell_aggregates
+    from ..store.cells import C, cell_aggregates
 
     cols, names = _pick(cell_aggregates(), extremes)
     return (select(C.c.solver_id, C.c.instance_id, *cols).where(cond, C.c.slot == slot)
@@ -367,7 +367,7 @@ def _rows_from_blocks(conn, sl: Slice, dims: Dims, slot: int) -> list | None:
     """
     from types import SimpleNamespace
 
-    from .select.resolve import blocks_can_answer
+    from ..select.resolve import blocks_can_answer
 
     if not blocks_can_answer(sl):
         return None
@@ -471,7 +471,7 @@ def _instances(conn, ids: list[int]) -> pd.DataFrame:
 
 
 def _treatment_key(label: str):
-    from .select.versions import version_sort_key
+    from ..select.versions import version_sort_key
 
     name, _, version = label.partition("@")
     return (name, version_sort_key(version))

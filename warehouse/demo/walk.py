@@ -4,19 +4,26 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from .commands import REGISTRY, Done
-from .errors import BlockyardError
-from .session import Session
+from ..commands.analyse import cmd_blocktest, cmd_peek, cmd_versus
+from ..commands.ledger import cmd_keep, cmd_recall, cmd_recheck, cmd_retract
+from ..commands.load import cmd_load
+from ..commands.registry import Done, add_json, args, command, table
+from ..commands.report import cmd_export
+from ..commands.session import Session
+from ..errors import BlockyardError
+
+STEPS = table(cmd_load, cmd_peek, cmd_blocktest, cmd_versus, cmd_keep, cmd_recall, cmd_retract, cmd_recheck,
+              cmd_export)
 
 
 def _step(session: Session, name: str, **kw):
     ns = argparse.Namespace(json=False, **kw)
-    return REGISTRY[name].run(session, ns)
+    return STEPS[name].run(session, ns)
 
 
 def run_demo(folder: str, json_mode: bool = False) -> Done:
-    from .demo import generate
-    from .store.connect import init_warehouse
+    from .scenario import generate
+    from ..store.connect import init_warehouse
 
     root = Path(folder).expanduser()
     root.mkdir(parents=True, exist_ok=True)
@@ -77,7 +84,20 @@ def _walk(session: Session, show, root: Path) -> None:
     show("retract", f'blockyard retract --slice "{bad}" --reason "build 1.5 on rack-b mis-counted pallets"',
          _step(session, "retract", slice=bad, reason="build 1.5 on rack-b mis-counted pallets", undo=None))
     show("recheck", f"blockyard recheck {vs.analysis_id}", _step(session, "recheck", id=vs.analysis_id))
-    if "export" in REGISTRY:
-        report = root / "report.html"
-        show("export", f"blockyard export {vs.analysis_id} --to {report}",
-             _step(session, "export", id=vs.analysis_id, to=str(report)))
+    report = root / "report.html"
+    show("export", f"blockyard export {vs.analysis_id} --to {report}",
+         _step(session, "export", id=vs.analysis_id, to=str(report)))
+
+
+# --- the `demo` command --------------------------------------------------------------------------------------
+
+def _demo_args(p):
+    p.add_argument("folder", nargs="?", default=".", help="where to put the demo files and demo.db (default: here)")
+    add_json(p)
+
+
+@command("demo", "build a demo warehouse from generated campaign files and walk the main job",
+         "blockyard demo /tmp/yard", needs_warehouse=False)
+@args(_demo_args)
+def cmd_demo(session: Session, a) -> Done:
+    return run_demo(a.folder, json_mode=a.json)

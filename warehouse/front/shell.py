@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import argparse
 import difflib
-import json
 import os
 import re
 import shlex
@@ -30,9 +29,10 @@ import sys
 import threading
 from pathlib import Path
 
-from .commands import REGISTRY, Done, args, command
-from .errors import BlockyardError, InputError
-from .session import Collapse, Session
+from ..commands.registry import Done, args, command
+from ..errors import BlockyardError, InputError
+from ..collapse.settings import Collapse
+from ..commands.session import Session
 
 PROMPT = "blockyard> "
 HISTORY_ENV = "BLOCKYARD_HISTORY"
@@ -99,7 +99,7 @@ class ShellParser(argparse.ArgumentParser):
     def parse_args(self, args=None, namespace=None):
         a, extras = self.parse_known_args(args, namespace)
         if extras:  # a mistyped option gets the nearest real one, as on the command line
-            from .commands import unknown_words
+            from ..commands.registry import unknown_words
 
             self.error(unknown_words(self, extras))
         return a
@@ -159,8 +159,10 @@ class Shell:
     """The shell's state and behaviour, with no terminal attached (run_shell adds the prompt)."""
 
     def __init__(self, session: Session, out=None, err=None):
-        from . import commands_all  # noqa: F401  (every command registers, as for the command line)
+        if session.commands is None:  # no front end gave its table: the catalog's commands
+            from ..commands.catalog import commands
 
+            session.commands = commands(cmd_shell)
         self.session = session
         session.interactive = True
         self.out = out if out is not None else sys.stdout
@@ -240,8 +242,8 @@ class Shell:
 
     def refresh(self, quiet: bool = True) -> None:
         """Rebuild the completion cache from the small dimension tables (after a load, say)."""
-        from .select.resolve import Dims
-        from .select.slices import KEYS
+        from ..select.resolve import Dims
+        from ..select.slices import KEYS
 
         try:
             wh = self.session.warehouse()
@@ -262,7 +264,7 @@ class Shell:
         """(treatments, blocks, runs) of a slice, counted on the runs themselves."""
         from sqlalchemy import func, select
 
-        from .store import schema as S
+        from ..store import schema as S
 
         R = S.runs
         q = (select(func.count(), func.count(func.distinct(R.c.solver_id)),
@@ -277,8 +279,8 @@ class Shell:
         None when they cannot answer: a term they do not carry, or a file with runs but no cells."""
         from sqlalchemy import and_, exists, func, select
 
-        from .select.resolve import cells_can_answer, condition
-        from .store import schema as S
+        from ..select.resolve import cells_can_answer, condition
+        from ..store import schema as S
 
         if not cells_can_answer(sl):
             return None
@@ -297,8 +299,8 @@ class Shell:
         return int(treatments), int(blocks), int(runs)
 
     def _summary_of(self, text: str) -> tuple[int, int, int]:
-        from .select.resolve import Dims, condition
-        from .select.slices import parse
+        from ..select.resolve import Dims, condition
+        from ..select.slices import parse
 
         sl = parse(text)
         with self.session.warehouse().engine.connect() as conn:
@@ -361,8 +363,8 @@ class Shell:
     # --- commands -----------------------------------------------------------------------------
 
     def commands(self) -> dict:
-        """Registered commands usable in the shell, read fresh (others may register more)."""
-        return {n: c for n, c in REGISTRY.items() if n not in NOT_IN_SHELL and n not in SHELL_WORDS}
+        """The front end's commands usable in the shell."""
+        return {n: c for n, c in self.session.commands.items() if n not in NOT_IN_SHELL and n not in SHELL_WORDS}
 
     def words(self) -> list[str]:
         return [*SHELL_WORDS, *self.commands()]
@@ -391,7 +393,7 @@ class Shell:
             p.add_argument("--clear", action="store_true", help="clear the focus (everything)")
             return p
         if name == "collapse":
-            from .analysis_commands import add_collapse
+            from ..commands.analyse import add_collapse
 
             p = ShellParser(prog="collapse", out=self.out, description=SHELL_WORDS["collapse"] + ".",
                             epilog="example: collapse --replicates median --failures penalize:10")
@@ -455,7 +457,7 @@ class Shell:
         except BlockyardError as exc:
             self.fail(str(exc))
         except Exception as exc:  # a defect of ours: one line, and the shell stays
-            from .store.connect import database_trouble
+            from ..store.connect import database_trouble
 
             trouble = database_trouble(exc)
             if trouble is not None:
@@ -492,10 +494,10 @@ class Shell:
         self.show(result, getattr(a, "json", False))
 
     def show(self, result, as_json: bool = False) -> None:
-        from .cli import _json_default
+        from ..present.text import json_document
 
         if as_json:
-            self.write(json.dumps(result.to_dict(), indent=2, default=_json_default))
+            self.write(json_document(result))
         else:
             self.write(result.render())
         if getattr(result, "exit_status", 0):
@@ -527,7 +529,7 @@ class Shell:
         text = rest.strip()
         if len(argv) == 1 and text[:1] in "'\"" and text[-1:] == text[:1]:
             text = argv[0]  # the whole slice in one pair of quotes
-        from .select.slices import parse
+        from ..select.slices import parse
 
         sl = parse(text)
         counts = self._summary_of(sl.text)  # resolves every name, or raises SliceError
@@ -544,7 +546,7 @@ class Shell:
         if a.reset:
             self.session.collapse = Collapse()
         elif any(getattr(a, f) for f in fields):
-            from .collapse import parse_settings
+            from ..collapse.observations import parse_settings
 
             c = self.session.collapse
             new = Collapse(**{f: getattr(a, f) or getattr(c, f) for f in fields})
@@ -740,7 +742,7 @@ class Shell:
 
     def _slice(self, current: str):
         """Slice terms: keys (solver=), operators, treatments, and known values after KEY OP."""
-        from .select.slices import EQ_ONLY, KEYS, ORDERED
+        from ..select.slices import EQ_ONLY, KEYS, ORDERED
 
         cut = max(current.rfind(c) for c in " |\"'") + 1
         term = current[cut:]
@@ -771,7 +773,7 @@ class Shell:
 
     def highlight(self, line: str) -> list[tuple[str, str]]:
         """(style, text) fragments: the command, options, and slice terms (keys, operators, values)."""
-        from .select.slices import KEYS
+        from ..select.slices import KEYS
 
         known = set(self.words()) | set(NOT_IN_SHELL)
         out: list[tuple[str, str]] = []

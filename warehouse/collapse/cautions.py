@@ -5,7 +5,7 @@ import re
 
 import pandas as pd
 
-from .collapse import Collapsed
+from .observations import Collapsed
 
 _TIME_UNITS = {"s", "sec", "secs", "second", "seconds", "ms", "min", "h", "us"}
 _TIME_NAMES = re.compile(r"time|second|runtime|wall|cpu|elapsed|duration", re.I)
@@ -54,7 +54,7 @@ def hash_pseudo_replication(conn, dims, group_ids) -> list[str]:
     """Groups whose instances carry identical content hashes."""
     from sqlalchemy import select
 
-    from .store import schema as S
+    from ..store import schema as S
 
     rows = conn.execute(select(S.instances.c.group_id, S.instances.c.content_hash)
                         .where(S.instances.c.group_id.in_(list(group_ids)), S.instances.c.content_hash != "")).all()

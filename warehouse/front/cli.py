@@ -1,8 +1,9 @@
-"""The command line: `blockyard COMMAND [options]`, a thin layer over warehouse.commands."""
+"""The command line: `blockyard COMMAND [options]`, a thin layer over warehouse.commands.
+
+Its table is the catalog's commands plus the front ends' own: the shell and the resident."""
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import sys
 
@@ -27,9 +28,7 @@ class _Parser(argparse.ArgumentParser):
         if bad:
             from difflib import get_close_matches
 
-            from .commands import REGISTRY
-
-            near = get_close_matches(bad.group(1), list(REGISTRY), n=3)
+            near = get_close_matches(bad.group(1), list(commands()), n=3)
             hint = f" (did you mean {' or '.join(near)}?)" if near else ""
             raise ArgumentMistake(f"blockyard: unknown command '{bad.group(1)}'{hint}; blockyard --help lists them")
         where = f"{cmd}: " if cmd else ""
@@ -39,7 +38,7 @@ class _Parser(argparse.ArgumentParser):
         # argparse's own "unrecognized arguments" names neither the command nor the option meant
         a, extras = self.parse_known_args(args, namespace)
         if extras:
-            from .commands import unknown_words
+            from ..commands.registry import unknown_words
 
             command = getattr(a, "command", None)
             parser = self._command_parser(command) or self
@@ -54,10 +53,23 @@ class _Parser(argparse.ArgumentParser):
         return None
 
 
-def build_parser():
-    from . import __version__
-    from .commands import REGISTRY
-    from . import commands_all  # noqa: F401  (registers the analysis, ledger and shell commands)
+def commands() -> dict:
+    """The command line's table: every command, by name, in the order help lists them."""
+    from ..commands.catalog import commands as catalog
+    from ..commands.registry import args, command
+    from ..demo.walk import cmd_demo
+    from .shell import cmd_shell
+
+    # declared here rather than at the top: this module is imported before any library, so that a
+    # command handed to a resident process never waits for them
+    resident = command("resident", "keep one warm Blockyard process that runs the analysis commands without "
+                       "start-up time", "blockyard resident start --idle 60", needs_warehouse=False)(
+        args(_resident_args)(_resident))
+    return catalog(cmd_demo, cmd_shell, resident)
+
+
+def build_parser(table: dict | None = None):
+    from .. import __version__
 
     parser = _Parser(
         prog="blockyard",
@@ -67,7 +79,7 @@ def build_parser():
     parser.add_argument("--version", action="version", version=f"blockyard {__version__}")
     _common(parser)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for cmd in REGISTRY.values():
+    for cmd in (table or commands()).values():
         p = sub.add_parser(cmd.name, help=cmd.summary, description=f"{cmd.summary}.",
                            epilog=f"example: {cmd.example}")
         _common(p)
@@ -76,13 +88,14 @@ def build_parser():
 
 
 def run(argv: list[str] | None = None, out=None, err=None) -> int:
-    from .commands import REGISTRY
-    from .errors import BlockyardError
-    from .session import Session
+    from ..commands.session import Session
+    from ..errors import BlockyardError
+    from ..present.text import json_document
 
     out = out or sys.stdout
     err = err or sys.stderr
-    parser = build_parser()
+    table = commands()
+    parser = build_parser(table)
     try:
         a = parser.parse_args(argv)
     except ArgumentMistake as exc:
@@ -93,12 +106,12 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
     if not a.command:
         parser.print_help(out)
         return 0
-    session = Session(location=getattr(a, "warehouse", None))
-    cmd = REGISTRY[a.command]
+    session = Session(location=getattr(a, "warehouse", None), commands=table)
+    cmd = table[a.command]
     try:
         result = cmd.run(session, a)
         if getattr(a, "json", False):
-            out.write(json.dumps(result.to_dict(), indent=2, default=_json_default) + "\n")
+            out.write(json_document(result) + "\n")
         else:
             text = result.render()
             if text:
@@ -117,7 +130,7 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
     except Exception as exc:  # a defect of ours, not the user's: say so, keep the traceback on request
         if isinstance(exc, BrokenPipeError):  # output piped into head: main() leaves quietly
             raise
-        from .store.connect import database_trouble, shown
+        from ..store.connect import database_trouble, shown
 
         trouble = database_trouble(exc, shown(session.where), session.read_only)
         if trouble is not None:
@@ -134,36 +147,18 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
 
 def _one_line(message: str) -> str:
     """A message stays one line whatever text of the user's it quotes (a file name with a newline)."""
-    from .select.slices import brief
+    from ..select.slices import brief
 
     return brief(message, None)
 
 
-def _json_default(o):
-    import math
-
-    try:
-        import numpy as np
-
-        if isinstance(o, np.integer):
-            return int(o)
-        if isinstance(o, np.floating):
-            v = float(o)
-            return None if math.isnan(v) or math.isinf(v) else v
-        if isinstance(o, np.ndarray):
-            return o.tolist()
-    except ImportError:  # pragma: no cover
-        pass
-    return str(o)
-
-
 def main() -> None:
     try:
-        from .resident import forward
+        from .handoff import forward
 
         code = forward(sys.argv[1:])  # a resident process runs it when one is up (blockyard resident)
         if code is None:
-            from .ingest.scan import start_early
+            from ..ingest.scan import start_early
 
             start_early(sys.argv[1:])  # load: hash the files while the libraries are imported
             code = run()
@@ -184,6 +179,63 @@ def _leave(code: int) -> None:
     except BrokenPipeError:
         pass
     os._exit(code)
+
+
+
+# --- the `resident` command ---------------------------------------------------------------------
+
+def _resident_args(p):
+    from ..commands.registry import add_json
+    from .handoff import DEFAULT_IDLE_MINUTES, FORWARDED
+
+    p.add_argument("action", choices=["start", "stop", "status", "serve"],
+                   help="start one in the background, stop it, say whether one runs, or serve in the foreground")
+    p.add_argument("--idle", type=float, default=DEFAULT_IDLE_MINUTES, metavar="MINUTES",
+                   help=f"stop after this many minutes without a command (default {DEFAULT_IDLE_MINUTES:g})")
+    p.epilog = ("While a resident runs, blockyard hands it these commands and prints what it sends back: "
+                f"{', '.join(sorted(FORWARDED))}. BLOCKYARD_RESIDENT=off keeps a command out of it. "
+                "example: blockyard resident start --idle 60")
+    add_json(p)
+
+
+def _resident(session, a):
+    import time
+
+    from ..commands.registry import Done
+    from ..errors import InputError, StorageError
+    from . import handoff, resident
+
+    if not 0 < a.idle < float("inf"):  # (NaN fails the comparison too)
+        raise InputError(f"--idle {a.idle:g}: give a number of minutes above 0, e.g. 30")
+    if a.action == "serve":
+        code = resident.serve(run, a.idle)
+        return Done("", {"stopped": True}, exit_status=code)
+    if a.action == "start":
+        try:
+            doc = handoff.start(a.idle)
+        except OSError as exc:
+            raise StorageError(f"cannot start a resident process: {exc}") from None
+        if doc.get("started"):
+            text = (f"resident started (process {doc['pid']}, stops after {doc['idle_minutes']:g} idle minutes); "
+                    "blockyard now hands it the analysis commands; stop it with: blockyard resident stop")
+        else:
+            text = f"a resident is running already (process {doc['pid']}, {_served(doc['served'])})"
+        return Done(text, doc)
+    if a.action == "stop":
+        stopped = handoff.stop()
+        return Done("resident stopped" if stopped else "no resident was running", {"stopped": stopped})
+    doc = handoff.status()
+    if doc.get("running"):
+        since = time.strftime("%Y-%m-%d %H:%M", time.gmtime(doc["since"]))
+        text = (f"resident running: process {doc['pid']} since {since} UTC, {_served(doc['served'])}, "
+                f"stops after {doc['idle_minutes']:g} idle minutes; socket {doc['socket']}")
+    else:
+        text = "no resident running; start one with: blockyard resident start"
+    return Done(text, doc)
+
+
+def _served(n: int) -> str:
+    return f"{n} {'command' if n == 1 else 'commands'} served"
 
 
 if __name__ == "__main__":

@@ -3,19 +3,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-from .store.connect import Warehouse, open_warehouse, resolve_location
-
-
-@dataclass
-class Collapse:
-    replicates: str = "mean"  # mean | median | trimmed:0.1
-    instances: str = "mean"  # mean | median
-    failures: str = "drop"  # drop | penalize:FACTOR | worst
-    holes: str = "drop"  # drop | keep
-
-    def to_dict(self) -> dict:
-        return {"replicates": self.replicates, "instances": self.instances,
-                "failures": self.failures, "holes": self.holes}
+from ..collapse.settings import Collapse
+from ..store.connect import Warehouse, open_warehouse, resolve_location
 
 
 @dataclass
@@ -26,6 +15,8 @@ class Session:
     collapse: Collapse = field(default_factory=Collapse)
     last_analysis: int | None = None
     interactive: bool = False
+    # the commands the front end offers (name -> Command); the shell reads its words from here
+    commands: dict | None = None
     _wh: Warehouse | None = None
 
     @property

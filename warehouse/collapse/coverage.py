@@ -6,10 +6,10 @@ from dataclasses import dataclass, field
 import pandas as pd
 from sqlalchemy import case, func, select
 
-from .errors import DesignError
-from .select.resolve import Dims, condition
-from .select.slices import Slice, brief
-from .store import schema as S
+from ..errors import DesignError
+from ..select.resolve import Dims, condition
+from ..select.slices import Slice, brief
+from ..store import schema as S
 
 R = S.runs
 
@@ -36,7 +36,7 @@ class Coverage:
 
 def coverage(conn, sl: Slice, metric: str | None = None, collapse_settings=None) -> Coverage:
     from .cautions import hash_pseudo_replication, host_caution, pseudo_replication
-    from .collapse import _treatment_key, collapse, rows_frame
+    from .observations import _treatment_key, collapse, rows_frame
 
     dims = Dims.load(conn)
     cond = condition(sl, dims, conn)
@@ -59,7 +59,7 @@ def coverage(conn, sl: Slice, metric: str | None = None, collapse_settings=None)
     failures = {k: int(frame["n_" + k].sum()) for k in ("timeout", "failed", "infeasible")}
     warnings = hash_pseudo_replication(conn, dims, set(frame["group_id"]))
     if metric is not None:
-        from .session import Collapse
+        from .settings import Collapse
 
         c = collapse(conn, sl, metric, collapse_settings or Collapse(holes="keep"))
         warnings += c.hash_conflicts + pseudo_replication(c) + host_caution(c)

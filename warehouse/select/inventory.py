@@ -6,9 +6,9 @@ from dataclasses import dataclass, field
 
 from sqlalchemy import func, select
 
-from .errors import InputError
-from .store import schema as S
-from .store.connect import Warehouse
+from ..errors import InputError
+from ..store import schema as S
+from ..store.connect import Warehouse
 
 KINDS = ("campaigns", "solvers", "families", "groups", "metrics", "imports", "hosts")
 
@@ -63,7 +63,7 @@ def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) 
         hint = f" (did you mean '{near[0]}'?)" if near else ""
         if kind.lower().startswith("treatment"):
             hint = " (inventory solvers lists them: each solver with its versions)"
-        from .select.slices import brief
+        from .slices import brief
 
         raise InputError(f"inventory: unknown listing '{brief(kind)}'{hint}; choose from {', '.join(KINDS)}")
     with wh.engine.connect() as conn:
@@ -91,14 +91,14 @@ def inventory(wh: Warehouse, kind: str | None = None, limit: int | None = None) 
             inv.headers = ["campaign", "runs", "created", "first run", "last run"]
             inv.rows = [[a, int(b), _when(c), _moment(d), _moment(e)] for a, b, c, d, e in conn.execute(q)]
         elif kind == "solvers":
-            from .select.resolve import Dims
+            from .resolve import Dims
 
             dims = Dims.load(conn)
             per = select(cells.c.solver_id, func.sum(cells.c.n).label("n")).group_by(cells.c.solver_id).subquery()
             q = (select(S.solvers.c.id, S.solvers.c.name, S.solvers.c.version, S.solvers.c.build,
                         S.solvers.c.params, func.coalesce(per.c.n, 0))
                  .select_from(S.solvers.outerjoin(per, per.c.solver_id == S.solvers.c.id)))
-            from .select.versions import version_key
+            from .versions import version_key
 
             # each solver with its versions, each version a treatment (what NAME@VERSION names in a slice)
             rows = sorted(([name, version, dims.treatment(i), b, p, int(n)] for i, name, version, b, p, n in conn.execute(q)),

@@ -5,23 +5,24 @@ import os
 import time
 from dataclasses import dataclass, field
 
-from .analysis_commands import add_slice, metric_of, settings_of, slice_of
-from .commands import add_json, args, command
-from .errors import InputError
-from .session import Collapse, Session
+from .analyse import add_slice, metric_of, settings_of, slice_of
+from .registry import add_json, args, command
+from ..errors import InputError
+from ..collapse.settings import Collapse
+from .session import Session
 
 KINDS = ("profile", "qq", "residuals", "differences", "performance")
 REPORT_FORMATS = {".html": "html", ".md": "markdown"}
 
 
 def _analysis_id(text, where: str = "analysis") -> int | None:
-    from .ledger import parse_id
+    from ..ledger import parse_id
 
     return None if text is None else parse_id(text, where)
 
 
 def _stored(session: Session, analysis_id: int):
-    from . import ledger
+    from .. import ledger
 
     return ledger.get(session.warehouse(), analysis_id)
 
@@ -36,7 +37,7 @@ def _collapse_settings(st) -> Collapse:
 def stored_cells(wh, st):
     """A stored analysis's values per treatment and instance, recomputed on today's data by collapsing
     its stored slice, metric and collapse settings (a stored analysis keeps values per block only)."""
-    from .collapse import collapse
+    from ..collapse.observations import collapse
 
     with wh.engine.connect() as conn:
         return collapse(conn, st.slice, st.metric or None, _collapse_settings(st)).cells
@@ -79,7 +80,7 @@ class PlotResult:
 
 
 def _fresh_cells(session: Session, a):
-    from .collapse import collapse
+    from ..collapse.observations import collapse
 
     sl = slice_of(session, a).absolute()
     with session.warehouse().engine.connect() as conn:
@@ -87,7 +88,7 @@ def _fresh_cells(session: Session, a):
 
 
 def _draw(kind: str, obs, cells_fn, comparisons, sense: str, metric: str, order, transform=None, versus=None):
-    from .present import figures as F
+    from ..present import figures as F
 
     if kind == "profile":
         return F.block_profile(obs, sense, metric, order)
@@ -108,7 +109,7 @@ def _draw(kind: str, obs, cells_fn, comparisons, sense: str, metric: str, order,
 def cmd_plot(session: Session, a) -> PlotResult:
     import pandas as pd
 
-    from .present import figures as F
+    from ..present import figures as F
 
     F.figure_format(a.to)  # refuse a wrong extension before any work
     explicit = getattr(a, "slice", None) is not None or getattr(a, "metric", None) is not None
@@ -182,8 +183,8 @@ def used_imports(conn, st) -> list[dict]:
     """The imports holding runs under the stored slice, up to the analysis's last run (retracted ones too)."""
     from sqlalchemy import select
 
-    from .select.resolve import Dims, condition
-    from .store import schema as S
+    from ..select.resolve import Dims, condition
+    from ..store import schema as S
 
     if not st.max_run_id:
         return []
@@ -198,15 +199,15 @@ def used_imports(conn, st) -> list[dict]:
 
 
 def _write_atomic(path: str, data: bytes) -> None:
-    from .present.figures import atomic_write
+    from ..present.figures import atomic_write
 
     atomic_write(path, lambda fh: fh.write(data))
 
 
 def export_report(session: Session, analysis_id: int, path: str, now: float | None = None) -> ExportResult:
     """Write stored analysis `analysis_id` as an HTML or Markdown report to `path`."""
-    from .errors import BlockyardError
-    from .present import report as R
+    from ..errors import BlockyardError
+    from ..present import report as R
 
     ext = os.path.splitext(path)[1].lower()
     if ext not in REPORT_FORMATS:

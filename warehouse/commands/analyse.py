@@ -2,10 +2,11 @@
 from __future__ import annotations
 
 import argparse
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 
-from .commands import Done, add_json, args, command
-from .session import Collapse, Session
+from .registry import add_json, args, command
+from ..collapse.settings import Collapse
+from .session import Session
 
 
 class _Words(list):
@@ -34,7 +35,7 @@ def add_collapse(p: argparse.ArgumentParser) -> None:
 
 
 def slice_of(session: Session, a):
-    from .select.slices import parse
+    from ..select.slices import parse
 
     text = a.slice if getattr(a, "slice", None) is not None else session.focus
     return parse(text)
@@ -72,7 +73,7 @@ class PeekResult:
         return self.cov.to_dict()
 
     def render(self) -> str:
-        from .present.analysis import render_peek
+        from ..present.analysis import render_peek
 
         return render_peek(self.cov, self.limit)
 
@@ -81,7 +82,7 @@ class PeekResult:
          'blockyard peek --slice "family=fragile-top" --metric pallets')
 @args(_peek_args)
 def cmd_peek(session: Session, a) -> PeekResult:
-    from .coverage import coverage
+    from ..collapse.coverage import coverage
 
     wh = session.warehouse()
     with wh.engine.connect() as conn:
@@ -94,9 +95,9 @@ def cmd_peek(session: Session, a) -> PeekResult:
 def _record(session: Session, result, sl, settings: Collapse | None) -> None:
     """Keep the analysis in the ledger; on a read-only or full warehouse, say once that it is not
     kept and let the numbers stand. A plan has no collapse settings (None)."""
-    from . import ledger
+    from .. import ledger
 
-    from .store.connect import database_trouble
+    from ..store.connect import database_trouble
 
     wh = session.warehouse()
     if wh.read_only:  # known when it was opened: no write is tried, and it is said once
@@ -134,7 +135,7 @@ def _blocktest_args(p):
          'blockyard blocktest --slice "family=mixed-sku" --metric pallets')
 @args(_blocktest_args)
 def cmd_blocktest(session: Session, a):
-    from .analyses import run_blocktest
+    from ..analyses import run_blocktest
 
     sl = slice_of(session, a).absolute()
     settings = settings_of(session, a)
@@ -166,7 +167,7 @@ def _versus_args(p):
          'blockyard versus stacker@1.4 --slice "stacker@1.4 campaign=oct-baseline | solver=stacker since=2026-11-01" --metric pallets')
 @args(_versus_args)
 def cmd_versus(session: Session, a):
-    from .analyses import run_versus
+    from ..analyses import run_versus
 
     sl = slice_of(session, a).absolute()
     settings = settings_of(session, a)
@@ -180,7 +181,7 @@ def cmd_versus(session: Session, a):
 # --- plan --------------------------------------------------------------------------------------
 
 def _floats(text: str) -> list[float]:
-    from .errors import InputError
+    from ..errors import InputError
 
     try:
         vals = [float(x) for x in text.split(",") if x.strip()]
@@ -211,8 +212,8 @@ def _plan_args(p):
          "blockyard plan --effect 0.5 --power 0.8 --alpha 0.05 --comparisons 3")
 @args(_plan_args)
 def cmd_plan(session: Session, a):
-    from . import ledger
-    from .analyses import run_plan
+    from .. import ledger
+    from ..analyses import run_plan
 
     source = st = None
     if a.from_id is not None:
@@ -227,8 +228,8 @@ def cmd_plan(session: Session, a):
         ledger.note_source(res, st.result, st.kind, st.state, st.stale_runs)
     # a plan is kept like any analysis, so that a claim made on it ("we need 34 blocks") is tied to
     # it and not to whatever ran before; without a warehouse it is only printed
-    from .errors import StorageError
-    from .select.slices import Slice
+    from ..errors import StorageError
+    from ..select.slices import Slice
 
     try:
         session.warehouse()
