@@ -10,9 +10,10 @@ from .look import cmd_inventory
 from .registry import Command, table
 from .report import cmd_export, cmd_plot
 from .setup import cmd_init, cmd_upgrade
+from .verify import cmd_verify
 
 COMMANDS = (cmd_init, cmd_upgrade, cmd_load, cmd_inventory, cmd_peek, cmd_blocktest, cmd_versus, cmd_plan, cmd_keep,
-            cmd_recall, cmd_recheck, cmd_retract, cmd_plot, cmd_export)
+            cmd_recall, cmd_recheck, cmd_retract, cmd_plot, cmd_export, cmd_verify)
 
 
 def commands(*extra) -> dict[str, Command]:

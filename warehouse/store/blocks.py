@@ -119,32 +119,39 @@ def rebuild(conn, import_ids) -> int:
         return 0
     conn.execute(delete(B).where(B.c.import_id.in_(ids)))
     written = 0
-    inst = S.instances
     for import_id in ids:
-        rows = conn.execute(
-            select(C.c.campaign_id, C.c.slot, C.c.solver_id, C.c.instance_id, inst.c.group_id, C.c.n, C.c.n_ok,
-                   C.c.sum_ok, C.c.n_fail, C.c.id_sum, C.c.id_max)
-            .join_from(C, inst, inst.c.id == C.c.instance_id).where(C.c.import_id == import_id)).all()
-        if not rows:
-            continue
-        cols = list(zip(*rows))
-        campaign = int(cols[0][0])
-        slot = np.asarray(cols[1], dtype=np.int64)
-        solver = np.asarray(cols[2], dtype=np.int64)
-        instance = np.asarray(cols[3], dtype=np.int64)
-        group_of = _lookup(dict(zip(map(int, cols[3]), map(int, cols[4]))))
-        sums = {"n": np.asarray(cols[5], dtype=np.int64), "n_ok": np.asarray(cols[6], dtype=np.int64),
-                "sum_ok": np.asarray([0.0 if v is None else float(v) for v in cols[7]], dtype=np.float64),
-                "n_fail": np.asarray(cols[8], dtype=np.int64), "id_sum": np.asarray([int(v) for v in cols[9]], dtype=np.int64),
-                "id_max": np.asarray([int(v) for v in cols[10]], dtype=np.int64)}
-        out = []
-        for s in np.unique(slot).tolist():
-            pick = slot == s
-            out += from_cells(campaign, import_id, s, solver[pick], instance[pick],
-                              {k: v[pick] for k, v in sums.items()}, group_of)
+        out = rows_of(conn, import_id)
         write(conn, out)
         written += len(out)
     return written
+
+
+def rows_of(conn, import_id: int) -> list[tuple]:
+    """The block rows one import's stored cell summaries make (read only: `rebuild` writes them,
+    `store.audit` compares them with the stored ones)."""
+    inst = S.instances
+    rows = conn.execute(
+        select(C.c.campaign_id, C.c.slot, C.c.solver_id, C.c.instance_id, inst.c.group_id, C.c.n, C.c.n_ok,
+               C.c.sum_ok, C.c.n_fail, C.c.id_sum, C.c.id_max)
+        .join_from(C, inst, inst.c.id == C.c.instance_id).where(C.c.import_id == import_id)).all()
+    if not rows:
+        return []
+    cols = list(zip(*rows))
+    campaign = int(cols[0][0])
+    slot = np.asarray(cols[1], dtype=np.int64)
+    solver = np.asarray(cols[2], dtype=np.int64)
+    instance = np.asarray(cols[3], dtype=np.int64)
+    group_of = _lookup(dict(zip(map(int, cols[3]), map(int, cols[4]))))
+    sums = {"n": np.asarray(cols[5], dtype=np.int64), "n_ok": np.asarray(cols[6], dtype=np.int64),
+            "sum_ok": np.asarray([0.0 if v is None else float(v) for v in cols[7]], dtype=np.float64),
+            "n_fail": np.asarray(cols[8], dtype=np.int64), "id_sum": np.asarray([int(v) for v in cols[9]], dtype=np.int64),
+            "id_max": np.asarray([int(v) for v in cols[10]], dtype=np.int64)}
+    out = []
+    for s in np.unique(slot).tolist():
+        pick = slot == s
+        out += from_cells(campaign, import_id, s, solver[pick], instance[pick],
+                          {k: v[pick] for k, v in sums.items()}, group_of)
+    return out
 
 
 def from_sums(sums, campaign_id: int, import_id: int, group_of: dict[int, int]) -> list[tuple]:
