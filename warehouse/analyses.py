@@ -85,7 +85,7 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
     and leave out the per-instance table (the generalized design needs it; re-checks of analyses
     kept by Blockyard 0.1 need the pandas collapse for their fingerprint)."""
     from .analyze.blocked import generalized_anova, incomplete_anova, rcbd_anova, refuse_overflow
-    from .collapse.cautions import design_cautions, host_caution, pseudo_replication
+    from .collapse.cautions import design_cautions, host_caution, pooling_cautions, pseudo_replication
 
     if transform not in ("none", "log", "boxcox", "rank"):
         raise InputError(f"--transform {transform}: choose none, log, boxcox or rank")
@@ -99,7 +99,7 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
     if c.obs.empty:
         raise DesignError("no block has every treatment; use --holes keep to analyse the incomplete design, or narrow the slice")
     refuse_overflow(c.obs["value"], f"metric {c.metric}")  # before any sum of squares, cautions' too
-    warnings = list(design_cautions(c)) + host_caution(c) + pseudo_replication(c)
+    warnings = list(design_cautions(c)) + host_caution(c) + pooling_cautions(c) + pseudo_replication(c)
     if c.dropped_blocks and settings.holes == "drop":
         warnings.append(f"{len(c.dropped_blocks)} blocks with holes were dropped (complete-case analysis): "
                         + ", ".join(d["block"] for d in c.dropped_blocks[:6]) + (" ..." if len(c.dropped_blocks) > 6 else ""))
@@ -182,6 +182,7 @@ class VersusResult:
     warnings: list[str] = field(default_factory=list)
     analysis_id: int | None = None
     options: dict = field(default_factory=dict)
+    drift: list[dict] = field(default_factory=list)  # a treatment against itself across campaigns
 
     kind = "versus"
 
@@ -204,7 +205,7 @@ class VersusResult:
                 "blocks": len(c.blocks), "dropped_blocks": c.dropped_blocks, "method": s.method,
                 "adjust": s.adjust, "alternative": s.alternative, "confidence": s.confidence,
                 "residual_ms": s.residual_ms, "residual_df": s.residual_df, "critical_value": s.critical_value,
-                "comparisons": rows, "collapse": _collapse_doc(c), "warnings": self.warnings,
+                "comparisons": rows, "collapse": _collapse_doc(c), "warnings": self.warnings, "drift": self.drift,
                 "analysis_id": self.analysis_id}
 
     def verdicts(self) -> dict:
@@ -244,7 +245,7 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
                confidence: float = 0.95, quick: bool = True) -> VersusResult:
     from .analyze.baseline import dunnett_vs_baseline, paired_vs_baseline
     from .analyze.blocked import refuse_overflow
-    from .collapse.cautions import design_cautions, host_caution, pseudo_replication
+    from .collapse.cautions import design_cautions, host_caution, pooling_cautions, pseudo_replication
 
     if method not in ("dunnett", "paired-t", "wilcoxon"):
         raise InputError(f"--method {method}: choose dunnett, paired-t or wilcoxon")
@@ -282,7 +283,9 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
         else:
             stats = paired_vs_baseline(obs, baseline, method=method, adjust=adjust, alternative=alternative,
                                        confidence=confidence, better=word, margin=m)
-    warnings = list(design_cautions(c)) + host_caution(c, baseline) + pseudo_replication(c) + numeric
+    warnings = (list(design_cautions(c)) + host_caution(c, baseline) + pooling_cautions(c, baseline)
+                + pseudo_replication(c) + numeric)
+    drift = campaign_drift(conn, c, settings, baseline)
     if c.dropped_blocks:
         missing_base = [d["block"] for d in c.dropped_blocks if baseline in d["missing"]]
         other = [d["block"] for d in c.dropped_blocks if baseline not in d["missing"]]
@@ -294,11 +297,78 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
     res = VersusResult(c, baseline, stats, word, better is not None, [], options={
         "baseline": baseline, "method": method, "adjust": adjust, "better": better, "margin": margin,
         "confidence": confidence})
+    res.drift = drift
+    smallest = min((abs(r["diff"]) for r in stats.comparisons if r.get("diff") is not None), default=None)
+    for d in drift:
+        big = smallest is not None and d["difference"] is not None and abs(d["difference"]) >= smallest
+        if (d["p"] is not None and d["p"] < 0.05) or big:
+            why = "significant" if d["p"] is not None and d["p"] < 0.05 else "not significant"
+            warnings.append(
+                f"{d['treatment']} differs from itself between {d['campaigns'][0]} and {d['campaigns'][1]} by "
+                f"{d['difference']:+.3g} on {d['blocks']} common blocks ({why}"
+                f"{', as large as the smallest difference reported' if big else ''}): part of each difference "
+                "between campaigns may be the campaigns, not the treatments")
     if any(res.verdict(r) for r in stats.comparisons) and not margin:
         warnings.append("significant is not the same as large enough to matter: judge the size of each difference, "
                         "or set --margin to count small differences as ties")
     res.warnings = _dedupe(warnings)
     return res
+
+
+DRIFT_MOST = 8  # treatments compared with themselves across campaigns, at most (each is two collapses)
+
+
+def campaign_drift(conn, c: Collapsed, settings: Collapse, baseline: str) -> list[dict]:
+    """Each treatment that ran in two of the slice's campaigns, against itself: the mean paired
+    difference over their common blocks (later campaign minus the baseline's, or the first), with
+    a 95 % t interval. What a treatment measures against itself is the campaigns' own difference
+    (machines, load, instance files): a drift the comparisons across campaigns cannot see."""
+    from scipy import stats as st
+    from sqlalchemy import select
+
+    from .select.slices import Term
+    from .store import schema as S
+
+    campaigns = sorted({x for t in c.treatments for x in c.campaigns.get(t, [])})
+    if len(campaigns) < 2:
+        return []
+    base_campaigns = c.campaigns.get(baseline, [])
+    # where each treatment of the slice has runs among these campaigns, in or out of the slice
+    q = (select(S.solvers.c.name, S.solvers.c.version, S.campaigns.c.name).distinct()
+         .select_from(S.cell_stats.join(S.solvers, S.solvers.c.id == S.cell_stats.c.solver_id)
+                      .join(S.campaigns, S.campaigns.c.id == S.cell_stats.c.campaign_id))
+         .where(S.campaigns.c.name.in_(campaigns)))
+    ran: dict[str, set[str]] = {}
+    for name, version, campaign in conn.execute(q):
+        ran.setdefault(f"{name}@{version}", set()).add(campaign)
+    out = []
+    for t in [t for t in c.treatments if len(ran.get(t, ())) > 1][:DRIFT_MOST]:
+        theirs = sorted(ran[t], key=lambda x: (x not in base_campaigns, x))
+        ref, other = theirs[0], theirs[1]
+        values = []
+        for campaign in (ref, other):
+            one = Slice(((Term("treatment", "=", (t,)), Term("campaign", "=", (campaign,))),))
+            try:
+                obs = collapse(conn, one, c.metric, settings, cells=False).obs
+            except DesignError:
+                obs = None
+            values.append(None if obs is None else obs.set_index("block")["value"])
+        if values[0] is None or values[1] is None:
+            continue
+        common = values[0].index.intersection(values[1].index)
+        inside = common.intersection(c.blocks)
+        blocks = inside if len(inside) >= 2 else common
+        d = (values[1].reindex(blocks) - values[0].reindex(blocks)).dropna()
+        n = len(d)
+        row = {"treatment": t, "campaigns": [ref, other], "blocks": n, "difference": None, "ci_low": None,
+               "ci_high": None, "p": None}
+        if n >= 2:
+            mean, sd = float(d.mean()), float(d.std(ddof=1))
+            half = float(st.t.ppf(0.975, n - 1)) * sd / n ** 0.5
+            row.update(difference=mean, ci_low=mean - half, ci_high=mean + half,
+                       p=float(2 * st.t.sf(abs(mean) / (sd / n ** 0.5), n - 1)) if sd > 0 else None)
+        out.append(row)
+    return out
 
 
 # --- plan --------------------------------------------------------------------------------------

@@ -74,3 +74,34 @@ def hash_pseudo_replication(conn, dims, group_ids) -> list[str]:
 def design_cautions(c: Collapsed) -> list[str]:
     # (few blocks are warned about by each analysis, in its own words)
     return list(c.hash_conflicts)
+
+
+def _listed(parts: list[tuple[str, int]]) -> str:
+    return ", ".join(f"{name} ({n} runs)" for name, n in parts)
+
+
+def pooling_cautions(c: Collapsed, baseline: str | None = None) -> list[str]:
+    """Treatments whose runs come from more than one campaign or host (named, with counts), and a
+    baseline drawn from other campaigns than the treatments it is compared with: each pools or
+    confounds something a reader would want to know about."""
+    out = []
+    for t in c.treatments:
+        src = c.sources.get(t, [])
+        by_campaign: dict[str, int] = {}
+        by_host: dict[str, int] = {}
+        for campaign, host, n in src:
+            by_campaign[campaign] = by_campaign.get(campaign, 0) + n
+            by_host[host] = by_host.get(host, 0) + n
+        if len(by_campaign) > 1:
+            out.append(f"{t} pools runs from {len(by_campaign)} campaigns: {_listed(sorted(by_campaign.items()))}; "
+                       "a difference between the campaigns is mixed into its result")
+        if len(by_host) > 1:
+            out.append(f"{t} pools runs from {len(by_host)} hosts: {_listed(sorted(by_host.items()))}")
+    if baseline and baseline in c.campaigns:
+        base = set(c.campaigns[baseline])
+        others = sorted({x for t in c.treatments if t != baseline for x in c.campaigns.get(t, [])} - base)
+        if others:
+            out.append(f"the baseline {baseline} comes from {', '.join(sorted(base))} and the others (also) from "
+                       f"{', '.join(others)}: campaign is confounded with treatment (see the drift line where a "
+                       "treatment ran in both)")
+    return out

@@ -53,6 +53,8 @@ class Collapsed:
     fingerprint: str
     max_run_id: int
     hash_conflicts: list[str] = field(default_factory=list)
+    # treatment -> [(campaign, host, runs)]: where each treatment's runs in the slice came from
+    sources: dict[str, list[tuple[str, str, int]]] = field(default_factory=dict)
     _earlier: Callable[[], str] | None = None  # makes the 0.1 hash of the same runs (pandas way only)
 
     @property
@@ -193,7 +195,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
     for c in ("n", "n_ok", "n_fail", "id_sum", "id_max"):  # whole numbers (PostgreSQL sums come as Decimals)
         agg[c] = agg[c].astype(np.int64)
     # which hosts and campaigns each treatment's runs came from: a small second query
-    hosts, campaigns = _sources(conn, table, where, dims)
+    hosts, campaigns, sources = _sources(conn, table, where, dims)
     runs_in_slice = int(agg["n"].sum())
     max_run_id = int(agg["id_max"].max())
     notes: list[str] = []
@@ -228,6 +230,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
     stat = "median" if st["instances"] == "median" else "mean"
     obs = used.groupby(["treatment", "block"], as_index=False).agg(
         value=("value", stat), instances=("instance_id", "nunique"), runs=("n", "sum"), failed=("n_fail", "sum"))
+    treatments = _with_values(treatments, obs, notes, metric)  # one with no value is named, not a hole everywhere
     obs, dropped = _holes(obs, sorted(agg["block"].unique()), treatments, st)
     kept_blocks = sorted(obs["block"].unique())
     used_cells = used[used["block"].isin(kept_blocks)]
@@ -241,9 +244,10 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
         notes.insert(0, f"{fail_runs} failed runs dropped")
     return Collapsed(
         slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, _cells=cells,
-        treatments=[t for t in treatments if t in set(obs["treatment"])] or treatments,
+        treatments=treatments,
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=runs_in_slice, runs_used=runs_used,
         instances_used=int(used_cells["instance_id"].nunique()), notes=notes, hosts=hosts, campaigns=campaigns,
+        sources=sources,
         fingerprint=fingerprint, _earlier=lambda: fingerprint_v1(agg, st, metric, sl), max_run_id=max_run_id, hash_conflicts=conflicts,
     )
 
@@ -294,7 +298,7 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
     not_common = int(rows[0].valid_instances) - int(per_block.sum())
     if not_common:
         notes.append(f"{not_common} instances left out because not every treatment in their block has a value on them")
-    treatments = sorted(set(label.values()), key=_treatment_key)
+    treatments = _with_values(sorted(set(label.values()), key=_treatment_key), obs, notes, metric)
     obs, dropped = _holes(obs, sorted(set(block.values())), treatments, st)
     kept_blocks = sorted(obs["block"].unique())
     runs_used = int(obs["ok"].sum())
@@ -303,12 +307,12 @@ def _collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense:
     fail_runs = sum(int(r.n_fail) for r in rows)
     if fail_runs:
         notes.insert(0, f"{fail_runs} failed runs dropped")
-    hosts, campaigns = _sources(conn, C, where, dims)
+    hosts, campaigns, sources = _sources(conn, C, where, dims)
     return Collapsed(
         slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, _cells=None,
-        treatments=[t for t in treatments if t in set(obs["treatment"])] or treatments,
+        treatments=treatments,
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=sum(int(r.n) for r in rows), runs_used=runs_used,
-        instances_used=instances_used, notes=notes, hosts=hosts, campaigns=campaigns,
+        instances_used=instances_used, notes=notes, hosts=hosts, campaigns=campaigns, sources=sources,
         fingerprint=fingerprint, max_run_id=max(int(r.id_max) for r in rows), hash_conflicts=conflicts)
 
 
@@ -429,15 +433,34 @@ def _conflict_note(dims: Dims, group_id, name: str, hashes) -> str:
             "slice; its versions are kept apart and are not comparable")
 
 
-def _sources(conn, table, where, dims: Dims) -> tuple[dict, dict]:
-    """Which hosts and campaigns each treatment's runs came from."""
-    seen = rows_frame(conn.execute(select(table.c.solver_id, table.c.host_id, table.c.campaign_id).where(where).distinct()),
-                      columns=["solver_id", "host_id", "campaign_id"])
-    hosts = {dims.treatment(int(s)): sorted({dims.hosts.get(int(h), "(unknown)") if not pd.isna(h) else "(unknown)"
-                                             for h in g["host_id"]}) for s, g in seen.groupby("solver_id")}
-    campaigns = {dims.treatment(int(s)): sorted({dims.campaigns[int(c)] for c in g["campaign_id"]})
-                 for s, g in seen.groupby("solver_id")}
-    return hosts, campaigns
+def _sources(conn, table, where, dims: Dims) -> tuple[dict, dict, dict]:
+    """Which hosts and campaigns each treatment's runs came from, and how many runs from each."""
+    runs = func.count() if table is R else func.sum(table.c.n)
+    seen = rows_frame(conn.execute(select(table.c.solver_id, table.c.host_id, table.c.campaign_id, runs)
+                                   .where(where).group_by(table.c.solver_id, table.c.host_id, table.c.campaign_id)),
+                      columns=["solver_id", "host_id", "campaign_id", "runs"])
+    host_name = {int(h): dims.hosts.get(int(h), "(unknown)") for h in seen["host_id"].dropna().unique()}
+    hosts, campaigns, sources = {}, {}, {}
+    for s, g in seen.groupby("solver_id"):
+        t = dims.treatment(int(s))
+        where_from = [(dims.campaigns[int(c)], "(unknown)" if pd.isna(h) else host_name[int(h)], int(n))
+                      for c, h, n in zip(g["campaign_id"], g["host_id"], g["runs"])]
+        sources[t] = sorted(where_from)
+        hosts[t] = sorted({h for _, h, _ in where_from})
+        campaigns[t] = sorted({c for c, _, _ in where_from})
+    return hosts, campaigns, sources
+
+
+def _with_values(treatments: list[str], obs: pd.DataFrame, notes: list[str], metric: str) -> list[str]:
+    """The treatments that have a value to analyse. One in the slice with none is left out, and
+    said: a treatment never disappears from an analysis without a word."""
+    present = set(obs["treatment"])
+    kept = [t for t in treatments if t in present]
+    gone = [t for t in treatments if t not in present]
+    if gone and kept:
+        notes.append(f"{', '.join(gone)} {'has' if len(gone) == 1 else 'have'} runs in the slice but no usable "
+                     f"{metric} value (every run failed, or none has the metric): left out of the analysis")
+    return kept or treatments
 
 
 def rows_frame(result, columns: list[str]) -> pd.DataFrame:

@@ -57,7 +57,7 @@ def _header(c, design: str) -> str:
     lines = out.splitlines()
     lines[0] += f"    metric  {c.metric} ({_better(c.sense)})"
     lines[1] += f"    dropped  {dropped}"
-    extra = [f"          {n}" for n in c.notes if not n.endswith("failed runs dropped")]
+    extra = [f"          {n}" for n in c.notes]  # every note that changed what was analysed
     return "\n".join(lines + extra)
 
 
@@ -178,7 +178,17 @@ def render_versus(res) -> str:
     adj = "" if s.method == "dunnett" else f", {s.adjust} adjusted"
     ms = f", residual mean square {num(s.residual_ms)} on {s.residual_df} df" if s.residual_ms is not None else ""
     lines.append(f"method    {method}, {side}, {int(round(s.confidence * 100))} % simultaneous intervals{adj}{ms}")
-    lines.append(f"collapse  {_collapse_line(c)}; {c.runs_used} runs used")
+    lines.append(f"collapse  {_collapse_line(c)}")
+    lines.append(f"used      {c.runs_used} of {c.runs_in_slice} runs, {c.instances_used} instances")
+    lines += [f"          {n}" for n in c.notes]  # whatever changed what was analysed, said here too
+    for d in getattr(res, "drift", []):
+        if d["difference"] is None:
+            lines.append(f"drift     {d['treatment']}: {d['campaigns'][1]} against {d['campaigns'][0]}: "
+                         f"too few common blocks ({d['blocks']}) to measure")
+            continue
+        lines.append(f"drift     {d['treatment']}: {d['campaigns'][1]} against {d['campaigns'][0]} "
+                     f"{signed(d['difference'])} ({signed(d['ci_low'])} .. {signed(d['ci_high'])}, "
+                     f"p {_p_eq(d['p'])}) on {d['blocks']} common blocks")
     lines.append("")
     rows = []
     for r in s.comparisons:
