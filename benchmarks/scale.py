@@ -240,7 +240,7 @@ def completion_latency(db: Path) -> tuple[float, float]:
     from prompt_toolkit.document import Document
 
     from warehouse.commands.session import Session
-    from warehouse.front.shell import make_completer  # noqa: F401  (raises ImportError if the shell lacks it)
+    from warehouse.front.shell.loop import make_completer  # noqa: F401  (raises ImportError if the shell lacks it)
 
     session = Session(location=str(db))
     completer = make_completer(session)

@@ -50,7 +50,7 @@ def prompt(self, *a, **k):
 PromptSession.prompt = prompt
 import io
 from warehouse.commands.session import Session
-from warehouse.front.shell import run_shell
+from warehouse.front.shell.loop import run_shell
 with create_pipe_input() as inp:
     inp.send_text("exit\n")
     run_shell(Session(sys.argv[1]), input=inp, output=DummyOutput(), out=io.StringIO())
@@ -139,7 +139,7 @@ def completion_latency(db: Path) -> dict:
     from prompt_toolkit.document import Document
 
     from warehouse.commands.session import Session
-    from warehouse.front.shell import Shell
+    from warehouse.front.shell.loop import Shell
 
     session = Session(location=str(db))
     t = time.perf_counter()

@@ -352,7 +352,7 @@ def test_a_mistyped_command_is_named_with_the_nearest_one(cli):
 
 def test_the_shell_names_the_nearest_option_too(location):
     from warehouse.commands.session import Session
-    from warehouse.front.shell import Shell
+    from warehouse.front.shell.loop import Shell
 
     out = io.StringIO()
     session = Session(location=location)

@@ -58,7 +58,7 @@ def commands() -> dict:
     from ..commands.catalog import commands as catalog
     from ..commands.registry import args, command
     from ..demo.walk import cmd_demo
-    from .shell import cmd_shell
+    from .shell.loop import cmd_shell
 
     # declared here rather than at the top: this module is imported before any library, so that a
     # command handed to a resident process never waits for them

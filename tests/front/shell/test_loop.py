@@ -1,109 +1,22 @@
-"""The interactive shell, driven in-process through prompt_toolkit's pipe input.
-
-Every test loads a small campaign through the real `blockyard load` path (3 treatments x 6 blocks
-x 2 instances x 2 seeds) and compares what the shell prints with what the command line prints.
+"""The Shell and its loop (warehouse/front/shell/loop.py), driven in-process through
+prompt_toolkit's pipe input: the same numbers as the command line, the session's state from line
+to line, one-line mistakes, leaving, history, and the `shell` command.
 """
 from __future__ import annotations
 
 import io
-import json
 import subprocess
 import sys
 
 import pytest
-from prompt_toolkit.document import Document
 from prompt_toolkit.input import create_pipe_input
 from prompt_toolkit.output import DummyOutput
 
 from warehouse.commands.registry import Command
 from warehouse.commands.session import Session
-from warehouse.front.cli import commands
-from warehouse.front.shell import Shell, run_shell
+from warehouse.front.shell.loop import Shell, run_shell
 
-REGISTRY = commands()  # the command line's table, which the shell gets from it
-
-TREATMENTS = [("stacker", "1.4", 0.0), ("stacker", "1.5", -1.5), ("packer", "2.0", 0.8)]
-FAMILIES = {"fam-a": ["g1", "g2", "g3"], "fam-b": ["g1", "g2", "g3"]}
-LAYOUT = '[metrics.pallets]\nsense = "min"\nunit = "pallets"\n[metrics.fill_pct]\nsense = "max"\nunit = "%"\n'
-
-
-def write_campaign(path, treatments=TREATMENTS, host="rack-a"):
-    lines = ["solver,version,family,group,instance,seed,status,host,pallets,fill_pct"]
-    k = 0
-    for b, (fam, groups) in enumerate(FAMILIES.items()):
-        for g_i, g in enumerate(groups):
-            for inst in (1, 2):
-                for seed in (1, 2):
-                    for t_i, (name, version, shift) in enumerate(treatments):
-                        k += 1
-                        noise = ((k * 7919) % 13) / 13.0 - 0.5
-                        pallets = 30 + 4 * b + 2 * g_i + inst + shift + noise
-                        status = "timeout" if (name, version, fam, g, inst, seed) == ("packer", "2.0", "fam-b", "g3", 2, 2) else "ok"
-                        value = "" if status != "ok" else f"{pallets:.3f}"
-                        lines.append(f"{name},{version},{fam},{g},{fam}-{g}-{inst},{seed},{status},{host},{value},"
-                                     f"{80 - shift + noise:.2f}")
-    path.write_text("\n".join(lines) + "\n")
-    return path
-
-
-@pytest.fixture(autouse=True)
-def _history(tmp_path, monkeypatch):
-    monkeypatch.setenv("BLOCKYARD_HISTORY", str(tmp_path / "history" / "shell-history"))
-
-
-@pytest.fixture
-def loaded(cli, tmp_path, location):
-    layout = tmp_path / "layout.toml"
-    layout.write_text(LAYOUT)
-    src = write_campaign(tmp_path / "runs.csv")
-    r = cli("load", str(src), "--campaign", "autumn", "--layout", str(layout))
-    assert r.code == 0, r
-    return location
-
-
-def drive(location, lines, close=False, table=None):
-    """Type the lines into a shell on the warehouse; return (everything printed, the shell)."""
-    out = io.StringIO()
-    session = Session(location=location, commands=table or commands())
-    try:
-        with create_pipe_input() as inp:
-            inp.send_text("".join(line + "\n" for line in lines))
-            if close:
-                inp.close()
-            elif not lines or lines[-1] not in ("exit", "quit"):
-                inp.send_text("exit\n")
-            shell = run_shell(session, input=inp, output=DummyOutput(), out=out)
-    finally:
-        session.close()
-    return out.getvalue(), shell
-
-
-def documents(text):
-    """The JSON documents in the shell's output, in order."""
-    dec, docs, i = json.JSONDecoder(), [], 0
-    while True:
-        i = text.find("\n{", i)
-        if i < 0:
-            return docs
-        doc, end = dec.raw_decode(text, i + 1)
-        docs.append(doc)
-        i = end
-
-
-def without_ids(doc):
-    return {k: v for k, v in doc.items() if k != "analysis_id"}
-
-
-def shell_on(location, out=None):
-    sh = Shell(Session(location=location), out=out or io.StringIO())
-    sh.start(background=False)
-    return sh
-
-
-def completions(sh, text):
-    doc = Document(text, len(text))
-    return [c.text for c in sh.completer.get_completions(doc, None)]
-
+from .kit import REGISTRY, documents, drive, shell_on, without_ids
 
 # --- the same numbers as the command line --------------------------------------------------------
 
@@ -215,113 +128,6 @@ def test_the_start_up_count_runs_in_the_background(loaded):
     sh.session.close()
 
 
-def test_the_focus_count_from_cell_summaries_equals_the_count_on_runs(loaded, cli):
-    from warehouse.select.resolve import Dims, condition
-    from warehouse.select.slices import parse
-
-    sh = shell_on(loaded)
-    slices = ["", "family=fam-b", "solver=stacker host=rack-a", "stacker@1.5 | packer@2.0 group=g2",
-              "campaign=autumn instance=fam-a-g1-1"]
-
-    def both():
-        with sh.session.warehouse().engine.connect() as conn:
-            dims = Dims.load(conn)
-            for text in slices:
-                sl = parse(text)
-                yield text, Shell._count_cells(conn, sl, dims), Shell._count_runs(conn, condition(sl, dims, conn))
-
-    for text, cells, runs in both():
-        assert cells == runs, text
-    assert dict((t, r) for t, _, r in both())["family=fam-b"] == (3, 3, 36)
-    if "retract" in REGISTRY:
-        assert cli("retract", "--slice", "family=fam-b group=g1", "--reason", "bad batch").code == 0
-        for text, cells, runs in both():
-            assert cells == runs, text
-        assert dict((t, r) for t, _, r in both())["family=fam-b"] == (3, 2, 24)
-    # a term the cell summaries do not carry is counted on the runs
-    with sh.session.warehouse().engine.connect() as conn:
-        assert Shell._count_cells(conn, parse("status=ok"), Dims.load(conn)) is None
-    sh.execute("focus status=timeout")
-    assert sh.summary == "1 treatment x 1 block, 1 run"
-    sh.session.close()
-
-
-# --- completion ----------------------------------------------------------------------------------
-
-def test_completion_offers_warehouse_values(loaded):
-    sh = shell_on(loaded)
-    assert completions(sh, "focus solver=st") == ["stacker"]
-    assert completions(sh, "focus solver=") == ["packer", "stacker"]
-    assert completions(sh, "focus solver=stacker,") == ["packer"]
-    assert completions(sh, "peek --slice version>=") == ["1.4", "1.5", "2.0"]
-    assert completions(sh, 'blocktest --slice "solver=stacker version>=1.') == ["1.4", "1.5"]
-    assert completions(sh, "focus family=") == ["fam-a", "fam-b"]
-    assert completions(sh, "focus solver=stacker family=fam-") == ["fam-a", "fam-b"]
-    assert completions(sh, "focus host=") == ["rack-a"]
-    assert completions(sh, "focus campaign=") == ["autumn"]
-    assert "fam-a/g2" in completions(sh, "focus group=fam-a")
-    assert completions(sh, "focus fam") == ["family="]
-    assert "version>=" in completions(sh, "focus version")
-    assert completions(sh, "focus stacker@") == ["stacker@1.4", "stacker@1.5"]
-    sh.session.close()
-
-
-def test_completion_of_commands_options_and_metrics(loaded):
-    sh = shell_on(loaded)
-    assert completions(sh, "pe") == ["peek"]
-    assert set(completions(sh, "")) >= {"focus", "collapse", "metric", "help", "exit", "peek", "blocktest", "versus"}
-    assert "shell" not in completions(sh, "sh")
-    assert completions(sh, "blocktest --me") == ["--metric"]
-    assert completions(sh, "blocktest --metric ") == ["fill_pct", "pallets"]
-    assert completions(sh, "blocktest --metric=pa") == ["pallets"]
-    assert completions(sh, "metric p") == ["pallets"]
-    assert completions(sh, "blocktest --transform l") == ["log"]
-    assert completions(sh, "collapse --failures p") == ["penalize:10"]
-    assert completions(sh, "versus ") == ["packer@2.0", "stacker@1.4", "stacker@1.5"]
-    assert completions(sh, "versus stacker@1.4 --metric pallets --slice fam") == ["family="]
-    assert completions(sh, "help ver") == ["versus"]
-    assert completions(sh, "inventory so") == ["solvers"]
-    if "recall" in REGISTRY:
-        assert completions(sh, "recall --solver pa") == ["packer", "packer@2.0"]
-    sh.session.close()
-
-
-def test_completion_answers_from_the_cache_until_a_load(loaded, cli, tmp_path):
-    sh = shell_on(loaded)
-    snapshots = sh.snapshots
-    extra = write_campaign(tmp_path / "more.csv", [("tetra", "0.9", 0.3)], host="rack-b")
-    # loaded behind the shell's back: the cache does not rescan on every keystroke
-    assert cli("load", str(extra), "--campaign", "winter").code == 0
-    assert completions(sh, "focus solver=") == ["packer", "stacker"]
-    assert sh.snapshots == snapshots
-    # a load inside the shell rebuilds it
-    other = write_campaign(tmp_path / "more2.csv", [("layerup", "3.1", 0.1)], host="rack-c")
-    assert sh.execute(f"load {other} --campaign winter")
-    assert sh.failures == 0, sh.out.getvalue()
-    assert sh.snapshots == snapshots + 1
-    assert completions(sh, "focus solver=") == ["layerup", "packer", "stacker", "tetra"]
-    assert completions(sh, "focus host=rack-") == ["rack-a", "rack-b", "rack-c"]
-    assert "5 treatments x 6 blocks, 120 runs" in sh.toolbar_text()
-    sh.session.close()
-
-
-def test_slice_terms_are_highlighted(loaded):
-    sh = shell_on(loaded)
-    frags = sh.lexer.lex_document(Document("focus solver=stacker,packer vesion>=1.5 stacker@1.4"))(0)
-    assert ("class:command", "focus") in frags
-    assert [f for f in frags if f[0] in ("class:key", "class:op", "class:value")][:5] == [
-        ("class:key", "solver"), ("class:op", "="), ("class:value", "stacker"), ("class:value", "packer"),
-        ("class:op", ">=")]
-    assert ("class:badkey", "vesion") in frags
-    assert ("class:treatment", "stacker@1.4") in frags
-    assert "".join(t for _, t in frags) == "focus solver=stacker,packer vesion>=1.5 stacker@1.4"
-    frags = sh.highlight('peek --slice "family=fam-a host!=rack-b" --json')
-    assert ("class:option", "--slice") in frags and ("class:option", "--json") in frags
-    assert ("class:key", "host") in frags and ("class:op", "!=") in frags and ("class:value", "rack-b") in frags
-    assert sh.highlight("peak")[0] == ("class:unknown", "peak")
-    sh.session.close()
-
-
 # --- mistakes keep the shell alive ---------------------------------------------------------------
 
 def test_mistakes_print_one_line_and_the_shell_stays(loaded):
@@ -405,17 +211,6 @@ def test_history_is_kept_where_asked(loaded, tmp_path):
     assert "+focus family=fam-a" in hist and "+metric pallets" in hist
 
 
-def test_history_location_follows_the_environment(monkeypatch, tmp_path):
-    from warehouse.front.shell import history_path
-
-    monkeypatch.delenv("BLOCKYARD_HISTORY")
-    monkeypatch.setenv("XDG_DATA_HOME", str(tmp_path / "data"))
-    assert history_path() == tmp_path / "data" / "blockyard" / "history"
-    monkeypatch.delenv("XDG_DATA_HOME")
-    monkeypatch.setenv("HOME", str(tmp_path / "home"))
-    assert history_path() == tmp_path / "home" / ".local" / "share" / "blockyard" / "history"
-
-
 # --- the command and its start-up ----------------------------------------------------------------
 
 def test_blockyard_shell_reads_piped_lines(loaded, cli, monkeypatch, capsys):
@@ -435,7 +230,7 @@ def test_start_up_and_completion_import_no_analysis_libraries(loaded):
         "import sys, io\n"
         "from warehouse.front.cli import build_parser\n"
         "build_parser()\n"
-        "from warehouse.front.shell import Shell\n"
+        "from warehouse.front.shell.loop import Shell\n"
         "from warehouse.commands.session import Session\n"
         f"sh = Shell(Session({loaded!r}), out=io.StringIO()); sh.start(background=False)\n"
         "from prompt_toolkit.document import Document\n"
