@@ -130,7 +130,7 @@ def test_export_html_is_balanced_escaped_and_embeds_readable_pngs(cli, campaign,
     res = cli("export", str(aid), "--to", str(out), "--json")
     assert res.code == 0, res
     doc = res.json()
-    assert doc == {"analysis_id": aid, "file": str(out), "format": "html", "figures": 3}
+    assert doc == {"analysis_id": aid, "file": str(out), "format": "html", "figures": 4}
     raw = out.read_text(encoding="utf-8")
     assert raw.startswith("<!DOCTYPE html>")
     p = _parse(raw)
@@ -162,7 +162,7 @@ def test_export_markdown_writes_every_file_it_links(cli, campaign, tmp_path):
     res = cli("export", str(aid), "--to", str(out), "--json")
     assert res.code == 0, res
     doc = res.json()
-    assert doc["format"] == "markdown" and doc["figures"] == 3
+    assert doc["format"] == "markdown" and doc["figures"] == 4
     text = out.read_text(encoding="utf-8")
     links = re.findall(r"!\[[^\]]*\]\(([^)]+)\)", text)
     assert len(links) == doc["figures"]
@@ -319,3 +319,36 @@ def test_additive_residuals_match_least_squares_and_blom_positions():
 
 def test_markdown_escaping_keeps_data_literal():
     assert md("a|b*c<d>&_e") == "a\\|b\\*c&lt;d&gt;&amp;\\_e"
+
+
+def test_the_relative_block_profile_plots_percent_differences_from_the_baseline():
+    # reference: the percentage difference computed by hand from the same table (common practice:
+    # 100 * (value / reference - 1))
+    import pandas as pd
+
+    from warehouse.present.figures import relative_profile
+
+    obs = pd.DataFrame({"treatment": ["a", "b", "a", "b", "a", "b"], "block": ["x", "x", "y", "y", "z", "z"],
+                        "value": [200.0, 190.0, 2.0, 2.2, 0.0, 5.0]})
+    fig = relative_profile(obs, "min", "pallets", ["a", "b"], baseline="a")
+    ax = fig.axes[0]
+    lines = {ln.get_label(): list(ln.get_ydata()) for ln in ax.get_lines() if not ln.get_label().startswith("_")}
+    assert lines["a"] == [0.0, 0.0]
+    assert sorted(lines["b"]) == pytest.approx(sorted([100 * (190 / 200 - 1), 100 * (2.2 / 2.0 - 1)]))
+    assert any("1 blocks left out (reference zero or missing)" in t.get_text() for t in ax.texts)  # block z
+
+
+def test_the_report_shows_failures_per_treatment_and_block(tmp_path):
+    import subprocess
+    import sys
+
+    folder = tmp_path / "demo"
+    done = subprocess.run([sys.executable, "-m", "warehouse", "demo", str(folder)], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr[-2000:]
+    out = tmp_path / "r.md"
+    done = subprocess.run([sys.executable, "-m", "warehouse", "export", "1", "--to", str(out), "-w",
+                           str(folder / "demo.db")], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    text = out.read_text()
+    assert "failed)" in text and "| failed runs |" in text
+    assert "block profile, relative" in text

@@ -7,12 +7,13 @@ from pathlib import Path
 from ..commands.analyse import cmd_blocktest, cmd_peek, cmd_versus
 from ..commands.ledger import cmd_keep, cmd_recall, cmd_recheck, cmd_retract
 from ..commands.load import cmd_load
+from ..commands.look import cmd_inventory
 from ..commands.registry import Done, add_json, args, command, table
 from ..commands.report import cmd_export
 from ..commands.session import Session
 from ..errors import BlockyardError
 
-STEPS = table(cmd_load, cmd_peek, cmd_blocktest, cmd_versus, cmd_keep, cmd_recall, cmd_retract, cmd_recheck,
+STEPS = table(cmd_load, cmd_inventory, cmd_peek, cmd_blocktest, cmd_versus, cmd_keep, cmd_recall, cmd_retract, cmd_recheck,
               cmd_export)
 
 

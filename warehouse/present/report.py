@@ -153,6 +153,12 @@ def draw_figures(st) -> tuple[list[FigureItem], list[str]]:
                      f"{metric} per block and treatment, blocks ordered by their mean: lines that keep their order "
                      "across blocks mean a consistent difference; crossing lines mean the ranking depends on the block.",
                      lambda: F.block_profile(obs, sense, metric, order)))
+        base = r.get("baseline") if st.kind == "versus" else None
+        against = f"{base}'s value on the same block" if base else "the block's mean over treatments"
+        plan.append(("relative", "block profile, relative",
+                     f"Each treatment's {metric} per block as a percentage difference from {against}: a "
+                     "difference of a few percent shows even when blocks differ by orders of magnitude.",
+                     lambda: F.relative_profile(obs, sense, metric, order, base)))
         plan.append(("qq", "residual Q-Q plot",
                      f"Residuals of the additive treatment + block model{scale} against normal quantiles (Blom "
                      "plotting positions): points near the line support the normal-theory tests.",
@@ -368,6 +374,8 @@ def _coverage_blocks(st) -> list:
     treatments += [t for t in dict.fromkeys(obs["treatment"]) if t not in treatments]
     blocks = sorted(set(obs["block"]))
     cell = {(o["block"], o["treatment"]): o for o in obs.to_dict("records")}
+    failed_by: dict[str, int] = {}  # failures per treatment, and its runs: a failure is data, shown beside the value
+    runs_by: dict[str, int] = {}
     rows = []
     for b in blocks:
         row = [str(b)]
@@ -377,12 +385,18 @@ def _coverage_blocks(st) -> list:
             if o is None:
                 row.append(".")
                 continue
-            row.append(num(o.get("value")))
+            lost = int(o.get("failed") or 0)
+            row.append(num(o.get("value")) + (f" ({lost} failed)" if lost else ""))
             runs += int(o.get("runs") or 0)
-            failed += int(o.get("failed") or 0)
+            failed += lost
+            failed_by[t] = failed_by.get(t, 0) + lost
+            runs_by[t] = runs_by.get(t, 0) + int(o.get("runs") or 0)
         rows.append(row + [str(runs), str(failed)])
     out.append(Para(f"the observation table the analysis used: one value per treatment and block "
-                    f"({len(treatments)} treatments x {len(blocks)} blocks); . marks a hole"))
+                    f"({len(treatments)} treatments x {len(blocks)} blocks); . marks a hole; (k failed) counts the "
+                    "failed runs behind a value; the last row gives each treatment's failed runs of its runs"))
+    rows.append(["failed runs", *[f"{failed_by.get(t, 0)} of {runs_by.get(t, 0)}" for t in treatments],
+                 str(sum(runs_by.values())), str(sum(failed_by.values()))])
     out.append(Table(["block", *treatments, "runs", "failed runs"], rows, [False] + [True] * (len(treatments) + 2)))
     dropped = r.get("dropped_blocks") or []
     if dropped:
