@@ -415,7 +415,8 @@ def test_large_values_below_the_limit_analyse_without_numeric_warnings():
     import numpy as np
     import pandas as pd
 
-    from warehouse.analyze.blocked import LARGEST_VALUE, rcbd_anova, refuse_overflow
+    from warehouse.analyze.anova import rcbd_anova
+    from warehouse.analyze.tidy import LARGEST_VALUE, refuse_overflow
     from warehouse.errors import DesignError
 
     rng = np.random.default_rng(3)

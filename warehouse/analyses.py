@@ -84,7 +84,9 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
     """The blocked analysis of `metric` over slice `sl`. With `quick`, the collapse may run in SQL
     and leave out the per-instance table (the generalized design needs it; re-checks of analyses
     kept by Blockyard 0.1 need the pandas collapse for their fingerprint)."""
-    from .analyze.blocked import generalized_anova, incomplete_anova, rcbd_anova, refuse_overflow
+    from .analyze.anova import rcbd_anova
+    from .analyze.designs import generalized_anova, incomplete_anova
+    from .analyze.tidy import refuse_overflow
     from .collapse.cautions import design_cautions, host_caution, pooling_cautions, pseudo_replication
 
     if transform not in ("none", "log", "boxcox", "rank"):
@@ -244,7 +246,7 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
                adjust: str = "holm", better: str | None = None, margin: str | None = None,
                confidence: float = 0.95, quick: bool = True) -> VersusResult:
     from .analyze.baseline import dunnett_vs_baseline, paired_vs_baseline
-    from .analyze.blocked import refuse_overflow
+    from .analyze.tidy import refuse_overflow
     from .collapse.cautions import design_cautions, host_caution, pooling_cautions, pseudo_replication
 
     if method not in ("dunnett", "paired-t", "wilcoxon"):

@@ -30,7 +30,7 @@ def invented(seed: int, a: int = 4, b: int = 10) -> np.ndarray:
 
 
 # Montgomery, Design and Analysis of Experiments, vascular-graft example (4 pressures x 6
-# batches; data from memory of the book, checked in test_blocked against the book's sums)
+# batches; data from memory of the book, checked in test_anova against the book's sums)
 GRAFT = np.array([[90.3, 89.2, 98.2, 93.9, 87.4, 97.9], [92.5, 89.5, 90.6, 94.7, 87.0, 95.8],
                   [85.5, 90.8, 89.6, 86.2, 88.0, 93.4], [82.5, 89.5, 85.6, 87.4, 78.9, 90.7]])
 

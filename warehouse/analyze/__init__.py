@@ -7,8 +7,10 @@ and ``table()`` (tidy pandas DataFrames).
 
 Modules
 -------
-blocked   randomized complete block ANOVA with diagnostics and transforms, Friedman and Quade
-          tests, incomplete and generalized block designs
+tidy      what they share: the observation table's checks, the result type, the F test
+anova     randomized complete block ANOVA with diagnostics, transforms and relative efficiency
+ranks     Friedman (with Iman-Davenport) and Quade rank tests
+designs   incomplete and generalized block designs
 baseline  many-to-one comparisons against a baseline (Dunnett, paired t, Wilcoxon), effect sizes,
           win / tie / loss counts
 pairs     all-pairs comparisons (Tukey on the block model, Nemenyi and Conover after Friedman)
@@ -18,4 +20,4 @@ Submodules are imported on demand so that ``import warehouse.analyze`` stays che
 """
 from __future__ import annotations
 
-__all__ = ["blocked", "baseline", "pairs", "planning"]
+__all__ = ["tidy", "anova", "ranks", "designs", "baseline", "pairs", "planning"]

@@ -23,7 +23,8 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, stats
 
-from warehouse.analyze.blocked import FEW_BLOCKS, CHECK_LEVEL, _additive, _complete, _fmt_p, _Result
+from warehouse.analyze.anova import _additive
+from warehouse.analyze.tidy import CHECK_LEVEL, FEW_BLOCKS, _complete, _fmt_p, _Result
 from warehouse.errors import DesignError, InputError
 
 ALTERNATIVES = ("two-sided", "less", "greater")

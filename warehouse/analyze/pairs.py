@@ -20,7 +20,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from warehouse.analyze.blocked import FEW_BLOCKS, _additive, _complete, _friedman_core, _Result, _within_ranks
+from warehouse.analyze.anova import _additive
+from warehouse.analyze.ranks import _friedman_core, _within_ranks
+from warehouse.analyze.tidy import FEW_BLOCKS, _complete, _Result
 from warehouse.errors import InputError
 
 ADJUSTMENTS = ("holm", "bonferroni", "none")

@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import stats
 
-from warehouse.analyze.blocked import _Result
+from warehouse.analyze.tidy import _Result
 from warehouse.errors import DesignError, InputError
 
 #: the search for a number of blocks gives up beyond this.

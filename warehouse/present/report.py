@@ -232,7 +232,7 @@ def _yes(p, level: float) -> str:
 
 
 def _blocktest_blocks(r: dict) -> list:
-    from ..analyze.blocked import CHECK_LEVEL
+    from ..analyze.tidy import CHECK_LEVEL
 
     out: list = [Heading("analysis of variance", 3)]
     rows = [[str(a.get("source", "")), _plain(a.get("df")), num(a.get("ss")), num(a.get("ms")),
