@@ -570,3 +570,53 @@ def test_a_plan_kept_before_the_source_notes_still_rechecks_unchanged(campaign, 
     finally:
         w.close()
     assert recheck(cli, plan)["status"] == "unchanged"
+
+
+# --- undo while a reload holds the keys (load --again into the same campaign) -------------------
+
+def _live_imports(location):
+    from warehouse.store.connect import open_warehouse
+
+    w = open_warehouse(location)
+    try:
+        with w.engine.connect() as c:
+            return c.execute(text("SELECT import_id, count(*) FROM runs WHERE retraction_id IS NULL "
+                                  "GROUP BY import_id ORDER BY import_id")).all()
+    finally:
+        w.close()
+
+
+def _reload_into(cli, tmp_path, campaign):
+    """A file of 4 runs loaded into nov (import 1), retracted (retraction 1), loaded again (import 2)."""
+    runs = [{"solver": "stacker", "version": v, "family": "mixed-sku", "group": "g1", "instance": "i1", "seed": s,
+             "finished_at": FINISHED, "pallets": 30 + s} for v in ("1.4", "1.6") for s in (1, 2)]
+    path = write_runs(tmp_path / "nov.csv", runs)
+    assert cli("load", path, "--campaign", "nov").code == 0
+    assert cli("retract", "--slice", "campaign=nov", "--reason", "wrong layout", "--json").json()["retraction_id"] == 1
+    r = cli("load", path, "--campaign", campaign, "--again", "--json")
+    assert r.code == 0 and r.json()["imports"][0]["replaces"] == 1, r
+
+
+def test_an_undo_that_would_put_two_live_runs_on_one_key_is_refused(cli, location, tmp_path):
+    _reload_into(cli, tmp_path, "nov")
+    r = cli("retract", "--undo", "1")
+    assert r.code == 2 and r.out == "", r
+    assert r.err.strip().splitlines() == [
+        "blockyard: retraction 1 cannot be undone: 4 of its runs would be live beside the live runs of import 2 under "
+        "the same keys in campaign nov (a campaign holds one live run per key); retract import 2's runs first: "
+        'blockyard retract --slice "campaign=nov" --reason "...", then blockyard retract --undo 1']
+    assert _live_imports(location) == [(2, 4)]  # nothing changed
+    # the command it names clears the way; the other way round is refused alike
+    assert cli("retract", "--slice", "campaign=nov", "--reason", "back to the first", "--json").json()["retraction_id"] == 2
+    assert cli("retract", "--undo", "1", "--json").json()["runs_restored"] == 4
+    assert _live_imports(location) == [(1, 4)]
+    r = cli("retract", "--undo", "2")
+    assert r.code == 2 and "4 of its runs would be live beside the live runs of import 1" in r.err, r
+    assert _live_imports(location) == [(1, 4)]
+
+
+def test_an_undo_goes_ahead_when_the_reload_went_into_another_campaign(cli, location, tmp_path):
+    # campaigns do not share runs: the same keys in nov-fixed hold nothing in nov
+    _reload_into(cli, tmp_path, "nov-fixed")
+    assert cli("retract", "--undo", "1", "--json").json()["runs_restored"] == 4
+    assert _live_imports(location) == [(1, 4), (2, 4)]

@@ -398,11 +398,65 @@ def undo_retraction(wh: Warehouse, retraction_id: int, now: float | None = None)
                 raise InputError(f"no retraction {retraction_id} (inventory lists none; retract prints its id)")
             if row.undone_at is not None:
                 raise InputError(f"retraction {retraction_id} was already undone")
+            if wh.dialect == "postgresql":  # no load puts a run on one of these keys meanwhile
+                conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
             keys = cells.touched(conn, S.runs.c.retraction_id == retraction_id)
+            taken = _keys_taken(conn, retraction_id, keys)
+            if taken:
+                from .ingest.loader import retract_command
+
+                holder, count = min(taken.items())
+                name = conn.execute(select(S.campaigns.c.name).join(S.imports, S.imports.c.campaign_id == S.campaigns.c.id)
+                                    .where(S.imports.c.id == holder)).scalar()
+                others = len(taken) - 1
+                more = f" (and of {others} other import{'s' if others > 1 else ''})" if others else ""
+                raise InputError(
+                    f"retraction {retraction_id} cannot be undone: {count} of its runs would be live beside the "
+                    f"live runs of import {holder}{more} under the same keys in campaign {name} (a campaign holds "
+                    f"one live run per key); retract import {holder}'s runs first: {retract_command(conn, holder)}, "
+                    f"then blockyard retract --undo {retraction_id}")
             n = conn.execute(update(S.runs).where(S.runs.c.retraction_id == retraction_id).values(retraction_id=None)).rowcount
             cells.rebuild(conn, keys)
             conn.execute(update(S.retractions).where(S.retractions.c.id == retraction_id).values(undone_at=int(now)))
     return {"retraction_id": retraction_id, "runs_restored": int(n), "slice": row.slice, "reason": row.reason}
+
+
+def _keys_taken(conn, retraction_id: int, keys: list[tuple]) -> dict[int, int]:
+    """The imports whose live runs hold keys of the retraction's runs in their campaigns, with
+    how many each (after a file was loaded again into its own campaign, `load --again`, its
+    reload holds the keys of its retracted runs). Only the cells the retraction touched can meet
+    them: the cell summaries (live runs) name the imports to read, usually none; then only those
+    imports' runs in those cells are read, through their id ranges (SQLite has no run key)."""
+    from .store.ranges import id_ranges
+
+    R, C = S.runs, S.cell_stats
+    cellset = {(k[3], k[1], k[2]) for k in keys}  # (campaign, solver, instance)
+    if not cellset:
+        return {}
+    campaigns = sorted({c[0] for c in cellset})
+    solvers = sorted({c[1] for c in cellset})
+    instances = sorted({c[2] for c in cellset})
+    holders: set[int] = set()
+    for i in range(0, len(instances), 5000):
+        for imp, camp, sol, inst in conn.execute(
+                select(C.c.import_id, C.c.campaign_id, C.c.solver_id, C.c.instance_id).where(
+                    C.c.campaign_id.in_(campaigns), C.c.solver_id.in_(solvers),
+                    C.c.instance_id.in_(instances[i:i + 5000])).distinct()):
+            if (camp, sol, inst) in cellset:
+                holders.add(int(imp))
+    if not holders:
+        return {}
+    key = (R.c.campaign_id, R.c.solver_id, R.c.instance_id, R.c.seed, R.c.replicate)
+    restored = set(conn.execute(select(*key).where(R.c.retraction_id == retraction_id)).all())
+    spans = id_ranges(conn, S.imports.c.id.in_(sorted(holders)))
+    taken: dict[int, int] = {}
+    for i in range(0, len(instances), 5000):
+        for row in conn.execute(select(R.c.import_id, *key).where(
+                spans, R.c.import_id.in_(sorted(holders)), R.c.retraction_id.is_(None),
+                R.c.campaign_id.in_(campaigns), R.c.solver_id.in_(solvers), R.c.instance_id.in_(instances[i:i + 5000]))):
+            if tuple(row[1:]) in restored:
+                taken[int(row[0])] = taken.get(int(row[0]), 0) + 1
+    return taken
 
 
 # --- recheck -----------------------------------------------------------------------------------
@@ -436,11 +490,12 @@ def rerun(wh: Warehouse, st: Stored):
         if st.kind == "blocktest":
             # quick=False: the pandas collapse, which also gives the 0.1 fingerprint of the same runs
             return run_blocktest(conn, st.slice, st.metric, col, opts.get("transform", "none"),
-                                 opts.get("design", "auto"), opts.get("pairs", False), quick=False)
+                                 opts.get("design", "auto"), opts.get("pairs", False), quick=False,
+                                 cutoff=opts.get("cutoff"))
         if st.kind == "versus":
             return run_versus(conn, st.slice, st.metric, col, opts["baseline"], opts.get("method", "dunnett"),
                               opts.get("adjust", "holm"), opts.get("better"), opts.get("margin"),
-                              opts.get("confidence", 0.95), quick=False)
+                              opts.get("confidence", 0.95), quick=False, cutoff=opts.get("cutoff"))
     if st.kind == "plan":
         source = src = None
         if opts.get("from") is not None:

@@ -9,6 +9,9 @@ stale analysis may be re-run into a new one that takes over its claims.
   several processes gets there first.
 - analyses.renewed_from_id: `blockyard recheck ID --renew` stores the re-run as a new analysis
   that points at the one it renews; the claims move to it.
+- PostgreSQL: the run key (ux_runs_key) holds live runs only, so that a file reloaded into its
+  own campaign goes in beside its retracted runs under the same keys; the loader keeps the
+  keys of other retracted runs itself (ingest/loader.py). SQLite holds no run key (0007).
 
 SQLite cannot drop a column's UNIQUE in place, so its imports table is rebuilt (a few rows per
 file ever loaded) with foreign keys off for the length of the migration (connect.migrate), as
@@ -24,6 +27,8 @@ revision = "0008"
 down_revision = "0007"
 branch_labels = None
 depends_on = None
+
+RUN_KEY = ["campaign_id", "solver_id", "instance_id", "seed", "replicate"]
 
 
 def _imports(sha_unique: bool, with_replaces: bool) -> sa.Table:
@@ -63,9 +68,17 @@ def upgrade() -> None:
                     unique=True)
     with op.batch_alter_table("analyses") as batch:
         batch.add_column(sa.Column("renewed_from_id", sa.Integer, sa.ForeignKey("analyses.id", name="fk_analyses_renewed_from"), nullable=True))
+    if not sqlite:
+        op.drop_index("ux_runs_key", "runs")
+        op.create_index("ux_runs_key", "runs", RUN_KEY, unique=True, postgresql_where=sa.text("retraction_id IS NULL"))
 
 
 def downgrade() -> None:
+    if op.get_bind().dialect.name != "sqlite":
+        # (refused by the server, and the downgrade with it, once a reload shares keys with its
+        # retracted runs: 0007 holds a run once per campaign, retracted or not)
+        op.drop_index("ux_runs_key", "runs")
+        op.create_index("ux_runs_key", "runs", RUN_KEY, unique=True)
     with op.batch_alter_table("analyses") as batch:
         batch.drop_column("renewed_from_id")
     op.drop_index("ux_imports_reload", "imports")

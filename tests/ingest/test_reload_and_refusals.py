@@ -204,18 +204,95 @@ def test_a_reload_takes_the_corrected_layout(cli, location, tmp_path):
     assert query(location, "SELECT layout FROM imports WHERE id = 2") == [(right.read_text(),)]
 
 
-def test_a_reload_into_the_same_campaign_is_refused_alike_on_both_databases(cli, location, tmp_path):
-    # PostgreSQL's unique run key holds retracted runs too; SQLite's loads keep the same rule
+def test_a_reload_into_the_same_campaign_goes_in_beside_its_retracted_runs(cli, location, tmp_path):
+    # the retracted runs of the import it replaces hold no keys for it, on both databases alike
     path = write(tmp_path / "a.csv", H + rows("1.6"))
     load_json(cli, path, campaign="nov")
     retract(cli, "campaign=nov")
-    before = everything(location)
-    line = refusal(cli, path, "--again", campaign="nov")
-    assert line == (f"blockyard: {path} line 2: this run (stacker@1.6, instance i1, seed 1, replicate 0) is held in "
-                    "campaign nov by a retracted run of import 1; a campaign holds a run once, retracted or not, so load "
-                    'the file again into another campaign (e.g. --again --campaign "nov-reload")')
-    assert everything(location) == before
-    assert "blockyard_load_key" not in indexes(location)  # (SQLite's key for the load, dropped with it)
+    rep = load_json(cli, path, "--again", "--dry-run", campaign="nov")
+    assert rep["message"] == "would load 2 runs into campaign nov, in place of import 1; nothing was stored", rep
+    res = load(cli, path, "--again", campaign="nov")
+    assert res.code == 0 and res.out.strip() == (
+        f"loaded   {path}: 2 runs loaded into campaign nov, in place of import 1 (wholly retracted)"), res
+    # each key twice: the retracted run of import 1 and the live run of the reload (PostgreSQL's
+    # sequence gave the dry run an id too: the reload's is read back)
+    (new,), = query(location, "SELECT id FROM imports WHERE replaces_import_id = 1")
+    assert query(location, "SELECT import_id, seed, CASE WHEN retraction_id IS NULL THEN 0 ELSE 1 END FROM runs "
+                           "ORDER BY id") == [(1, 1, 1), (1, 2, 1), (new, 1, 0), (new, 2, 0)]
+    assert live_imports(location) == [(new, 2)]
+    assert query(location, "SELECT count(*), sum(n) FROM cell_stats") == [(2, 2)]  # import 2's cells alone
+    assert "blockyard_load_key" not in indexes(location)  # (SQLite's key for a load, dropped with it)
+
+
+def test_a_same_campaign_reload_with_a_fixed_layout_is_all_the_analyses_see(cli, location, tmp_path):
+    # the exporter's columns: pallets_used (pallets) and wall_s (seconds); the first layout swaps them
+    lines = ["solver,version,family,group,instance,seed,pallets_used,wall_s"]
+    for version, base in (("1.4", 30), ("1.6", 27)):
+        for g in (1, 2, 3):
+            for seed in (1, 2):
+                lines.append(f"stacker,{version},mixed-sku,g{g},i{g},{seed},{base + g + seed + (g == 2) * seed},"
+                             f"{10 * g + seed}")
+    path = write(tmp_path / "runs.csv", "\n".join(lines) + "\n")
+    wrong = write(tmp_path / "wrong.toml", '[columns]\npallets_used = "seconds"\nwall_s = "pallets"\n')
+    right = write(tmp_path / "right.toml", '[columns]\npallets_used = "pallets"\nwall_s = "seconds"\n')
+
+    def means() -> dict:
+        res = cli("blocktest", "--slice", "campaign=nov", "--metric", "pallets", "--json")
+        assert res.code == 0, res
+        return {m["treatment"]: m["mean"] for m in res.json()["treatment_means"]}
+
+    def diff() -> float:
+        res = cli("versus", "stacker@1.4", "--slice", "campaign=nov", "--metric", "pallets", "--json")
+        assert res.code == 0, res
+        (row,) = res.json()["comparisons"]
+        return row["diff"]
+
+    load_json(cli, path, "--layout", str(wrong), campaign="nov")
+    # wall_s read as pallets: the mean of 10 g + seed over g = 1..3, seed = 1, 2 is 20 + 1.5 for both
+    assert means() == {"stacker@1.4": 21.5, "stacker@1.6": 21.5}
+    assert diff() == pytest.approx(0.0)
+    retract(cli, "campaign=nov")
+    rep = load_json(cli, path, "--again", "--layout", str(right), campaign="nov")
+    assert (rep["rows_loaded"], rep["rows_skipped"], rep["replaces"]) == (12, 0, 1)
+    # base + g + seed (+ seed on g2): 30 + 2 + 1.5 + 0.5 for 1.4, 27 + 2 + 1.5 + 0.5 for 1.6
+    assert means() == {"stacker@1.4": 34.0, "stacker@1.6": 31.0}
+    assert diff() == pytest.approx(-3.0)  # 31 - 34, each block alike
+    listing = cli("inventory", "imports", "--json").json()["imports_list"]
+    assert [(r["import"], r["campaign"], r["replaces"]) for r in listing] == [(1, "nov", None), (2, "nov", 1)]
+    text = cli("inventory", "imports").out.splitlines()
+    assert text[2].split()[:4] == ["2", "nov", "runs.csv", "1"]
+
+
+def test_a_reload_of_a_reload_into_the_same_campaign_passes_the_whole_chain(cli, location, tmp_path):
+    # imports 1 and 2 (which replaced 1) are both retracted: neither holds a key against import 3
+    path = write(tmp_path / "a.csv", H + rows("1.6"))
+    load_json(cli, path, campaign="nov")
+    retract(cli, "campaign=nov")
+    assert load_json(cli, path, "--again", campaign="nov")["replaces"] == 1
+    retract(cli, "campaign=nov")
+    rep = load_json(cli, path, "--again", campaign="nov")
+    assert (rep["rows_loaded"], rep["rows_skipped"], rep["replaces"]) == (2, 0, 2)
+    assert query(location, "SELECT seed, count(*), count(retraction_id) FROM runs GROUP BY seed ORDER BY seed") == \
+        [(1, 3, 2), (2, 3, 2)]
+    assert live_imports(location) == [(3, 2)]
+
+
+def test_a_retracted_run_of_another_import_still_holds_its_key_against_a_reload(cli, location, tmp_path):
+    # seed 2 came first from another file (import 1), since retracted: it keeps its key, as for
+    # any load; the reload's own retracted runs (import 2) do not
+    body = rows("1.6", n=3)
+    load_json(cli, write(tmp_path / "b.csv", H + body.splitlines(True)[1]), campaign="nov")
+    retract(cli, "campaign=nov")
+    path = write(tmp_path / "a.csv", H + body)
+    rep = load_json(cli, path, campaign="nov")
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (2, 1)
+    retract(cli, "campaign=nov")
+    rep = load_json(cli, path, "--again", campaign="nov")
+    assert (rep["rows_loaded"], rep["rows_skipped"], rep["replaces"]) == (2, 1, 2)
+    assert rep["warnings"] == [f"{path} line 3: this run (stacker@1.6, instance i2, seed 2, replicate 0) is already "
+                               "in this campaign (a retracted run of import 1); skipped, the stored values are kept"]
+    assert query(location, "SELECT seed FROM runs WHERE retraction_id IS NULL ORDER BY seed") == [(1,), (3,)]
+    assert query(location, "SELECT import_id FROM runs WHERE seed = 2") == [(1,)]
 
 
 def test_a_reload_whose_corrected_keys_differ_goes_into_the_same_campaign(cli, location, tmp_path):

@@ -122,3 +122,71 @@ def test_values_one_chunk_holds_alike_are_stored_as_bound_ones_would_be(cli, loc
     if not ON_POSTGRES:
         assert query(location, "SELECT DISTINCT typeof(seed), typeof(v1), typeof(host_id) FROM runs") == \
             [("integer", "real", "null")]
+
+
+# --- a file loaded again into its own campaign (`load --again`, revision 0008) ------------------
+
+def test_the_run_key_holds_live_runs_only(cli, location):
+    # PostgreSQL: a partial unique index (its own pg_indexes text); SQLite holds none (0007).
+    # The schema module declares the same (alembic's comparison in test_store does not read a
+    # partial index's WHERE)
+    from sqlalchemy.dialects import postgresql
+    from sqlalchemy.schema import CreateIndex
+
+    from warehouse.store import schema as S
+
+    (key,) = [i for i in S.runs.indexes if i.name == "ux_runs_key"]
+    assert str(CreateIndex(key).compile(dialect=postgresql.dialect())).endswith(" WHERE retraction_id IS NULL")
+    if not ON_POSTGRES:
+        assert "ux_runs_key" not in indexes(location)
+        return
+    (ddl,), = query(location, "SELECT indexdef FROM pg_indexes WHERE indexname = 'ux_runs_key' "
+                              "AND schemaname = current_schema()")
+    assert ddl.startswith("CREATE UNIQUE INDEX ux_runs_key ON ") and ddl.endswith(
+        "USING btree (campaign_id, solver_id, instance_id, seed, replicate) WHERE (retraction_id IS NULL)"), ddl
+
+
+def _reloaded(cli, tmp_path):
+    """nov: import 1 (seeds 1 and 2) retracted, and the same file loaded again into nov (import 2)."""
+    path = write(tmp_path / "a.csv", H + "s,1,g1,a,1,ok,10\ns,1,g1,a,2,ok,20\n")
+    load_json(cli, path, campaign="nov")
+    assert cli("retract", "--slice", "campaign=nov", "--reason", "wrong layout").code == 0
+    return load_json(cli, path, "--again", campaign="nov")
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="the proofs are SQLite's")
+def test_a_reload_into_its_own_campaign_is_proved_new_without_the_key_index(cli, location, tmp_path, monkeypatch):
+    # the cells hold only the replaced import's retracted runs, which hold no keys for the
+    # reload: the quick proof stands, and no key index is made
+    made = []
+    real = loader._campaign_key
+    monkeypatch.setattr(loader, "_campaign_key", lambda conn, cid, create: (made.append(create), real(conn, cid, create)))
+    rep = _reloaded(cli, tmp_path)
+    assert (rep["rows_loaded"], rep["rows_skipped"], rep["replaces"]) == (2, 0, 1)
+    assert made == []
+    assert query(location, "SELECT import_id, seed FROM runs WHERE retraction_id IS NULL ORDER BY id") == [(2, 1), (2, 2)]
+
+
+def test_later_loads_into_a_campaign_with_a_reload_still_hold_each_key_once(cli, location, tmp_path):
+    # each key of nov is held twice now (import 1 retracted, import 2 live): the exact way's key
+    # index takes the live runs only, and both kinds of holder still keep a file's runs out
+    _reloaded(cli, tmp_path)
+    path = write(tmp_path / "b.csv", H + "s,1,g1,a,2,ok,99\ns,1,g1,a,3,ok,30\n")
+    rep = load_json(cli, path, campaign="nov")
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (1, 1)
+    assert rep["warnings"] == [f"{path} line 2: this run (s@1, instance a, seed 2, replicate 0) is already in this "
+                               "campaign (import 2); skipped, the stored values are kept"]
+    assert query(location, "SELECT import_id, seed, v1 FROM runs WHERE retraction_id IS NULL ORDER BY id") == \
+        [(2, 1, 10.0), (2, 2, 20.0), (3, 3, 30.0)]
+    assert "blockyard_load_key" not in indexes(location)
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="SQLite's exact way keeps the retracted keys itself")
+def test_retracted_keys_are_told_apart_when_their_hashes_meet(cli, location, tmp_path, monkeypatch):
+    load_json(cli, write(tmp_path / "a.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in (1, 2, 3))))
+    assert cli("retract", "--slice", "seed=2,3", "--reason", "bad").code == 0
+    monkeypatch.setattr(loader._RunHashes, "_mix", staticmethod(lambda z: z * 0))  # every key hashed alike
+    rep = load_json(cli, write(tmp_path / "b.csv", H + "".join(f"s,1,g1,a,{k},ok,{10 * k}\n" for k in (2, 3, 4, 5))))
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (2, 2)
+    assert query(location, "SELECT seed, v1 FROM runs WHERE retraction_id IS NULL ORDER BY seed") == \
+        [(1, 1.0), (4, 40.0), (5, 50.0)]

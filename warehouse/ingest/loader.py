@@ -313,10 +313,13 @@ class _FileLoad:
     def __init__(self, wh: Warehouse, info: SourceInfo, layout: Layout, skip_bad: bool, again: bool = False,
                  block_bytes: int = BLOCK_BYTES):
         self.wh, self.info, self.layout, self.skip_bad = wh, info, layout, skip_bad
-        self.again = again  # a reload (--again): a run a retraction holds the key of refuses the file
+        self.again = again  # a reload (--again)
         self.block_bytes = block_bytes  # the CSV reader's block (larger for a file with long records)
         self.campaign = ""
         self.replaces: int | None = None  # the import this load replaces (--again)
+        # that import and those it replaced in turn: their retracted runs hold no keys for this
+        # load, whose runs go in beside them (set inside the write transaction)
+        self.chain: tuple[int, ...] = ()
         self.name = info.name
         self.mapping: dict[str, str] = {}  # source column -> target (field or metric)
         self.ignored: list[str] = []
@@ -632,7 +635,7 @@ class _Writer:
     """Writes run rows; the dialect decides executemany (SQLite) or COPY (PostgreSQL)."""
 
     def __init__(self, conn, dialect: str, slots: list[int], campaign_id: int, import_id: int,
-                 numbered: bool = False):
+                 numbered: bool = False, chain: tuple[int, ...] = ()):
         self.conn, self.dialect = conn, dialect
         self.slots = slots
         # `numbered` (SQLite, a bulk load with the keys set aside): SQLite numbers the rows itself.
@@ -664,8 +667,7 @@ class _Writer:
                 "CREATE TEMP TABLE blockyard_stage (LIKE runs INCLUDING DEFAULTS) ON COMMIT DROP"
             )
             self.copy_sql = f"COPY blockyard_stage ({names}) FROM STDIN (FORMAT csv)"
-            self.move_sql = (f"INSERT INTO runs ({names}) SELECT {names} FROM blockyard_stage ORDER BY id "
-                             "ON CONFLICT DO NOTHING")
+            self.move_sql = _move_sql(conn, names, campaign_id, chain)
 
     def _marks(self, same: dict[str, str]) -> str:
         """One row's VALUES group: the import's two ids and the chunk's constants as literals."""
@@ -766,6 +768,26 @@ class _Writer:
         self.raw.executemany(self.sql_one, zip(*columns))
 
 
+def _move_sql(conn, names: str, campaign_id: int, chain: tuple[int, ...]) -> str:
+    """PostgreSQL: the statement that moves the staged rows into runs, past every run whose key
+    is taken. The unique run key holds the live runs (ON CONFLICT names it, WHERE and all, so
+    that the partial index is the one inferred); the campaign's retracted runs outside the chain
+    a reload replaces hold theirs through an anti-join. Most campaigns hold no such run (the
+    runs table is locked for the load, so that stays true while it writes): then the join is
+    left out, and each chunk's insert reads nothing but the key index."""
+    other = f" AND r.import_id NOT IN ({', '.join(str(int(i)) for i in chain)})" if chain else ""
+    retracted = f"r.retraction_id IS NOT NULL AND r.campaign_id = {int(campaign_id)}{other}"
+    held = conn.exec_driver_sql(f"SELECT 1 FROM runs r WHERE {retracted} LIMIT 1").first() is not None
+    where = ""
+    if held:
+        # (retracted runs are few: ix_runs_withdrawn finds them, and the join hashes them)
+        where = (" WHERE NOT EXISTS (SELECT 1 FROM runs r WHERE " + retracted + " AND r.solver_id = s.solver_id "
+                 "AND r.instance_id = s.instance_id AND r.seed = s.seed AND r.replicate = s.replicate)")
+    return (f"INSERT INTO runs ({names}) SELECT {names} FROM blockyard_stage s{where} ORDER BY id "
+            "ON CONFLICT (campaign_id, solver_id, instance_id, seed, replicate) WHERE retraction_id IS NULL "
+            "DO NOTHING")
+
+
 @dataclass
 class _Holder:
     import_id: int
@@ -785,15 +807,22 @@ def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.nd
     r = S.runs.c
     inst_ids = sorted({int(i) for i in instance[missing]})
     solver_ids = sorted({int(i) for i in solver[missing]})
-    for k in range(0, len(inst_ids), 500):
-        # the campaign as a literal: SQLite takes the load's own key index (`_campaign_key`) only
-        # for a condition that names its campaign as the index does
-        q = select(r.solver_id, r.instance_id, r.seed, r.replicate, r.import_id, r.source_line, r.retraction_id).where(
-            r.campaign_id == literal(int(campaign_id), literal_execute=True), r.instance_id.in_(inst_ids[k:k + 500]),
-            r.solver_id.in_(solver_ids))
-        for row in conn.execute(q):
-            holders[(row.solver_id, row.instance_id, row.seed, row.replicate)] = (
-                row.import_id, row.source_line, row.retraction_id)
+    # the campaign as a literal: SQLite takes the load's own key index (`_campaign_key`) only
+    # for a condition that names its campaign, and the live runs, as the index does
+    in_campaign = r.campaign_id == literal(int(campaign_id), literal_execute=True)
+    # the retracted runs that hold keys (not those of the chain a reload replaces) through
+    # ix_runs_withdrawn, then the live runs through the key index: a live holder, read last, is
+    # the one named when a key has both
+    holding = [r.retraction_id.is_not(None), in_campaign]
+    if fl.chain:
+        holding.append(r.import_id.not_in(fl.chain))
+    for who in (holding, [in_campaign, r.retraction_id.is_(None)]):
+        for k in range(0, len(inst_ids), 500):
+            q = select(r.solver_id, r.instance_id, r.seed, r.replicate, r.import_id, r.source_line,
+                       r.retraction_id).where(*who, r.instance_id.in_(inst_ids[k:k + 500]), r.solver_id.in_(solver_ids))
+            for row in conn.execute(q):
+                holders[(row.solver_id, row.instance_id, row.seed, row.replicate)] = (
+                    row.import_id, row.source_line, row.retraction_id)
     skipped = 0
     for j in missing.tolist():  # only the runs that did not go in
         found = holders.get((int(solver[j]), int(instance[j]), int(rows.seed[j]), int(rows.replicate[j])))
@@ -807,20 +836,15 @@ def _report_conflicts(conn, fl: _FileLoad, rows: Rows, raw: pa.Table, ids: np.nd
             rec = {k: ("" if v is None else v) for k, v in raw.slice(int(rows.src[j]), 1).to_pylist()[0].items()}
             rec.update(line=line, reason=msg)
             fl.rejects.append(rec)
-        elif fl.again and other is not None and other.retraction_id is not None:
-            # A retracted run keeps its key in its campaign (PostgreSQL's unique index holds it,
-            # and SQLite's loads keep the same rule): a reload cannot take its place there, and a
-            # reload that skipped its runs would replace the import with nothing
-            raise InputError(
-                f"{fl.where(line)}: this run ({rows.describe(j)}) is held in campaign {fl.campaign} by a retracted "
-                f"run of import {other.import_id}; a campaign holds a run once, retracted or not, so load the file "
-                f"again into another campaign (e.g. --again --campaign {_shell_word(fl.campaign + '-reload')})")
         else:
             skipped += 1
             if skipped <= 3:
+                whose = f"import {other.import_id if other else '?'}"
+                if other is not None and other.retraction_id is not None:
+                    whose = f"a retracted run of {whose}"
                 fl.warnings.append(
                     f"{fl.where(line)}: this run ({rows.describe(j)}) is already in this campaign "
-                    f"(import {other.import_id if other else '?'}); skipped, the stored values are kept")
+                    f"({whose}); skipped, the stored values are kept")
     return int(kept.sum()), skipped
 
 
@@ -851,6 +875,17 @@ def _campaign_id(conn, name: str) -> int:
     if found is not None:
         return found
     return conn.execute(insert(S.campaigns).values(name=name, created_at=int(time.time()))).inserted_primary_key[0]
+
+
+def _replaced_chain(conn, replaces: int | None) -> tuple[int, ...]:
+    """The import a reload replaces and those that one replaced in turn (imports.replaces_import_id):
+    all wholly retracted (`--again` loads no file with live runs), and none of their retracted
+    runs holds a key against the reload."""
+    chain: list[int] = []
+    while replaces is not None and replaces not in chain:
+        chain.append(int(replaces))
+        replaces = conn.execute(select(S.imports.c.replaces_import_id).where(S.imports.c.id == replaces)).scalar()
+    return tuple(chain)
 
 
 def _checked(fl: _FileLoad, chunks):
@@ -895,14 +930,17 @@ LOAD_KEY = "blockyard_load_key"
 
 
 def _campaign_key(conn, campaign_id: int, create: bool) -> None:
-    """SQLite, an exact load: a unique index on the run keys of this one campaign, made when the
-    load starts and dropped before it commits (a partial index: the campaign's runs only, so its
-    cost follows the campaign, not the warehouse). INSERT OR IGNORE then leaves out each run the
-    campaign holds already, and `_report_conflicts` names them. Made and dropped inside the
-    load's transaction: a load that fails or dies leaves no trace of it."""
+    """SQLite, an exact load: a unique index on the live run keys of this one campaign, made when
+    the load starts and dropped before it commits (a partial index: the campaign's live runs
+    only, so its cost follows the campaign, not the warehouse). INSERT OR IGNORE then leaves out
+    each run the campaign holds already, and `_report_conflicts` names them. Live runs only: a
+    reload into its own campaign shares keys with its retracted runs (`load --again`), so the
+    retracted runs could not be under a unique index; the load keeps their keys with
+    `_RetractedKeys` instead. Made and dropped inside the load's transaction: a load that fails
+    or dies leaves no trace of it."""
     if create:
         conn.exec_driver_sql(f'CREATE UNIQUE INDEX "{LOAD_KEY}" ON runs (campaign_id, solver_id, instance_id, seed, '
-                             f'replicate) WHERE campaign_id = {int(campaign_id)}')
+                             f'replicate) WHERE campaign_id = {int(campaign_id)} AND retraction_id IS NULL')
     else:
         conn.exec_driver_sql(f'DROP INDEX "{LOAD_KEY}"')
 
@@ -910,14 +948,17 @@ def _campaign_key(conn, campaign_id: int, create: bool) -> None:
 class _StoredCells:
     """The cells (solver, instance) of a campaign that hold runs already, live or retracted: a
     run of the file in one of them may be stored already, and the load then starts over exactly.
-    A campaign new to the warehouse holds none, and costs one query."""
+    The retracted runs of `chain` (the imports a reload replaces, all wholly retracted) hold no
+    keys for the load and are left out. A campaign new to the warehouse holds none, and costs
+    one query."""
 
-    def __init__(self, conn, campaign_id: int):
+    def __init__(self, conn, campaign_id: int, chain: tuple[int, ...] = ()):
         C, R = S.cell_stats, S.runs
         codes: list[np.ndarray] = []
         live = conn.execute(select(C.c.solver_id, C.c.instance_id).where(C.c.campaign_id == campaign_id).distinct()).all()
         gone = conn.execute(select(R.c.solver_id, R.c.instance_id)
-                            .where(R.c.retraction_id.is_not(None), R.c.campaign_id == campaign_id).distinct()).all()
+                            .where(R.c.retraction_id.is_not(None), R.c.campaign_id == campaign_id,
+                                   *([R.c.import_id.not_in(chain)] if chain else [])).distinct()).all()
         for rows in (live, gone):
             if rows:
                 a = np.asarray(rows, dtype=np.int64)
@@ -954,11 +995,17 @@ class _RunHashes:
         z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
         return z ^ (z >> np.uint64(31))
 
-    def add(self, solver: np.ndarray, instance: np.ndarray, seed: np.ndarray, replicate: np.ndarray) -> None:
+    @classmethod
+    def of(cls, solver: np.ndarray, instance: np.ndarray, seed: np.ndarray, replicate: np.ndarray) -> np.ndarray:
+        """Each run's key hash."""
         with np.errstate(over="ignore"):
-            h = self._mix(solver.astype(np.uint64))
+            h = cls._mix(np.asarray(solver).astype(np.uint64))
             for part in (instance, seed, replicate):
-                h = self._mix(h ^ np.asarray(part).astype(np.int64).view(np.uint64))
+                h = cls._mix(h ^ np.asarray(part).astype(np.int64).view(np.uint64))
+        return h
+
+    def add(self, solver: np.ndarray, instance: np.ndarray, seed: np.ndarray, replicate: np.ndarray) -> None:
+        h = self.of(solver, instance, seed, replicate)
         if self.n + len(h) > len(self.h):
             self.h = np.resize(self.h, max(2 * len(self.h), self.n + len(h)))
         self.h[self.n:self.n + len(h)] = h
@@ -968,6 +1015,50 @@ class _RunHashes:
         h = self.h[:self.n]
         h.sort()
         return bool((h[1:] == h[:-1]).any())
+
+
+class _RetractedKeys:
+    """SQLite, an exact load: the keys the campaign's retracted runs hold (the runs of `chain`,
+    the imports a reload replaces, hold none). The load's key index covers live runs only
+    (`_campaign_key`), so a run of the file under one of these keys is kept out before it is
+    written, and reported skipped as one the index refused. Retracted runs are few
+    (ix_runs_withdrawn finds them); a campaign with none costs one query. The keys are kept as
+    numbers sorted by their hash (40 bytes a run), not as Python tuples: a reload's campaign may
+    hold a large import's retracted runs."""
+
+    def __init__(self, conn, campaign_id: int, chain: tuple[int, ...] = ()):
+        R = S.runs
+        found = conn.execute(select(R.c.solver_id, R.c.instance_id, R.c.seed, R.c.replicate).where(
+            R.c.retraction_id.is_not(None), R.c.campaign_id == campaign_id,
+            *([R.c.import_id.not_in(chain)] if chain else []))).all()
+        self.hashes = self.keys = None
+        if found:
+            keys = np.asarray(found, dtype=np.int64)
+            h = _RunHashes.of(keys[:, 0], keys[:, 1], keys[:, 2], keys[:, 3])
+            order = np.argsort(h, kind="stable")
+            self.hashes, self.keys = h[order], keys[order]
+
+    def free(self, solver: np.ndarray, instance: np.ndarray, seed: np.ndarray,
+             replicate: np.ndarray) -> np.ndarray | None:
+        """Which runs no retracted run holds the key of; None when that is all of them."""
+        if self.hashes is None:
+            return None
+        h = _RunHashes.of(solver, instance, seed, replicate)
+        lo = np.searchsorted(self.hashes, h, side="left")
+        hi = np.searchsorted(self.hashes, h, side="right")
+        maybe = np.flatnonzero(hi > lo)
+        if not len(maybe):
+            return None
+        # a hash met is checked on the key itself (two keys may share a hash, once in 10^19)
+        mine = np.stack([np.asarray(a, dtype=np.int64)[maybe] for a in (solver, instance, seed, replicate)], axis=1)
+        taken = (self.keys[lo[maybe]] == mine).all(axis=1)
+        for j in np.flatnonzero(~taken & (hi[maybe] - lo[maybe] > 1)).tolist():
+            taken[j] = bool((self.keys[lo[maybe[j]]:hi[maybe[j]]] == mine[j]).all(axis=1).any())
+        if not taken.any():
+            return None
+        free = np.ones(len(h), dtype=bool)
+        free[maybe[taken]] = False
+        return free
 
 
 class _Prefetch:
@@ -1321,14 +1412,30 @@ def _duplicate_message(earlier: list[_Earlier]) -> str:
 
 def _still_live_message(wh: Warehouse, shown: str, e: _Earlier) -> str:
     with wh.engine.connect() as conn:
-        sl, exact = _slice_of_import(conn, e)
+        how = _retract_command(conn, e)
+    return (f"{shown}: --again loads a file whose earlier imports are wholly retracted, but import {e.id} "
+            f"(campaign {e.campaign}, loaded {e.when} UTC) is {e.state}, with {e.live} live "
+            f"{'run' if e.live == 1 else 'runs'}; retract them first: {how}")
+
+
+def retract_command(conn, import_id: int) -> str:
+    """The retract command that takes an import's live runs, as a one-line message gives it
+    (also `ledger.undo_retraction`, naming the import that holds the keys it would restore)."""
+    I = S.imports
+    r = conn.execute(select(I.c.id, I.c.campaign_id, S.campaigns.c.name, I.c.loaded_at, I.c.rows_loaded,
+                            I.c.first_run_id, I.c.last_run_id, I.c.first_finished, I.c.last_finished)
+                     .join(S.campaigns, S.campaigns.c.id == I.c.campaign_id).where(I.c.id == import_id)).one()
+    return _retract_command(conn, _Earlier(r.id, r.name, r.campaign_id, r.loaded_at, r.rows_loaded or 0, 0,
+                                           r.first_run_id, r.last_run_id, r.first_finished, r.last_finished))
+
+
+def _retract_command(conn, e: _Earlier) -> str:
+    sl, exact = _slice_of_import(conn, e)
     how = f"blockyard retract --slice {_shell_word(sl)} --reason \"...\""
     if not exact:
         how += (f" (that slice also takes the live runs of campaign {e.campaign}'s other imports: narrow it "
                 "with solver= or family= terms)")
-    return (f"{shown}: --again loads a file whose earlier imports are wholly retracted, but import {e.id} "
-            f"(campaign {e.campaign}, loaded {e.when} UTC) is {e.state}, with {e.live} live "
-            f"{'run' if e.live == 1 else 'runs'}; retract them first: {how}")
+    return how
 
 
 def _slice_of_import(conn, e: _Earlier) -> tuple[str, bool]:
@@ -1408,6 +1515,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
             if wh.dialect == "postgresql":
                 conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
             campaign_id = _campaign_id(conn, campaign)
+            fl.chain = _replaced_chain(conn, fl.replaces)
             import_id = conn.execute(insert(S.imports).values(
                 campaign_id=campaign_id, file_name=p.name, sha256=info.sha256, layout=layout.text,
                 replaces_import_id=fl.replaces,
@@ -1419,14 +1527,17 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
             # runs are new: none of its cells already holds runs of the campaign (`_StoredCells`),
             # and no run appears twice in the file (`_RunHashes`). Then SQLite numbers the rows
             # itself, as they come. If either proof fails, the load starts over `exact`: a unique
-            # index on this campaign's run keys for the length of the transaction finds each
-            # repeated run, to be named or skipped one by one.
+            # index on this campaign's live run keys for the length of the transaction finds each
+            # repeated run, to be named or skipped one by one, and the keys of its retracted runs
+            # (`_RetractedKeys`) keep those runs out before they are written. The retracted runs
+            # of the import chain a reload replaces hold no keys in either proof.
             quick = wh.is_sqlite and allow_bulk and not dry_run and total <= QUICK_MAX_RUNS
             exact_key = wh.is_sqlite and not quick
             if exact_key:
                 _campaign_key(conn, campaign_id, create=True)
-            stored = _StoredCells(conn, campaign_id) if quick else None
+            stored = _StoredCells(conn, campaign_id, fl.chain) if quick else None
             hashes = _RunHashes(total) if quick else None
+            held = _RetractedKeys(conn, campaign_id, fl.chain) if wh.is_sqlite and not quick else None
             writer = None
             read = loaded = skipped = 0
             first_id = next_id
@@ -1445,7 +1556,7 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                     report.metrics[metric] = sense
                 slots = sorted(metric_slots.values())
                 if writer is None or writer.slots != slots:
-                    writer = _Writer(conn, wh.dialect, slots, campaign_id, import_id, numbered=quick)
+                    writer = _Writer(conn, wh.dialect, slots, campaign_id, import_id, numbered=quick, chain=fl.chain)
                 m = len(rows)
                 codes, keys = rows.keys["solver"]
                 solver_of = np.asarray(dims.solver_ids(keys), dtype=np.int64)
@@ -1468,7 +1579,13 @@ def _write(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layo
                     lo, hi = int(times.min()), int(times.max())
                     first_fin = lo if first_fin is None else min(first_fin, lo)
                     last_fin = hi if last_fin is None else max(last_fin, hi)
-                writer.write(ids, rows, solver, instance, host, has_host, {s: k for k, s in metric_slots.items()})
+                metric_of_slot = {s: k for k, s in metric_slots.items()}
+                free = None if held is None else held.free(solver, instance, rows.seed, rows.replicate)
+                if free is None:
+                    writer.write(ids, rows, solver, instance, host, has_host, metric_of_slot)
+                elif free.any():  # the rows a retracted run holds the key of stay out (counted below)
+                    writer.write(ids[free], rows.take(free), solver[free], instance[free], host[free], has_host[free],
+                                 metric_of_slot)
                 summing.add_reduced(rows.cells, base=int(ids[0]), key_maps=(solver_of, instance_of, host_of),
                                     slot_of=metric_slots)
                 if quick:

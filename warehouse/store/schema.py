@@ -167,8 +167,11 @@ runs = Table(
     # a load there proves its runs new from the cell summaries and a hash of its own keys instead,
     # falling back to a unique index on the one campaign's keys for the length of the load
     # (ingest/loader.py: _StoredCells, _RunHashes, _campaign_key).
-    Index("ux_runs_key", "campaign_id", "solver_id", "instance_id", "seed", "replicate", unique=True).ddl_if(
-        dialect="postgresql"),
+    # Live runs only (revision 0008): a file reloaded into its own campaign (`load --again`)
+    # goes in beside its retracted runs, under the same keys; the loads keep other retracted
+    # runs' keys themselves.
+    Index("ux_runs_key", "campaign_id", "solver_id", "instance_id", "seed", "replicate", unique=True,
+          postgresql_where=text("retraction_id IS NULL")).ddl_if(dialect="postgresql"),
     # no index on finished_at: the imports' time ranges (revision 0004) narrow a date slice to id ranges
     # withdrawn runs are few: a partial index finds them without costing the loads anything
     Index("ix_runs_withdrawn", "retraction_id", sqlite_where=text("retraction_id IS NOT NULL"),
