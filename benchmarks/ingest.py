@@ -20,6 +20,14 @@ beyond that floor (start-up, reading, checking, cell summaries) has to fit in wh
 resident size (ru_maxrss from wait4), for a file of N runs and one of 3N runs: chunked reading
 keeps it about flat. It prints numbers and never fails on them.
 
+    python benchmarks/ingest.py --against /tmp/other-tree --repeat 7 --no-memory
+
+A/B: each round loads the file with this tree's code and then with the code of another copy of
+the tree (a commit before, or a copy with one device taken out), both as `python -m warehouse`
+with that tree first on PYTHONPATH, beside one reference run; it prints each round's ratios and
+their medians (a virtual machine's speed drifts within minutes: only ratios within a round mean
+anything).
+
 This process stays small on purpose (standard library only; the files are written by a child):
 on Linux a child's ru_maxrss starts from the resident size of the process that started it.
 """
@@ -181,10 +189,14 @@ def write_in_child(path: Path, rows: int) -> float:
     return time.perf_counter() - t0
 
 
-def run_child(argv: list[str]) -> tuple[float, float, int]:
-    """Run a command; return (wall seconds, peak resident MiB of that child, exit status)."""
+def run_child(argv: list[str], tree: Path | None = None) -> tuple[float, float, int, float]:
+    """Run a command; return (wall seconds, peak resident MiB of that child, exit status, processor
+    seconds of that child). `tree`: the copy of the code it runs (first on PYTHONPATH)."""
+    env = None
+    if tree is not None:
+        env = {**os.environ, "PYTHONPATH": str(tree), "BLOCKYARD_RESIDENT": "off"}
     t0 = time.perf_counter()
-    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env)
     _, status, usage = os.wait4(proc.pid, 0)
     wall = time.perf_counter() - t0
     proc.returncode = os.waitstatus_to_exitcode(status)
@@ -192,24 +204,46 @@ def run_child(argv: list[str]) -> tuple[float, float, int]:
     proc.stderr.close()
     if proc.returncode:
         print(f"  (child {' '.join(argv[:3])}... exited {proc.returncode}: {err.splitlines()[-1] if err else ''})")
-    return wall, usage.ru_maxrss / 1024.0, proc.returncode  # ru_maxrss is in KiB on Linux
+    # ru_maxrss is in KiB on Linux
+    return wall, usage.ru_maxrss / 1024.0, proc.returncode, usage.ru_utime + usage.ru_stime
 
 
-def blockyard_cmd() -> list[str]:
+def blockyard_cmd(tree: Path | None = None) -> list[str]:
     exe = Path(sys.executable).with_name("blockyard")
-    return [str(exe)] if exe.exists() else [sys.executable, "-m", "warehouse"]
+    return [str(exe)] if exe.exists() and tree is None else [sys.executable, "-m", "warehouse"]
 
 
-def time_load(csv_path: Path, work: Path, tag: str) -> tuple[float, float]:
+def time_load(csv_path: Path, work: Path, tag: str, tree: Path | None = None) -> tuple[float, float, float]:
     db = work / f"load-{tag}.db"
     layout = work / "bench.toml"
     layout.write_text(LAYOUT, encoding="utf-8")
     for f in work.glob(f"load-{tag}.db*"):
         f.unlink()
-    run_child(blockyard_cmd() + ["init", "-w", str(db)])
-    wall, peak, _ = run_child(blockyard_cmd() + ["load", str(csv_path), "--campaign", "bench",
-                                                  "--layout", str(layout), "-w", str(db)])
-    return wall, peak
+    run_child(blockyard_cmd(tree) + ["init", "-w", str(db)], tree)
+    wall, peak, _, cpu = run_child(blockyard_cmd(tree) + ["load", str(csv_path), "--campaign", "bench",
+                                                         "--layout", str(layout), "-w", str(db)], tree)
+    return wall, peak, cpu
+
+
+def a_b(src: Path, work: Path, other: Path, rounds: int) -> None:
+    """Interleaved rounds: reference, this tree's load, the other tree's load (the two loads'
+    order alternating from round to round). Beside wall time, each load's processor time (user
+    and system, both threads): on a shared machine it moves less than wall time does."""
+    import statistics
+
+    here = Path(__file__).resolve().parents[1]
+    seen = []
+    for k in range(max(1, rounds)):
+        ref, _ = time_reference(src, work, "n")
+        order = [("a", here), ("b", other)] if k % 2 == 0 else [("b", other), ("a", here)]
+        took = {tag: time_load(src, work, tag, tree) for tag, tree in order}
+        (wa, _, ca), (wb, _, cb) = took["a"], took["b"]
+        seen.append((wa / ref, wb / ref, wb / wa, cb / ca))
+        print(f"round {k + 1:<3} this {wa:5.2f} s  other {wb:5.2f} s  reference {ref:5.2f} s   this/ref {wa / ref:.2f}  "
+              f"other/ref {wb / ref:.2f}  other/this {wb / wa:.3f}  processor {ca:5.2f} / {cb:5.2f} s: {cb / ca:.3f}")
+    med = [statistics.median(r[i] for r in seen) for i in range(4)]
+    print(f"median     this/ref {med[0]:.2f}  other/ref {med[1]:.2f}  other/this {med[2]:.3f}  "
+          f"processor other/this {med[3]:.3f}  (other: {other})")
 
 
 def time_reference(csv_path: Path, work: Path, tag: str) -> tuple[float, float]:
@@ -218,7 +252,7 @@ def time_reference(csv_path: Path, work: Path, tag: str) -> tuple[float, float]:
         f.unlink()
     script = work / "reference.py"
     script.write_text(REFERENCE, encoding="utf-8")
-    wall, peak, _ = run_child([sys.executable, str(script), str(csv_path), str(db)])
+    wall, peak, _, _ = run_child([sys.executable, str(script), str(csv_path), str(db)])
     return wall, peak
 
 
@@ -229,6 +263,7 @@ def main() -> None:
     ap.add_argument("--repeat", type=int, default=1, help="time each side this many times, keep the best")
     ap.add_argument("--no-memory", action="store_true", help="skip the 3N-run memory check")
     ap.add_argument("--dir", help="work folder (default: a temporary one, removed afterwards)")
+    ap.add_argument("--against", metavar="TREE", help="A/B: another copy of the tree, loaded in the same rounds")
     ap.add_argument("--write", metavar="FILE", help=argparse.SUPPRESS)  # internal: the child that writes a file
     a = ap.parse_args()
     rows = 200_000 if a.quick else a.rows
@@ -247,12 +282,15 @@ def main() -> None:
         took = write_in_child(src, rows)
         mib = src.stat().st_size / 2**20
         print(f"file       {rows:,} runs, {mib:.0f} MiB ({took:.1f} s to write)")
+        if a.against:
+            a_b(src, work, Path(a.against).resolve(), a.repeat)
+            return
         best_load = best_ref = best_floor = float("inf")
         peak_load = peak_ref = 0.0
         for _ in range(max(1, a.repeat)):
             wall, peak = time_reference(src, work, "n")
             best_ref, peak_ref = min(best_ref, wall), max(peak_ref, peak)
-            wall, peak = time_load(src, work, "n")
+            wall, peak, _ = time_load(src, work, "n")
             best_load, peak_load = min(best_load, wall), max(peak_load, peak)
             best_floor = min(best_floor, time_floor(src, work))
         print(f"load       {best_load:6.2f} s   {rows / best_load:10,.0f} runs/s   peak {peak_load:5.0f} MiB")
@@ -263,7 +301,7 @@ def main() -> None:
         if not a.no_memory:
             big = work / f"runs-{3 * rows}.csv"
             write_in_child(big, 3 * rows)
-            wall3, peak3 = time_load(big, work, "3n")
+            wall3, peak3, _ = time_load(big, work, "3n")
             print(f"memory     peak {peak_load:.0f} MiB at {rows:,} runs, {peak3:.0f} MiB at {3 * rows:,} runs "
                   f"(x{peak3 / peak_load:.2f} for 3x the rows; load took {wall3:.1f} s, {3 * rows / wall3:,.0f} runs/s)")
             big.unlink()

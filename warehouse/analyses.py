@@ -32,6 +32,8 @@ class BlocktestResult:
     warnings: list[str] = field(default_factory=list)
     analysis_id: int | None = None
     options: dict = field(default_factory=dict)
+    censored: object = None  # CensoredResult, with --cutoff
+    failures: object = None  # FailuresResult: failure rates and the test of solved / not solved
 
     kind = "blocktest"
 
@@ -56,6 +58,10 @@ class BlocktestResult:
         d["treatment_means"] = means
         if self.pairs:
             d["pairs"] = [p.to_dict() for p in self.pairs]
+        if self.censored is not None:
+            d["censored"] = self.censored.to_dict()
+        if self.failures is not None:
+            d["failures"] = self.failures.to_dict()
         d["analysis_id"] = self.analysis_id
         return d
 
@@ -80,22 +86,27 @@ class BlocktestResult:
 
 
 def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, transform: str = "none",
-                  design: str = "auto", pairs: bool = False, quick: bool = True) -> BlocktestResult:
+                  design: str = "auto", pairs: bool | str = False, quick: bool = True,
+                  cutoff: float | None = None) -> BlocktestResult:
     """The blocked analysis of `metric` over slice `sl`. With `quick`, the collapse may run in SQL
     and leave out the per-instance table (the generalized design needs it; re-checks of analyses
-    kept by Blockyard 0.1 need the pandas collapse for their fingerprint)."""
+    kept by Blockyard 0.1 need the pandas collapse for their fingerprint). With `cutoff`, the
+    runs' times are also read as censored at it (see `censored_runtimes`)."""
     from .analyze.anova import rcbd_anova
     from .analyze.designs import generalized_anova, incomplete_anova
     from .analyze.tidy import refuse_overflow
-    from .collapse.cautions import design_cautions, host_caution, pooling_cautions, pseudo_replication
+    from .collapse.cautions import design_cautions, host_caution, imputed_failures, pooling_cautions, pseudo_replication
 
     if transform not in ("none", "log", "boxcox", "rank"):
         raise InputError(f"--transform {transform}: choose none, log, boxcox or rank")
     if design not in ("auto", "complete", "incomplete", "generalized"):
         raise InputError(f"--design {design}: choose auto, complete, incomplete or generalized")
+    methods = pair_methods(pairs)
     if design == "incomplete" and settings.holes != "keep":
         settings = Collapse(settings.replicates, settings.instances, settings.failures, "keep")
-    c = collapse(conn, sl, metric, settings, cells=design == "generalized" or not quick)
+    cutoff = _cutoff(cutoff)
+    # not quick: a recheck, which reads the runs themselves rather than the summaries
+    c = collapse(conn, sl, metric, settings, cells=design == "generalized" or not quick, from_runs=not quick)
     if len(c.treatments) < 2:
         raise DesignError(f"the slice holds one treatment ({', '.join(c.treatments)}); a blocked comparison needs two or more")
     if c.obs.empty:
@@ -123,22 +134,56 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
             stats = generalized_anova(cells)
     warnings += list(getattr(stats, "warnings", []))
     result_pairs = []
-    if pairs:
+    if methods:
         if chosen != "complete":
             raise InputError("--pairs needs a complete design (every treatment in every block)")
-        from .analyze.pairs import conover_friedman, tukey_hsd_blocked
+        from .analyze.pairs import conover_friedman, nemenyi, ratios_from_log, tukey_hsd_blocked
 
-        # Tukey works on the scale the ANOVA used; the within-block ranks of Conover do not change
+        # Tukey works on the scale the ANOVA used; the within-block ranks of the rank methods do not change
         scaled = obs if transform == "none" else stats.residuals[["treatment", "block", "value"]]
+        made = {"tukey": lambda: tukey_hsd_blocked(scaled), "conover": lambda: conover_friedman(obs),
+                "nemenyi": lambda: nemenyi(obs)}
         with _numeric_warnings(warnings):
-            result_pairs = [tukey_hsd_blocked(scaled), conover_friedman(obs)]
-        if transform != "none":
+            result_pairs = [made[m]() for m in methods]
+        # the one caution of the pairs the ANOVA has not given already: statistics it cannot compute
+        warnings += [w for p in result_pairs for w in p.warnings if "cannot be computed" in w]
+        if transform == "log" and "tukey" in methods:
+            ratios_from_log(result_pairs[methods.index("tukey")], stats.transform.get("shift") or 0.0)
+            warnings.append("Tukey differences and intervals are on the log scale, like the ANOVA; their ratios "
+                            "(geometric means, first over second) read them on the original scale")
+        elif transform != "none" and "tukey" in methods:
             warnings.append(f"Tukey differences and intervals are on the {transform} scale, like the ANOVA")
         k = len(c.treatments)
         warnings.append(f"{k * (k - 1) // 2} pairwise comparisons: p values are adjusted for the family; "
                         "unadjusted p would overstate the evidence")
-    return BlocktestResult(c, chosen, stats, result_pairs, _dedupe(warnings),
-                           options={"transform": transform, "design": design, "pairs": pairs})
+    failures = failure_part(conn, sl, c, quick=quick)
+    warnings += imputed_failures(c) + failures.warnings
+    options = {"transform": transform, "design": design, "pairs": ",".join(methods) if methods else False}
+    censored = None
+    if cutoff is not None:
+        options["cutoff"] = cutoff
+        censored = censored_runtimes(conn, sl, c.metric, cutoff, holes=settings.holes)
+    return BlocktestResult(c, chosen, stats, result_pairs, _dedupe(warnings), options=options, censored=censored,
+                           failures=failures)
+
+
+PAIR_METHODS = ("tukey", "conover", "nemenyi")
+PAIRS_DEFAULT = ("tukey", "conover")  # --pairs alone, and analyses kept before it took a word
+
+
+def pair_methods(pairs) -> list[str]:
+    """The all-pairs methods asked for: none (False, None, ""), the default pair (True, or
+    --pairs alone), or a comma-separated list of tukey, conover and nemenyi."""
+    if pairs is None or pairs is False or pairs == "":
+        return []
+    if pairs is True:
+        return list(PAIRS_DEFAULT)
+    words = [w.strip().lower() for w in str(pairs).split(",") if w.strip()]
+    bad = [w for w in words if w not in PAIR_METHODS]
+    if bad or not words:
+        raise InputError(f"--pairs {pairs}: choose tukey, conover or nemenyi, or several separated by commas "
+                         "(--pairs alone gives tukey,conover)")
+    return list(dict.fromkeys(words))
 
 
 class _numeric_warnings:
@@ -172,6 +217,92 @@ def _dedupe(items: list[str]) -> list[str]:
     return out
 
 
+# --- censored runtimes (--cutoff) --------------------------------------------------------------
+
+def _cutoff(cutoff) -> float | None:
+    """The --cutoff value, checked before any work (None: no censored part)."""
+    if cutoff is None:
+        return None
+    import math
+
+    try:
+        value = float(cutoff)
+    except (TypeError, ValueError):
+        value = math.nan
+    if not math.isfinite(value) or value <= 0:
+        raise InputError(f"--cutoff {cutoff}: give the time limit in the metric's units as a positive number, e.g. 600")
+    return value
+
+
+def censored_runtimes(conn, sl: Slice, metric: str | None, cutoff: float, reference: str | None = None,
+                      holes: str = "drop", confidence: float = 0.95):
+    """The slice's runs as right-censored times: a successful run below `cutoff` solved at its
+    time, every other run (failed, timed out, at or past the cutoff) unsolved at the cutoff.
+    Each run counts, not the collapsed means: failing is an outcome here, not a gap. The runs are
+    those on the instances every treatment of their block ran (`collapse.runs.common_runs`);
+    `reference` (default: the first treatment in version order) is what the hazard ratios are
+    against. Returns the analyze layer's CensoredResult, with the notes on what was left out."""
+    from .analyze.censored import censor_at, compare_censored
+    from .collapse.runs import common_runs, run_times
+
+    cutoff = _cutoff(cutoff)
+    rt = run_times(conn, sl, metric)
+    if rt.sense != "min":
+        raise InputError(f"--cutoff {cutoff:g}: {rt.metric} is a metric where higher is better; a cutoff applies "
+                         "to a time (lower is better): give --metric with a runtime")
+    reference = reference or rt.treatments[0]
+    if reference not in rt.treatments:
+        raise DesignError(f"{reference} has no runs in the slice; treatments there: {', '.join(rt.treatments)}")
+    if len(rt.treatments) < 2:
+        raise DesignError(f"the slice holds one treatment ({reference}); a comparison of runtimes needs two or more")
+    runs, notes = common_runs(rt, rt.treatments, holes)
+    ok = (runs["status"] == "ok").to_numpy()
+    unknown = ok & runs["value"].isna().to_numpy()
+    if unknown.any():  # a success without its time: when it solved is not known, so it is not guessed
+        notes.append(f"{int(unknown.sum())} successful runs without a {rt.metric} value left out")
+        runs, ok = runs[~unknown].reset_index(drop=True), ok[~unknown]
+    if runs.empty or runs["treatment"].nunique() < 2:
+        raise DesignError("--cutoff: no instance has runs of two or more treatments in one block; "
+                          "narrow the slice to instances the treatments share")
+    time, solved = censor_at(runs["value"], ok, cutoff)
+    order = {t: i for i, t in enumerate(rt.treatments)}
+    frame = pd.DataFrame({"treatment": runs["treatment"], "block": runs["block"], "instance": runs["instance_id"],
+                          "time": time, "solved": solved, "failed": ~ok})
+    frame = frame.iloc[frame["treatment"].map(order).argsort(kind="stable")].reset_index(drop=True)
+    if reference not in set(frame["treatment"]):
+        raise DesignError(f"{reference} has no runs on the instances the treatments share; narrow the slice")
+    res = compare_censored(frame, reference, cutoff, confidence)
+    short = runs[(runs["status"] == "timeout") & (runs["value"] < cutoff)]
+    if len(short):
+        res.warnings.insert(0, f"{len(short)} timed-out runs stopped before the cutoff {cutoff:g} (the longest at "
+                               f"{short['value'].max():g}): they count as unsolved up to {cutoff:g}, a time they never "
+                               "ran to; set --cutoff at or below the time limit the runs had")
+    res.notes, res.metric, res.unit = notes, rt.metric, rt.unit
+    return res
+
+
+# --- failures ----------------------------------------------------------------------------------
+
+def failure_part(conn, sl: Slice, c: Collapsed, baseline: str | None = None, quick: bool = True):
+    """Failure rates per treatment and the test of whether solving depends on the treatment, on the
+    instances every treatment of the slice ran (a treatment whose runs all failed included: the
+    collapse leaves it out of the values, not out of this). One small query over the cell
+    summaries (the runs themselves when not `quick`); the collapse's own per-instance table holds
+    only the instances with values, so it cannot serve here. Returns the FailuresResult, its
+    cautions already worded for the analysis."""
+    from .analyze.failures import compare_solved
+    from .collapse.observations import cell_counts
+
+    res = compare_solved(cell_counts(conn, sl, c.metric, from_runs=not quick), baseline)
+    if c.settings.get("failures") == "drop" and res.test.p is not None and res.test.p < ALPHA:
+        # the values above are those of successful runs: the treatment that fails more is judged
+        # on its easier runs
+        res.warnings = [w + ("; the values above come from successful runs only (--failures worst or penalize:F "
+                             "count the failures in)" if w.startswith("failure rates differ") else "")
+                        for w in res.warnings]
+    return res
+
+
 # --- versus ------------------------------------------------------------------------------------
 
 @dataclass
@@ -185,6 +316,8 @@ class VersusResult:
     analysis_id: int | None = None
     options: dict = field(default_factory=dict)
     drift: list[dict] = field(default_factory=list)  # a treatment against itself across campaigns
+    censored: object = None  # CensoredResult, with --cutoff
+    failures: object = None  # FailuresResult, with follow-ups against the baseline
 
     kind = "versus"
 
@@ -203,12 +336,17 @@ class VersusResult:
             row = dict(r)
             row["verdict"] = self.verdict(r) or "no clear difference"
             rows.append(row)
-        return {"baseline": self.baseline, "slice": c.slice_text, "metric": c.metric, "sense": c.sense,
-                "blocks": len(c.blocks), "dropped_blocks": c.dropped_blocks, "method": s.method,
-                "adjust": s.adjust, "alternative": s.alternative, "confidence": s.confidence,
-                "residual_ms": s.residual_ms, "residual_df": s.residual_df, "critical_value": s.critical_value,
-                "comparisons": rows, "collapse": _collapse_doc(c), "warnings": self.warnings, "drift": self.drift,
-                "analysis_id": self.analysis_id}
+        d = {"baseline": self.baseline, "slice": c.slice_text, "metric": c.metric, "sense": c.sense,
+             "blocks": len(c.blocks), "dropped_blocks": c.dropped_blocks, "method": s.method,
+             "adjust": s.adjust, "alternative": s.alternative, "confidence": s.confidence,
+             "residual_ms": s.residual_ms, "residual_df": s.residual_df, "critical_value": s.critical_value,
+             "comparisons": rows, "collapse": _collapse_doc(c), "warnings": self.warnings, "drift": self.drift,
+             "analysis_id": self.analysis_id}
+        if self.censored is not None:
+            d["censored"] = self.censored.to_dict()
+        if self.failures is not None:
+            d["failures"] = self.failures.to_dict()
+        return d
 
     def verdicts(self) -> dict:
         return {r["treatment"]: {"significant": bool(self.verdict(r)), "sign": (r["diff"] > 0) - (r["diff"] < 0)}
@@ -244,10 +382,10 @@ def _margin(margin: str | None):
 
 def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline: str, method: str = "dunnett",
                adjust: str = "holm", better: str | None = None, margin: str | None = None,
-               confidence: float = 0.95, quick: bool = True) -> VersusResult:
+               confidence: float = 0.95, quick: bool = True, cutoff: float | None = None) -> VersusResult:
     from .analyze.baseline import dunnett_vs_baseline, paired_vs_baseline
     from .analyze.tidy import refuse_overflow
-    from .collapse.cautions import design_cautions, host_caution, pooling_cautions, pseudo_replication
+    from .collapse.cautions import design_cautions, host_caution, imputed_failures, pooling_cautions, pseudo_replication
 
     if method not in ("dunnett", "paired-t", "wilcoxon"):
         raise InputError(f"--method {method}: choose dunnett, paired-t or wilcoxon")
@@ -261,7 +399,8 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
         raise InputError(f"baseline '{baseline}': name one treatment as NAME@VERSION, e.g. stacker@1.4")
     if settings.holes == "keep":
         raise InputError("versus compares on common blocks only; leave --holes at drop")
-    c = collapse(conn, sl, metric, settings, cells=not quick)
+    cutoff = _cutoff(cutoff)
+    c = collapse(conn, sl, metric, settings, cells=not quick, from_runs=not quick)
     if baseline not in c.treatments:
         from difflib import get_close_matches
 
@@ -296,10 +435,16 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
         if other:
             warnings.append(f"{len(other)} blocks miss another treatment and were dropped: {', '.join(other[:8])}")
     warnings += list(stats.warnings)
+    failures = failure_part(conn, sl, c, baseline, quick=quick)
+    warnings += imputed_failures(c) + failures.warnings
     res = VersusResult(c, baseline, stats, word, better is not None, [], options={
         "baseline": baseline, "method": method, "adjust": adjust, "better": better, "margin": margin,
         "confidence": confidence})
     res.drift = drift
+    res.failures = failures
+    if cutoff is not None:
+        res.options["cutoff"] = cutoff
+        res.censored = censored_runtimes(conn, sl, c.metric, cutoff, baseline, "drop", confidence)
     smallest = min((abs(r["diff"]) for r in stats.comparisons if r.get("diff") is not None), default=None)
     for d in drift:
         big = smallest is not None and d["difference"] is not None and abs(d["difference"]) >= smallest

@@ -403,7 +403,7 @@ def undo_retraction(wh: Warehouse, retraction_id: int, now: float | None = None)
             keys = cells.touched(conn, S.runs.c.retraction_id == retraction_id)
             taken = _keys_taken(conn, retraction_id, keys)
             if taken:
-                from .ingest.loader import retract_command
+                from .ingest.reload import retract_command
 
                 holder, count = min(taken.items())
                 name = conn.execute(select(S.campaigns.c.name).join(S.imports, S.imports.c.campaign_id == S.campaigns.c.id)
@@ -560,6 +560,7 @@ class Recheck:
     renew: bool = False  # --renew was asked
     stored_analysis: int | None = None  # the analysis this renewal stored
     claims_moved: list[int] = field(default_factory=list)
+    moved: list[str] = field(default_factory=list)  # what changed under the analysis, in words
 
     def to_dict(self) -> dict:
         return {"analysis_id": self.stored.id, "status": self.status, "kind": self.stored.kind,
@@ -568,7 +569,63 @@ class Recheck:
                 "runs_arrived": self.runs_arrived, "runs_withdrawn": self.runs_withdrawn, "changes": self.changes,
                 "old": self.stored.result, "new": self.new_doc, "error": self.error,
                 "renewed_from": self.stored.renewed_from, "renewed_as": self.stored.renewed_as,
-                "renew": self.renew, "stored_analysis": self.stored_analysis, "claims_moved": self.claims_moved}
+                "renew": self.renew, "stored_analysis": self.stored_analysis, "claims_moved": self.claims_moved,
+                "explained": self.moved}
+
+
+SHOWN_MOVES = 6  # changed observations named one by one; the rest are counted
+
+
+def explain(wh: Warehouse, st: Stored, new) -> list[str]:
+    """What changed under a stored analysis, in words: the imports that brought runs into its slice
+    since, the retractions that took runs out, and the treatments, blocks and observations that
+    moved (the re-run reads the runs themselves, so an edit made outside Blockyard shows here)."""
+    out: list[str] = []
+    c = new.collapsed
+    with wh.engine.connect() as conn:
+        dims = Dims.load(conn)
+        try:
+            cond = condition(st.slice, dims, conn)
+        except InputError:
+            cond = None
+        if cond is not None:
+            R, I, X = S.runs, S.imports, S.retractions
+            came = conn.execute(select(I.c.id, I.c.file_name, func.count()).select_from(R.join(I, I.c.id == R.c.import_id))
+                                .where(cond, R.c.id > st.max_run_id, R.c.retraction_id.is_(None))
+                                .group_by(I.c.id, I.c.file_name).order_by(I.c.id)).all()
+            for iid, name, n in came:
+                out.append(f"import {iid} ({name}) brought {n} runs into the slice")
+            withdrawn = condition(st.slice, dims, conn, retracted="yes")  # (as stale_runs counts them)
+            gone = conn.execute(select(X.c.id, X.c.reason, func.count()).select_from(R.join(X, X.c.id == R.c.retraction_id))
+                                .where(withdrawn, R.c.id <= st.max_run_id,
+                                       R.c.retraction_id > int(st.settings.get("retractions_before", 0)))
+                                .group_by(X.c.id, X.c.reason).order_by(X.c.id)).all()
+            for xid, reason, n in gone:
+                out.append(f"retraction {xid} ({reason}) took {n} runs of its slice out")
+    old = {(o["treatment"], o["block"]): o.get("value") for o in st.observations or [] if "treatment" in o}
+    now = {(t, b): v for t, b, v in zip(c.obs["treatment"], c.obs["block"], c.obs["value"])}
+    if not old:
+        return out
+    for word, names in (("treatments", lambda k: k[0]), ("blocks", lambda k: k[1])):
+        before, after = {names(k) for k in old}, {names(k) for k in now}
+        if after - before:
+            out.append(f"{word} now in the analysis: {', '.join(sorted(after - before)[:8])}")
+        if before - after:
+            out.append(f"{word} no longer in the analysis: {', '.join(sorted(before - after)[:8])}")
+    changed = []
+    for key in sorted(set(old) & set(now)):
+        a, b = old[key], now[key]
+        if a is None or b is None or abs(float(a) - float(b)) > 1e-9 * max(1.0, abs(float(a)), abs(float(b))):
+            changed.append((key, a, b))
+    for (t, b), a, v in changed[:SHOWN_MOVES]:
+        out.append(f"{t} on {b}: {_num(a)} then, {_num(v)} now")
+    if len(changed) > SHOWN_MOVES:
+        out.append(f"... and {len(changed) - SHOWN_MOVES} more observations moved")
+    return out
+
+
+def _num(v) -> str:
+    return "-" if v is None else f"{float(v):.6g}"
 
 
 def _renewed_already(analysis_id: int, later: int) -> InputError:
@@ -610,17 +667,18 @@ def recheck(wh: Warehouse, analysis_id: int, renew: bool = False, now: float | N
     for key in sorted(set(old_v) | set(new_v)):
         if old_v.get(key) != new_v.get(key):
             changes.append(f"{key}: was {_say(old_v.get(key))}, now {_say(new_v.get(key))}")
+    moved = explain(wh, st, new) if getattr(new, "collapsed", None) is not None else []
     if not st.intact:
         status = "tampered"
         changes.insert(0, "the stored result does not match its digest: it was edited after it was kept")
     elif changes:
         status = "conclusion-changed"
     elif (new_fp is not None and st.fingerprint not in (new_fp, new.collapsed.fingerprint_v1)) or (
-            new_fp is None and _canon(_as_kept(new_doc, st.result)) != _canon(st.result)):
+            new_fp is None and _canon(_as_kept(new_doc, st.result)) != _canon(st.result)) or moved:
         status = "data-changed"
     else:
         status = "unchanged"
-    rc = Recheck(st, status, new_doc, new_fp, arrived, withdrawn, changes, rerun=new, renew=renew)
+    rc = Recheck(st, status, new_doc, new_fp, arrived, withdrawn, changes, rerun=new, renew=renew, moved=moved)
     return _renew(wh, rc, now) if renew else rc
 
 

@@ -4,7 +4,7 @@ Building the unique index on (campaign, solver, instance, seed, replicate) took 
 large load into SQLite, and keeping it took the same again spread over smaller ones. A SQLite
 load now proves its runs new from the cell summaries and a hash of its own run keys, and falls
 back to a unique index on its campaign's keys alone for the length of the load when it cannot
-(warehouse/ingest/loader.py). Slices on the runs find a campaign's runs through its imports' id
+(warehouse/ingest/runkey.py). Slices on the runs find a campaign's runs through its imports' id
 ranges instead of the index. PostgreSQL keeps the index: its loads insert past conflicts.
 
 Revision ID: 0007

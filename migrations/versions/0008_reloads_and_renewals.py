@@ -11,7 +11,7 @@ stale analysis may be re-run into a new one that takes over its claims.
   that points at the one it renews; the claims move to it.
 - PostgreSQL: the run key (ux_runs_key) holds live runs only, so that a file reloaded into its
   own campaign goes in beside its retracted runs under the same keys; the loader keeps the
-  keys of other retracted runs itself (ingest/loader.py). SQLite holds no run key (0007).
+  keys of other retracted runs itself (ingest/runkey.py). SQLite holds no run key (0007).
 
 SQLite cannot drop a column's UNIQUE in place, so its imports table is rebuilt (a few rows per
 file ever loaded) with foreign keys off for the length of the migration (connect.migrate), as

@@ -158,7 +158,7 @@ def kill_loads(location, tmp_path, rng: random.Random, kills: int, rows: int, wi
     assert state(location, sha) == (before + rows, 1)
     if not ON_POSTGRES:
         sqlite_whole(location)
-        # a kill during a large load can leave the rollback journal mode (loader._BulkJournal);
+        # a kill during a large load can leave the rollback journal mode (store/bulk.BulkJournal);
         # the load that went through put the warehouse back in WAL mode
         con = sqlite3.connect(location)
         try:
@@ -170,7 +170,7 @@ def kill_loads(location, tmp_path, rng: random.Random, kills: int, rows: int, wi
 
 
 def crash_battery(location, tmp_path, seed: int, kills_set_aside: int, kills_kept: int, rows: int = BIG) -> None:
-    from warehouse.ingest import loader
+    from warehouse.store import bulk
     from warehouse.store.connect import init_warehouse
 
     rng = random.Random(seed)
@@ -180,7 +180,7 @@ def crash_battery(location, tmp_path, seed: int, kills_set_aside: int, kills_kep
         init_warehouse(scratch).close()
         window = write_window(scratch, first, "m")
     # into an empty warehouse: the SQLite loader sets the runs indexes aside and builds them at the end
-    assert loader.BULK_MIN_ROWS <= rows or ON_POSTGRES
+    assert bulk.BULK_MIN_ROWS <= rows or ON_POSTGRES
     inside = kill_loads(location, tmp_path, rng, kills_set_aside, rows, window, "aside", first=first)
     if kills_kept:
         # a smaller file into a fuller warehouse: the indexes are kept up to date row by row

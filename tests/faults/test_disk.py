@@ -97,7 +97,7 @@ def test_a_load_onto_a_full_disk_is_refused_in_one_line(cli, location, tmp_path,
 @sqlite_only
 def test_load_file_on_a_full_disk_raises_storage_error(location, tmp_path, stocked):
     from warehouse.errors import StorageError
-    from warehouse.ingest.loader import load_file
+    from warehouse.ingest.load import load_file
     from warehouse.store.connect import open_warehouse
 
     path = runs_csv(tmp_path / "more.csv", 3_000, seed=13)

@@ -4,7 +4,8 @@ from __future__ import annotations
 import pytest
 
 from conftest import ON_POSTGRES
-from warehouse.ingest import loader, sources
+from warehouse.ingest import load, sources
+from warehouse.store import bulk
 
 from .kit import everything, load_json, query, refusal, write
 
@@ -48,7 +49,7 @@ def test_bad_row_past_the_first_chunk_leaves_no_trace(cli, location, tmp_path):
 def test_large_load_with_a_repeated_run_names_both_lines(cli, location, tmp_path):
     # large enough for the SQLite fast path (indexes rebuilt at the end); the repeat is caught there
     # and the load starts over to name the lines
-    n = loader.BULK_MIN_ROWS + 2_000
+    n = bulk.BULK_MIN_ROWS + 2_000
     path = big_csv(tmp_path / "big.csv", n, dup_of=7)
     before, kept = everything(location), indexes(location)
     line = refusal(cli, path)
@@ -58,7 +59,7 @@ def test_large_load_with_a_repeated_run_names_both_lines(cli, location, tmp_path
 
 
 def test_large_load_stores_everything_and_keeps_the_indexes(cli, location, tmp_path):
-    n = loader.BULK_MIN_ROWS + 2_000
+    n = bulk.BULK_MIN_ROWS + 2_000
     kept = indexes(location)
     rep = load_json(cli, big_csv(tmp_path / "big.csv", n))
     assert rep["rows_loaded"] == n
@@ -76,7 +77,7 @@ def test_large_first_load_numbers_runs_in_file_order_with_every_field_in_place(c
     # still get id k+1, the import's id range must be those ids, and no field may slide into its
     # neighbour's column. Checked on both ways of writing (one float table; Python ints when a
     # seed is past 2**53, which a float cannot hold).
-    n = loader.BULK_MIN_ROWS + 2_000
+    n = bulk.BULK_MIN_ROWS + 2_000
     path = big_csv(tmp_path / "big.csv", n)
     text = path.read_text(encoding="utf-8").splitlines(keepends=True)
     # line 5 (run id 4) has neither a finish time nor a host; line 7 (id 6) a seed only Python ints hold exactly
@@ -95,7 +96,7 @@ def test_large_first_load_numbers_runs_in_file_order_with_every_field_in_place(c
 
 
 def test_large_load_over_stored_runs_skips_them(cli, location, tmp_path):
-    n = loader.BULK_MIN_ROWS + 2_000
+    n = bulk.BULK_MIN_ROWS + 2_000
     first = big_csv(tmp_path / "a.csv", 3_000)
     load_json(cli, first)
     rep = load_json(cli, big_csv(tmp_path / "b.csv", n))
@@ -121,9 +122,9 @@ def test_sqlite_stores_integers_as_integers_and_missing_values_as_null(cli, loca
 @pytest.mark.skipif(ON_POSTGRES, reason="a SQLite connection setting")
 def test_foreign_keys_are_back_on_after_a_load(wh, tmp_path):
     path = write(tmp_path / "t.csv", H + "s,1,f,g,a,1,ok,,,3\n")
-    loader.load_file(wh, path, "c")
+    load.load_file(wh, path, "c")
     with pytest.raises(Exception):
-        loader.load_file(wh, write(tmp_path / "bad.csv", H + "s,1,f,g,a,1,ok,,,x\n"), "c")
+        load.load_file(wh, write(tmp_path / "bad.csv", H + "s,1,f,g,a,1,ok,,,x\n"), "c")
     with wh.engine.connect() as c:
         assert c.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
 

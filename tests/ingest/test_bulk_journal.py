@@ -36,25 +36,25 @@ def _count(path: str) -> int:
 
 
 def test_the_switch_is_made_alone_and_refused_with_company(location, tmp_path):
-    from warehouse.ingest import loader
+    from warehouse.store import bulk
     from warehouse.store.connect import open_warehouse
 
-    assert loader.BULK_MIN_ROWS <= ROWS
+    assert bulk.BULK_MIN_ROWS <= ROWS
     wh = open_warehouse(location)
     try:
         with wh.write() as conn:
-            with loader._BulkJournal(conn, True, True, ROWS) as j:
+            with bulk.BulkJournal(conn, True, True, ROWS) as j:
                 assert j.switched and _mode(location) == "delete"
             assert _mode(location) == "wal"
             other = sqlite3.connect(location)
             other.execute("SELECT count(*) FROM runs").fetchone()
             try:
-                with loader._BulkJournal(conn, True, True, ROWS) as j:
+                with bulk.BulkJournal(conn, True, True, ROWS) as j:
                     assert not j.switched and _mode(location) == "wal"
             finally:
                 other.close()
             # a warehouse holding more runs than the file: no switch
-            with loader._BulkJournal(conn, True, True, -1) as j:
+            with bulk.BulkJournal(conn, True, True, -1) as j:
                 assert not j.switched
     finally:
         wh.close()

@@ -26,7 +26,7 @@ def _close(a, b) -> bool:
 
 
 def test_loaded_cells_equal_the_sql_sums_over_the_runs(wh, tmp_path):
-    from warehouse.ingest.loader import load_file
+    from warehouse.ingest.load import load_file
 
     lines = ["solver,version,group,instance,seed,status,host,pallets,seconds"]
     for k in range(3000):

@@ -70,7 +70,7 @@ def test_gzip_of_several_members_is_read_whole(cli, location, tmp_path):
 def test_a_quoted_header_leaves_records_and_lines_one_to_one(tmp_path):
     # RFC 4180 allows any field in quotes, the header's too (pandas and pyarrow quote header
     # names); only a quoted field that holds a line break makes records and lines part ways
-    from warehouse.ingest.sources import first_pass
+    from warehouse.ingest.scan import first_pass
 
     plain = tmp_path / "quoted-header.csv"
     plain.write_text('"solver","group","instance","seed","pallets"\nstk,g1,"i,1",1,3\nstk,g1,"say ""hi""",2,4\n')

@@ -204,7 +204,7 @@ def test_a_full_disk_is_one_line_and_leaves_no_trace(location, tmp_path, before,
     from sqlalchemy import event
 
     from warehouse.errors import StorageError
-    from warehouse.ingest.loader import load_file
+    from warehouse.ingest.load import load_file
     from warehouse.store.connect import open_warehouse
 
     body = "".join(f"stacker,1.6,g{k % 20},i{k % 300},{k // 300},ok,,{k % 50}\n" for k in range(rows))

@@ -11,7 +11,7 @@ import re
 import pytest
 
 from conftest import ON_POSTGRES
-from warehouse.ingest import loader, sources
+from warehouse.ingest import reload, scan, sources
 
 from .kit import csv_text, everything, load, load_json, query, refusal, runs, write
 from .test_atomic import indexes
@@ -344,11 +344,11 @@ def test_two_reloads_of_one_import_at_once_store_one(cli, location, tmp_path, mo
 
     w = open_warehouse(location)
     try:
-        seen = loader._earlier_imports(w, query(location, "SELECT sha256 FROM imports")[0][0])
+        seen = reload.earlier_imports(w, query(location, "SELECT sha256 FROM imports")[0][0])
     finally:
         w.close()
     assert load_json(cli, path, "--again", campaign="b")["replaces"] == 1
-    monkeypatch.setattr(loader, "_earlier_imports", lambda wh, sha: seen)  # the view before that commit
+    monkeypatch.setattr(reload, "earlier_imports", lambda wh, sha: seen)  # the view before that commit
     before = everything(location)
     rep = load_json(cli, path, "--again", campaign="c")
     assert rep["status"] == "duplicate"
@@ -404,7 +404,7 @@ def test_a_10_mb_field_is_read(cli, location, tmp_path, quoted_break):
 
 def test_a_10_mb_field_reads_the_same_with_the_early_parse(tmp_path, monkeypatch, location):
     from .kit import stored_runs
-    from .test_scan import _load_both_ways
+    from .test_early import _load_both_ways
 
     (early, plain), taken = _load_both_ways(tmp_path, monkeypatch, location, long_note_csv().encode(), name="long.csv")
     assert taken[0] is True
@@ -413,7 +413,7 @@ def test_a_10_mb_field_reads_the_same_with_the_early_parse(tmp_path, monkeypatch
 
 
 def test_a_record_past_the_largest_block_is_refused_naming_line_and_field(cli, location, tmp_path, monkeypatch):
-    monkeypatch.setattr(loader, "MAX_BLOCK_BYTES", 4 * 2**20)  # a record may then hold 2 MB
+    monkeypatch.setattr(sources, "MAX_BLOCK_BYTES", 4 * 2**20)  # a record may then hold 2 MB
     before = everything(location)
     path = write(tmp_path / "long.csv", long_note_csv(quoted_break=True))
     assert refusal(cli, path) == (f"blockyard: {path} line 5, field note: the record is 10 MB long; a record may hold at "
@@ -425,7 +425,7 @@ def test_the_longest_record_is_found_across_chunks_and_quotes(tmp_path):
     # the scan reads 4 MB at a time: a record of 5 MB starts in one chunk and ends in the next
     text = 'a,b,c\n1,"x\ny",2\n' + "3," + "z" * (5 * 2**20) + ",4\n" + "5,6,7"
     path = write(tmp_path / "s.csv", text)
-    info = sources.first_pass(path, "s.csv")
+    info = scan.first_pass(path, "s.csv")
     assert sources.longest_record(info) == (5 * 2**20 + 4, 4, 1)  # "3," + 5 MB + ",4"; line 4; column b
 
 

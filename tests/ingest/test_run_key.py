@@ -10,7 +10,8 @@ from __future__ import annotations
 
 import pytest
 
-from warehouse.ingest import loader
+from warehouse.ingest import load, runkey
+from warehouse.store import bulk
 
 from conftest import ON_POSTGRES
 from .kit import csv_text, load_json, query, refusal, runs, write
@@ -48,7 +49,7 @@ def test_a_new_campaign_over_the_same_cells_is_new_runs(cli, location, tmp_path)
     assert (rep["rows_loaded"], rep["rows_skipped"]) == (3, 0)
 
 
-@pytest.mark.parametrize("rows", [20, loader.BULK_MIN_ROWS + 500], ids=["small", "large"])
+@pytest.mark.parametrize("rows", [20, bulk.BULK_MIN_ROWS + 500], ids=["small", "large"])
 def test_a_run_twice_in_a_file_is_named_whatever_the_chunk(cli, location, tmp_path, rows):
     rs = runs(rows)
     text = csv_text(rs + [rs[3]])  # the fourth run again, on the last line (another chunk when large)
@@ -62,7 +63,7 @@ def test_a_run_twice_in_a_file_is_named_whatever_the_chunk(cli, location, tmp_pa
 @pytest.mark.skipif(ON_POSTGRES, reason="the hash proof is SQLite's")
 def test_two_runs_whose_hashes_meet_still_load_every_run(cli, location, tmp_path, monkeypatch):
     # every run hashed alike: the proof fails, and the exact way finds no run twice
-    monkeypatch.setattr(loader._RunHashes, "_mix", staticmethod(lambda z: z * 0))
+    monkeypatch.setattr(runkey.RunHashes, "_mix", staticmethod(lambda z: z * 0))
     rep = load_json(cli, write(tmp_path / "a.csv", csv_text(runs(30))))
     assert (rep["rows_loaded"], rep["rows_skipped"], rep["rows_rejected"]) == (30, 0, 0)
     assert query(location, "SELECT count(DISTINCT seed), min(id), max(id) FROM runs") == [(30, 1, 30)]
@@ -72,11 +73,11 @@ def test_two_runs_whose_hashes_meet_still_load_every_run(cli, location, tmp_path
 def test_each_proof_is_what_stands_between_a_load_and_a_repeated_run(cli, location, tmp_path, monkeypatch):
     """With either proof switched off, a repeated run would be stored twice: each one is needed."""
     load_json(cli, write(tmp_path / "a.csv", H + "s,1,g1,a,1,ok,10\n"))
-    monkeypatch.setattr(loader._StoredCells, "overlaps", lambda self, s, i: False)
+    monkeypatch.setattr(runkey.StoredCells, "overlaps", lambda self, s, i: False)
     load_json(cli, write(tmp_path / "b.csv", H + "s,1,g1,a,1,ok,11\n"))
     assert query(location, "SELECT count(*) FROM runs WHERE seed = 1") == [(2,)]  # stored twice
     monkeypatch.undo()
-    monkeypatch.setattr(loader._RunHashes, "repeated", lambda self: False)
+    monkeypatch.setattr(runkey.RunHashes, "repeated", lambda self: False)
     load_json(cli, write(tmp_path / "c.csv", H + "s,1,g2,b,1,ok,10\ns,1,g2,b,1,ok,12\n"), campaign="d")
     assert query(location, "SELECT count(*) FROM runs WHERE instance_id = (SELECT id FROM instances WHERE name = 'b')") == [(2,)]
 
@@ -84,10 +85,10 @@ def test_each_proof_is_what_stands_between_a_load_and_a_repeated_run(cli, locati
 @pytest.mark.skipif(ON_POSTGRES, reason="the proofs are SQLite's")
 def test_a_file_past_the_hash_limit_loads_the_exact_way(cli, location, tmp_path, monkeypatch):
     # the run hashes take 8 bytes a run; past the limit the campaign's key index checks instead
-    monkeypatch.setattr(loader, "QUICK_MAX_RUNS", 10)
+    monkeypatch.setattr(runkey, "QUICK_MAX_RUNS", 10)
     made = []
-    real = loader._campaign_key
-    monkeypatch.setattr(loader, "_campaign_key", lambda conn, cid, create: (made.append(create), real(conn, cid, create)))
+    real = runkey.campaign_key
+    monkeypatch.setattr(runkey, "campaign_key", lambda conn, cid, create: (made.append(create), real(conn, cid, create)))
     rep = load_json(cli, write(tmp_path / "a.csv", csv_text(runs(30))))
     assert (rep["rows_loaded"], rep["rows_skipped"]) == (30, 0)
     assert made == [True, False]  # made, and dropped before the commit
@@ -102,8 +103,8 @@ def test_a_large_first_load_gives_the_page_cache_back(location, tmp_path):
 
     w = open_warehouse(location)
     try:
-        rep = loader.load_file(w, big_csv(tmp_path / "big.csv", loader.BULK_MIN_ROWS + 100), "c")
-        assert rep.rows_loaded == loader.BULK_MIN_ROWS + 100
+        rep = load.load_file(w, big_csv(tmp_path / "big.csv", bulk.BULK_MIN_ROWS + 100), "c")
+        assert rep.rows_loaded == bulk.BULK_MIN_ROWS + 100
         with w.engine.connect() as conn:  # the pooled connection the load used
             assert conn.exec_driver_sql("PRAGMA cache_size").scalar() == -65536
             assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
@@ -159,8 +160,8 @@ def test_a_reload_into_its_own_campaign_is_proved_new_without_the_key_index(cli,
     # the cells hold only the replaced import's retracted runs, which hold no keys for the
     # reload: the quick proof stands, and no key index is made
     made = []
-    real = loader._campaign_key
-    monkeypatch.setattr(loader, "_campaign_key", lambda conn, cid, create: (made.append(create), real(conn, cid, create)))
+    real = runkey.campaign_key
+    monkeypatch.setattr(runkey, "campaign_key", lambda conn, cid, create: (made.append(create), real(conn, cid, create)))
     rep = _reloaded(cli, tmp_path)
     assert (rep["rows_loaded"], rep["rows_skipped"], rep["replaces"]) == (2, 0, 1)
     assert made == []
@@ -185,7 +186,7 @@ def test_later_loads_into_a_campaign_with_a_reload_still_hold_each_key_once(cli,
 def test_retracted_keys_are_told_apart_when_their_hashes_meet(cli, location, tmp_path, monkeypatch):
     load_json(cli, write(tmp_path / "a.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in (1, 2, 3))))
     assert cli("retract", "--slice", "seed=2,3", "--reason", "bad").code == 0
-    monkeypatch.setattr(loader._RunHashes, "_mix", staticmethod(lambda z: z * 0))  # every key hashed alike
+    monkeypatch.setattr(runkey.RunHashes, "_mix", staticmethod(lambda z: z * 0))  # every key hashed alike
     rep = load_json(cli, write(tmp_path / "b.csv", H + "".join(f"s,1,g1,a,{k},ok,{10 * k}\n" for k in (2, 3, 4, 5))))
     assert (rep["rows_loaded"], rep["rows_skipped"]) == (2, 2)
     assert query(location, "SELECT seed, v1 FROM runs WHERE retraction_id IS NULL ORDER BY seed") == \

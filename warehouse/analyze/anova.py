@@ -39,6 +39,10 @@ BOXCOX_BOUNDS = (-3.0, 3.0)
 
 TRANSFORMS = ("none", "log", "boxcox", "rank")
 
+#: why the spread checks say nothing with two treatments
+TWO_TREATMENTS = ("with two treatments the residuals in each block are equal and opposite, so the spread "
+                  "checks cannot tell anything")
+
 
 # --------------------------------------------------------------------------- the additive model and its checks
 
@@ -103,11 +107,13 @@ def _diagnostics(Y: np.ndarray, fit: dict, treatments: list[str], blocks: list[s
     flat = resid.ravel()
     sw = stats.shapiro(flat)
     diag["shapiro"] = {"statistic": float(sw.statistic), "p": float(sw.pvalue)}
-    groups = [resid[i, :] for i in range(a)]
-    fk = stats.fligner(*groups)
-    diag["fligner"] = {"statistic": _none_if_nan(fk.statistic), "p": _none_if_nan(fk.pvalue)}
-    bf = stats.levene(*groups, center="median")
-    diag["brown_forsythe"] = {"statistic": _none_if_nan(bf.statistic), "p": _none_if_nan(bf.pvalue)}
+    if a == 2:
+        # each block's two residuals are r and -r: the spreads are equal by construction, and the
+        # tests would always say so (p = 1); no p is better than one that cannot fail
+        diag["fligner"] = {"statistic": None, "p": None, "note": TWO_TREATMENTS}
+        diag["brown_forsythe"] = {"statistic": None, "p": None, "note": TWO_TREATMENTS}
+    else:
+        _spread_tests(diag, [resid[i, :] for i in range(a)])
     std = resid / math.sqrt(fit["ms_e"])
     for i, j in np.argwhere(np.abs(std) > OUTLIER_LIMIT):
         diag["outliers"].append({"treatment": treatments[i], "block": blocks[j],
@@ -115,6 +121,14 @@ def _diagnostics(Y: np.ndarray, fit: dict, treatments: list[str], blocks: list[s
                                  "standardized": float(std[i, j])})
     diag["outliers"].sort(key=lambda r: -abs(r["standardized"]))
     return diag
+
+
+def _spread_tests(diag: dict, groups: list) -> None:
+    """Fligner-Killeen and Brown-Forsythe across treatments, into `diag`."""
+    fk = stats.fligner(*groups)
+    diag["fligner"] = {"statistic": _none_if_nan(fk.statistic), "p": _none_if_nan(fk.pvalue)}
+    bf = stats.levene(*groups, center="median")
+    diag["brown_forsythe"] = {"statistic": _none_if_nan(bf.statistic), "p": _none_if_nan(bf.pvalue)}
 
 
 def _passes(diag: dict, level: float = CHECK_LEVEL) -> bool | None:
@@ -220,7 +234,8 @@ class BlockedResult(_Result):
     relative_efficiency_corrected   the same times ((df_e+1)(df_crd+3)) / ((df_e+3)(df_crd+1)),
                               df_e = (a-1)(b-1), df_crd = a(b-1)
     residual_ms, residual_df
-    treatment_means           DataFrame treatment, mean, n (on the analysis scale)
+    treatment_means           DataFrame treatment, mean, n (on the analysis scale); with the log
+                              transform also geometric_mean (exp(mean) - shift, original scale)
     residuals                 DataFrame treatment, block, original, value (analysis scale),
                               fitted, residual, standardized (residual / sqrt(MS_res)),
                               studentized (residual / sqrt(MS_res (1 - h)), h = 1/a + 1/b - 1/(ab))
@@ -320,7 +335,8 @@ def rcbd_anova(obs: pd.DataFrame, transform: str = "none") -> BlockedResult:
 
     Diagnostics on the residuals: Shapiro-Wilk (normality); Fligner-Killeen and Brown-Forsythe
     (Levene with medians) across treatments (equal variances; with 2 treatments the residuals of
-    the two rows mirror each other and these tests carry no information); Tukey's one-degree-of-
+    the two rows mirror each other, so these tests cannot fail: they are not run, their p is None
+    and their ``note`` says why); Tukey's one-degree-of-
     freedom test for non-additivity; standardized residuals beyond 3 as outliers. The same checks
     are run under log, Box-Cox and rank; when the chosen scale fails, the advice names the first
     of log, Box-Cox, rank that passes (all three p >= 0.05), else the Friedman test. Friedman and
@@ -359,8 +375,8 @@ def rcbd_anova(obs: pd.DataFrame, transform: str = "none") -> BlockedResult:
     if fit["ss_tot"] <= 0:
         warnings.append("all values are equal: there is nothing to test")
     elif fit["perfect"]:
-        warnings.append("treatment and block effects explain the values exactly: the residual checks "
-                        "cannot be run")
+        warnings.append("treatment and block effects explain the values exactly: the residual mean square is 0, "
+                        "so F, p and the residual checks cannot be computed")
 
     # the same checks on every scale
     checks = []
@@ -429,6 +445,8 @@ def rcbd_anova(obs: pd.DataFrame, transform: str = "none") -> BlockedResult:
         "original": Y0.ravel(), "value": Y.ravel(), "fitted": fit["fitted"].ravel(),
         "residual": fit["resid"].ravel(), "standardized": std.ravel(), "studentized": stud.ravel()})
     means = pd.DataFrame({"treatment": treatments, "mean": fit["tm"], "n": b})
+    if info["name"] == "log":  # the mean of logs, back on the original scale (less the shift, if any)
+        means["geometric_mean"] = np.exp(fit["tm"]) - info["shift"]
 
     return BlockedResult(
         treatments=a, blocks=b, treatment_names=treatments, block_names=blocks, transform=info,

@@ -5,6 +5,7 @@ Public functions
 tukey_hsd_blocked(obs, confidence=0.95)      Tukey's HSD on the additive block model
 nemenyi(obs, confidence=0.95)                Nemenyi's test on Friedman mean ranks
 conover_friedman(obs, adjust="holm", ...)    Conover's t-based test on Friedman ranks
+ratios_from_log(res, shift=0.0)              Tukey's log-scale differences as ratios of geometric means
 
 Every row compares ``first`` with ``second`` (in the order the treatments appear) and
 ``diff`` is first minus second: a difference of means for Tukey, of mean ranks for the rank
@@ -47,8 +48,11 @@ class PairsResult(_Result):
                       Nemenyi; Conover: at the interval level)
     friedman          Friedman result for the rank methods, else None
     pairs             list of rows first, second, diff, ci_low, ci_high, se, statistic,
-                      p_adjusted (Conover also p_unadjusted)
+                      p_adjusted (Conover also p_unadjusted; after ratios_from_log also ratio,
+                      ratio_low, ratio_high, percent). A statistic that cannot be computed (no
+                      spread to divide by) is NaN, and so is its p value.
     warnings
+    original_scale    None, or (after ratios_from_log) {shift, ratios}
     """
 
     method: str
@@ -63,6 +67,7 @@ class PairsResult(_Result):
     friedman: object
     pairs: list[dict]
     warnings: list[str] = field(default_factory=list)
+    original_scale: dict | None = None  # after ratios_from_log: what the ratios are of
 
     def table(self) -> pd.DataFrame:
         return pd.DataFrame(self.pairs)
@@ -108,16 +113,19 @@ def tukey_hsd_blocked(obs: pd.DataFrame, confidence: float = 0.95) -> PairsResul
         diff = float(fit["tm"][i] - fit["tm"][j])
         if se > 0:
             stat = abs(diff) / se
-            p = float(stats.studentized_range.sf(stat, a, df_e))
-        else:
-            stat = float("inf") if diff != 0 else float("nan")
-            p = 0.0 if diff != 0 else 1.0
+            p = min(max(float(stats.studentized_range.sf(stat, a, df_e)), 0.0), 1.0)
+        else:  # no residual spread: the statistic divides by zero, and has no p
+            stat = p = float("nan")
         rows.append({"first": treatments[i], "second": treatments[j], "diff": diff,
                      "ci_low": diff - q * se, "ci_high": diff + q * se, "se": se, "statistic": stat,
-                     "p_adjusted": min(max(p, 0.0), 1.0), "method": "tukey"})
+                     "p_adjusted": p, "method": "tukey"})
+    warnings = _few(b)
+    if not se > 0:
+        warnings.append("the block model fits exactly (residual mean square 0): Tukey's statistics and p values "
+                        "cannot be computed")
     return PairsResult(method="tukey", treatments=treatments, blocks=b, confidence=confidence, adjust="tukey",
                        residual_ms=mse, residual_df=df_e, critical_value=q, critical_difference=q * se,
-                       friedman=None, pairs=rows, warnings=_few(b))
+                       friedman=None, pairs=rows, warnings=warnings)
 
 
 def nemenyi(obs: pd.DataFrame, confidence: float = 0.95) -> PairsResult:
@@ -205,24 +213,58 @@ def conover_friedman(obs: pd.DataFrame, adjust: str = "holm", confidence: float 
         if se_sum > 0:
             stat = abs(dsum) / se_sum
             p = float(2 * stats.t.sf(stat, df))
-        else:
-            stat = float("inf") if dsum != 0 else float("nan")
-            p = 0.0 if dsum != 0 else 1.0
+        else:  # the ranks are identical in every block: the statistic divides by zero, and has no p
+            stat = p = float("nan")
         raw.append(p)
         diff = dsum / b
         se = se_sum / b
         rows.append({"first": treatments[i], "second": treatments[j], "diff": diff, "ci_low": diff - tq * se,
                      "ci_high": diff + tq * se, "se": se, "statistic": stat, "p_unadjusted": p,
                      "p_adjusted": None, "method": "conover"})
-    if adjust == "none":
-        adj = np.asarray(raw)
-    else:
+    raw_arr = np.asarray(raw, dtype=float)
+    adj = raw_arr.copy()
+    if adjust != "none" and np.isfinite(raw_arr).any():
         from statsmodels.stats.multitest import multipletests
 
-        adj = multipletests(np.asarray(raw), method=adjust)[1]
+        have = np.isfinite(raw_arr)
+        adj[have] = multipletests(raw_arr[have], method=adjust)[1]
     for row, p in zip(rows, adj):
         row["p_adjusted"] = float(p)
+    warnings = _few(b) + list(fr.warnings)
+    if not se_sum > 0:
+        warnings.append("the ranks are identical in every block: Conover's statistics and p values cannot be "
+                        "computed")
     return PairsResult(method="conover", treatments=treatments, blocks=b, confidence=confidence, adjust=adjust,
                        residual_ms=inner / (b * df), residual_df=df, critical_value=tq,
-                       critical_difference=tq * se_sum / b, friedman=fr, pairs=rows,
-                       warnings=_few(b) + list(fr.warnings))
+                       critical_difference=tq * se_sum / b, friedman=fr, pairs=rows, warnings=warnings)
+
+
+def ratios_from_log(res: PairsResult, shift: float = 0.0) -> PairsResult:
+    """Tukey's differences made on the log scale, read back on the original scale.
+
+    A difference of means of logs is the log of the ratio of geometric means, so each row gains
+    ratio = exp(diff) (first over second), ratio_low / ratio_high = exp of the interval's ends
+    (the same simultaneous coverage: exp is increasing) and percent = 100 (ratio - 1), the change
+    of the first against the second. When the values were shifted before the log (any value <= 0),
+    the ratios are of value + shift; ``original_scale`` on the result says so.
+
+    Assumptions: those of :func:`tukey_hsd_blocked` on the log scale.
+
+    References: Bland and Altman (1996), Transformations, means, and confidence intervals, BMJ 312;
+    Keene (1995), The log transformation is special, Stat. Med. 14.
+
+    Example::
+
+        from warehouse.analyze.pairs import ratios_from_log, tukey_hsd_blocked
+        ratios_from_log(tukey_hsd_blocked(log_obs)).pairs[0]["ratio"]
+    """
+    if res.method != "tukey":
+        raise InputError(f"ratios come from differences of means of logs (Tukey); {res.method} compares mean ranks")
+    for row in res.pairs:
+        row["ratio"] = math.exp(row["diff"])
+        row["ratio_low"] = math.exp(row["ci_low"])
+        row["ratio_high"] = math.exp(row["ci_high"])
+        row["percent"] = 100.0 * (row["ratio"] - 1.0)
+    res.original_scale = {"shift": float(shift), "ratios": "geometric mean of the first over the second"
+                          + (f", of value + {shift:g}" if shift else "")}
+    return res

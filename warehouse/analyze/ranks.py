@@ -15,6 +15,10 @@ from scipy import stats
 
 from warehouse.analyze.tidy import _EPS, FEW_BLOCKS, _complete, _Result
 
+#: what is said instead of an infinite F when every block ranks the treatments alike
+IDENTICAL_RANKS = ("the ranks are identical in every block: the {test} is not defined (read it as the "
+                   "strongest agreement the blocks can show, not as a number)")
+
 
 @dataclass
 class FriedmanResult(_Result):
@@ -87,7 +91,9 @@ def _friedman_core(Y: np.ndarray, treatments: list[str]) -> FriedmanResult:
         w = stat / (b * (a - 1))
         rest = b * (a - 1) - stat
         if rest <= _EPS * b * a:
-            F, p_f = float("inf"), 0.0
+            # chi2 at its largest, b (a-1): the F form divides by zero; it is not computed
+            F, p_f = float("nan"), float("nan")
+            warnings.append(IDENTICAL_RANKS.format(test="Iman-Davenport F"))
         else:
             F = (b - 1) * stat / rest
             p_f = float(stats.f.sf(F, df1, df2))
@@ -106,7 +112,8 @@ def friedman(obs: pd.DataFrame) -> FriedmanResult:
     T1 = (a-1) sum_j (R_j - b(a+1)/2)^2 / (A1 - C1), which equals the chi-square statistic with the
     usual tie correction; p from chi-square on a-1 df. The Iman-Davenport form
     F = (b-1) T1 / (b(a-1) - T1) is referred to F on a-1 and (a-1)(b-1) df and is the more
-    accurate of the two for few blocks.
+    accurate of the two for few blocks. When every block ranks the treatments alike (no ties),
+    T1 = b(a-1) and F divides by zero: F and its p are NaN (None in JSON) with a warning.
 
     Assumptions: blocks are independent; within a block the observations can be ranked; no
     normality needed.
@@ -139,7 +146,9 @@ def _quade_core(Y: np.ndarray, treatments: list[str]) -> QuadeResult:
         F = p = float("nan")
         warnings.append("every block ties all treatments: the Quade test is not defined")
     elif A2 - B <= _EPS * A2:
-        F, p = float("inf"), 0.0
+        F, p = float("nan"), float("nan")
+        warnings.append("the ranks are identical in every block and the blocks' ranges tie: the Quade F is not "
+                        "defined (read it as the strongest agreement the blocks can show, not as a number)")
     else:
         F = (b - 1) * B / (A2 - B)
         p = float(stats.f.sf(F, df1, df2))
@@ -158,7 +167,8 @@ def quade(obs: pd.DataFrame) -> QuadeResult:
     B = (1/b) sum_j (sum_i S_ij)^2, the statistic F = (b-1) B / (A2 - B) is referred to F on a-1
     and (a-1)(b-1) df. Blocks with a wide spread count more, so it suits few treatments and
     blocks that differ in how much the treatments disagree. When A2 = B (every block ranks the
-    treatments alike) F is infinite and p is reported as 0.
+    treatments alike and the blocks' ranges tie) F divides by zero: F and p are NaN (None in JSON)
+    and a warning says so.
 
     Assumptions: independent blocks; values comparable within a block, and ranges comparable
     across blocks.

@@ -184,14 +184,13 @@ def _complete(obs) -> tuple[np.ndarray, list[str], list[str]]:
 
 
 def _f_test(ms_num: float, ms_den: float, df1: float, df2: float, scale: float) -> tuple[float, float]:
-    """F and upper-tail p; handles a zero denominator (perfect fit)."""
+    """F and upper-tail p. A zero denominator (perfect fit) leaves F undefined, and its p with it
+    (NaN, reported as None): no p of 0 beside an F that could not be computed."""
     if df2 <= 0 or df1 <= 0:
         return float("nan"), float("nan")
     tiny = _EPS * max(scale, 1e-300)
     if ms_den <= tiny:
-        if ms_num <= tiny:
-            return float("nan"), float("nan")
-        return float("inf"), 0.0
+        return float("nan"), float("nan")
     f = ms_num / ms_den
     return float(f), float(stats.f.sf(f, df1, df2))
 

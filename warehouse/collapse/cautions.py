@@ -34,6 +34,9 @@ def pseudo_replication(c: Collapsed) -> list[str]:
     if c.obs.empty or len(c.treatments) < 2:
         return []
     wide = c.obs.pivot(index="block", columns="treatment", values="value").dropna()
+    # a block where every treatment ties has no profile to match: two such blocks (a constant
+    # metric, say) are alike by the metric, not because they hold the same instances
+    wide = wide[wide.round(9).nunique(axis=1) > 1]
     if len(wide) < 2:
         return []
     rounded = wide.round(9)
@@ -47,6 +50,29 @@ def pseudo_replication(c: Collapsed) -> list[str]:
         if len(names) > 1:
             out.append(f"blocks {', '.join(names)} have identical results for every treatment: probably the same "
                        "instances twice (pseudo-replication inflates significance); merge them or drop one")
+    return out
+
+
+#: a treatment's result "rests mostly" on imputed failures above this share of its values
+IMPUTED_MOSTLY = 0.5
+
+
+def imputed_failures(c: Collapsed) -> list[str]:
+    """Treatments most of whose values are failed runs given a made-up value (--failures worst or
+    penalize): their result then says more about the policy than about their runs."""
+    if c.settings.get("failures") == "drop" or c.obs.empty or "failed" not in c.obs:
+        return []
+    out = []
+    per = c.obs.groupby("treatment")[["runs", "failed"]].sum()
+    for t in c.treatments:
+        if t not in per.index or not per.loc[t, "runs"]:
+            continue
+        share = float(per.loc[t, "failed"]) / float(per.loc[t, "runs"])
+        if share > IMPUTED_MOSTLY:
+            how = "at the worst value seen on their instance" if c.settings["failures"] == "worst" else \
+                f"at {c.settings['penalty']:g} x their value"
+            out.append(f"{t}: {100 * share:.0f} % of its values are imputed failures (failed runs counted {how}): "
+                       "its result rests more on the failure policy than on its runs")
     return out
 
 

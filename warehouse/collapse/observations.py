@@ -56,6 +56,7 @@ class Collapsed:
     # treatment -> [(campaign, host, runs)]: where each treatment's runs in the slice came from
     sources: dict[str, list[tuple[str, str, int]]] = field(default_factory=dict)
     _earlier: Callable[[], str] | None = None  # makes the 0.1 hash of the same runs (pandas way only)
+    _all_cells: pd.DataFrame | None = None  # see `every_cell` (pandas way only)
 
     @property
     def fingerprint_v1(self) -> str:
@@ -69,6 +70,16 @@ class Collapsed:
         if self._cells is None:
             raise RuntimeError("this collapse left out the per-instance table; collapse with cells=True")
         return self._cells
+
+    @property
+    def every_cell(self) -> pd.DataFrame:
+        """Every treatment and instance of the slice with runs, before instances are matched up:
+        the columns of `cells`, with no value (NaN) where no run gave one (every run failed, under
+        --failures drop). A performance profile counts those as never solved; only from
+        collapse(..., cells=True)."""
+        if self._all_cells is None:
+            raise RuntimeError("this collapse left out the per-instance table; collapse with cells=True")
+        return self._all_cells
 
     @property
     def complete(self) -> bool:
@@ -159,7 +170,8 @@ def _trimmed(values: np.ndarray, share: float) -> float:
     return float(trim_mean(values, share)) if len(values) else math.nan
 
 
-def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: bool = True) -> Collapsed:
+def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: bool = True,
+             from_runs: bool = False) -> Collapsed:
     """One observation per treatment and block for `metric` over the runs of slice `sl`.
 
     With `cells=False` the per-instance table is not needed: for the default settings (mean of
@@ -167,11 +179,14 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
     whole collapse then runs in SQL, and only the observations (one row per treatment and block)
     come back. Both ways give the same observations, notes and fingerprint (the tests hold them
     side by side); `Collapsed.cells` is then not available.
+
+    With `from_runs=True` the summaries are not read at all: the runs themselves are collapsed
+    (a recheck does this, so that an edit made to the runs outside Blockyard shows).
     """
     st = parse_settings(settings)
     dims = Dims.load(conn)
     metric, slot, sense, unit = _metric(dims, metric)
-    if not cells and st["replicates"] == "mean" and st["instances"] == "mean" and st["failures"] == "drop" \
+    if not cells and not from_runs and st["replicates"] == "mean" and st["instances"] == "mean" and st["failures"] == "drop" \
             and cells_can_answer(sl):
         quick = _collapse_in_sql(conn, sl, dims, metric, slot, sense, unit, st)
         if quick is not None:
@@ -179,7 +194,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
     cond = condition(sl, dims, conn)
     v = R.c[f"v{slot}"]
     extremes = st["failures"] != "drop"
-    if st["replicates"] == "mean" and cells_can_answer(sl):
+    if st["replicates"] == "mean" and cells_can_answer(sl) and not from_runs:
         table = S.cell_stats
         where = and_(condition(sl, dims, conn, table=table), table.c.slot == slot)
         query, names = _summary_query(condition(sl, dims, conn, table=table), slot, extremes)
@@ -242,6 +257,8 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
         columns={"n": "runs", "n_ok": "ok", "n_fail": "failed"}).reset_index(drop=True)
     if fail_runs and st["failures"] == "drop":
         notes.insert(0, f"{fail_runs} failed runs dropped")
+    every = agg[["treatment", "block", "instance", "value", "n", "n_ok", "n_fail"]].rename(
+        columns={"n": "runs", "n_ok": "ok", "n_fail": "failed"}).reset_index(drop=True)
     return Collapsed(
         slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, _cells=cells,
         treatments=treatments,
@@ -249,6 +266,7 @@ def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: boo
         instances_used=int(used_cells["instance_id"].nunique()), notes=notes, hosts=hosts, campaigns=campaigns,
         sources=sources,
         fingerprint=fingerprint, _earlier=lambda: fingerprint_v1(agg, st, metric, sl), max_run_id=max_run_id, hash_conflicts=conflicts,
+        _all_cells=every,
     )
 
 
@@ -397,6 +415,37 @@ def _rows_from_blocks(conn, sl: Slice, dims: Dims, slot: int) -> list | None:
         id_sum=int(r.id_sum), w_ids=int(r.w_ids), cells=int(r.cells), inst=int(r.inst), id_max=int(r.id_max),
         lost=int(r.lost), value=(float(r.vsum) / int(r.vcells)) if r.vcells else None, instances=int(r.vcells),
         runs=int(r.v_n), failed=int(r.v_fail), ok=int(r.v_ok), valid_instances=valid) for r in got]
+
+
+def cell_counts(conn, sl: Slice, metric: str | None, from_runs: bool = False) -> pd.DataFrame:
+    """Runs and failed runs per treatment and instance of slice `sl`, every cell (a treatment
+    whose runs all failed too): what the failures part of an analysis counts. The same cells the
+    collapse reads (the cell summaries for `metric`'s slot where they answer the slice, else the
+    runs; `from_runs` as in `collapse`), without the values: one small grouped query.
+
+    Columns: treatment, instance (the instance id: an instance name seen with two content hashes
+    is two instances, as in the collapse), runs, failed. Two solvers under one label give two rows
+    for an instance; the failures part adds them up."""
+    dims = Dims.load(conn)
+    metric, slot, _, _ = _metric(dims, metric)
+    if cells_can_answer(sl) and not from_runs:
+        C = S.cell_stats
+        query = (select(C.c.solver_id, C.c.instance_id, func.sum(C.c.n), func.sum(C.c.n_fail))
+                 .where(condition(sl, dims, conn, table=C), C.c.slot == slot)
+                 .group_by(C.c.solver_id, C.c.instance_id))
+    else:
+        query = (select(R.c.solver_id, R.c.instance_id, func.count(), func.sum(case((R.c.status != 0, 1), else_=0)))
+                 .where(condition(sl, dims, conn)).group_by(R.c.solver_id, R.c.instance_id))
+    got = rows_frame(conn.execute(query), columns=["solver_id", "instance_id", "runs", "failed"])
+    if got.empty:
+        return pd.DataFrame({c: [] for c in ("treatment", "instance", "runs", "failed")})
+    label = {int(s): dims.treatment(int(s)) for s in got["solver_id"].unique()}
+    order = {t: i for i, t in enumerate(sorted(set(label.values()), key=_treatment_key))}
+    out = pd.DataFrame({"treatment": got["solver_id"].map(lambda s: label[int(s)]),
+                        "instance": got["instance_id"].astype(np.int64),
+                        "runs": got["runs"].astype(np.int64), "failed": got["failed"].astype(np.int64)})
+    # in natural version order, so that the failures part lists the treatments as the analysis does
+    return out.iloc[out["treatment"].map(order).argsort(kind="stable")].reset_index(drop=True)
 
 
 def _holes(obs: pd.DataFrame, all_blocks: list[str], treatments: list[str], st: dict) -> tuple[pd.DataFrame, list[dict]]:

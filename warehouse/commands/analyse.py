@@ -24,6 +24,12 @@ def add_slice(p: argparse.ArgumentParser, metric: bool = True) -> None:
         p.add_argument("--metric", metavar="NAME", help="the metric to analyse (inventory metrics lists them)")
 
 
+def add_cutoff(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--cutoff", metavar="SECONDS", help="also read the metric as a runtime with this time limit (in "
+                   "its units): failed runs and runs at or past it count as unsolved at it; adds solved fractions, "
+                   "Kaplan-Meier medians, hazard ratios of solving (Cox, stratified by block) and a log-rank test")
+
+
 def add_collapse(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("collapse (how runs become one value per treatment and block)")
     g.add_argument("--replicates", metavar="mean|median|trimmed:0.1", help="statistic over seeds of one instance (default mean)")
@@ -126,7 +132,11 @@ def _blocktest_args(p):
                    help="complete: every treatment in every block; incomplete: blocks may miss treatments "
                    "(implies --holes keep); generalized: instances kept apart inside blocks, with the "
                    "treatment x block interaction")
-    p.add_argument("--pairs", action="store_true", help="add all pairwise comparisons (Tukey HSD; Conover after Friedman)")
+    p.add_argument("--pairs", nargs="?", const="tukey,conover", default=False, metavar="METHODS",
+                   choices=_Words(["tukey", "conover", "nemenyi", "tukey,conover", "tukey,nemenyi"]),
+                   help="add all pairwise comparisons: tukey (Tukey HSD on the block model), conover or nemenyi "
+                   "(both after Friedman), or several separated by commas; --pairs alone gives tukey,conover")
+    add_cutoff(p)
     add_collapse(p)
     add_json(p)
 
@@ -142,7 +152,8 @@ def cmd_blocktest(session: Session, a):
     if a.design == "incomplete":
         settings = replace(settings, holes="keep")
     with session.warehouse().engine.connect() as conn:
-        res = run_blocktest(conn, sl, metric_of(session, a), settings, a.transform, a.design, a.pairs)
+        res = run_blocktest(conn, sl, metric_of(session, a), settings, a.transform, a.design, a.pairs,
+                            cutoff=getattr(a, "cutoff", None))
     _record(session, res, sl, settings)
     return res
 
@@ -159,6 +170,7 @@ def _versus_args(p):
     p.add_argument("--better", choices=_Words(["lower", "higher"]), help="make the test one-sided: is a treatment better in this direction")
     p.add_argument("--margin", metavar="X|X%", help="differences within this margin count as ties (absolute, or %% of the baseline)")
     p.add_argument("--confidence", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
+    add_cutoff(p)
     add_collapse(p)
     add_json(p)
 
@@ -173,7 +185,7 @@ def cmd_versus(session: Session, a):
     settings = settings_of(session, a)
     with session.warehouse().engine.connect() as conn:
         res = run_versus(conn, sl, metric_of(session, a), settings, a.baseline, a.method, a.adjust, a.better,
-                         a.margin, a.confidence)
+                         a.margin, a.confidence, cutoff=getattr(a, "cutoff", None))
     _record(session, res, sl, settings)
     return res
 

@@ -54,7 +54,7 @@ class LoadResult:
 @args(_load_args)
 def cmd_load(session: Session, a) -> LoadResult:
     from ..ingest.layout import read_layout
-    from ..ingest.loader import check_campaign
+    from ..ingest.names import check_campaign
 
     # every option first: a mistake in one is told before any file is read or compared with the
     # files loaded before (a file loaded already is no reason to keep quiet about a broken layout)
@@ -117,7 +117,7 @@ def _missing_sqlite_warehouse(session: Session) -> str | None:
 def _load_each(wh, a, layout) -> list:
     """Each file in turn; a refused one is reported and does not stop the others."""
     from ..errors import BlockyardError
-    from ..ingest.loader import FileReport, load_file
+    from ..ingest.load import FileReport, load_file
 
     reports = []
     for f in a.files:

@@ -11,7 +11,7 @@ from ..errors import InputError
 from ..collapse.settings import Collapse
 from .session import Session
 
-KINDS = ("profile", "qq", "residuals", "differences", "performance")
+KINDS = ("profile", "qq", "residuals", "differences", "performance", "solved")
 REPORT_FORMATS = {".html": "html", ".md": "markdown"}
 
 
@@ -40,7 +40,7 @@ def stored_cells(wh, st):
     from ..collapse.observations import collapse
 
     with wh.engine.connect() as conn:
-        return collapse(conn, st.slice, st.metric or None, _collapse_settings(st)).cells
+        return collapse(conn, st.slice, st.metric or None, _collapse_settings(st)).every_cell
 
 
 def _state_note(st) -> str | None:
@@ -57,10 +57,13 @@ def _state_note(st) -> str | None:
 def _plot_args(p):
     p.add_argument("kind", metavar="KIND", choices=KINDS,
                    help="profile (metric per block), qq (residual Q-Q), residuals (residuals vs fitted), "
-                   "differences (a versus analysis's intervals), performance (performance profile)")
+                   "differences (a versus analysis's intervals), performance (performance profile), solved "
+                   "(share of runs solved by each time, with --cutoff)")
     p.add_argument("--analysis", metavar="ID", help="draw a stored analysis (default: the session's last analysis, "
                    "else the slice and metric given)")
     add_slice(p)
+    p.add_argument("--cutoff", metavar="SECONDS", help="solved on fresh data: the time limit, in the metric's units "
+                   "(a stored analysis keeps its own)")
     p.add_argument("--to", required=True, metavar="FILE.png|FILE.svg", help="where to write the figure")
     add_json(p)
 
@@ -112,11 +115,14 @@ def cmd_plot(session: Session, a) -> PlotResult:
     from ..present import figures as F
 
     F.figure_format(a.to)  # refuse a wrong extension before any work
-    explicit = getattr(a, "slice", None) is not None or getattr(a, "metric", None) is not None
+    cutoff = getattr(a, "cutoff", None)
+    explicit = getattr(a, "slice", None) is not None or getattr(a, "metric", None) is not None or cutoff is not None
     aid = _analysis_id(a.analysis, "--analysis")
     if aid is not None and explicit:
-        raise InputError("--analysis draws the stored slice and metric; leave out --slice and --metric, "
-                         "or leave out --analysis to draw fresh data")
+        raise InputError("--analysis draws the stored slice, metric and cutoff; leave out --slice, --metric and "
+                         "--cutoff, or leave out --analysis to draw fresh data")
+    if a.kind == "solved":
+        return _plot_solved(session, a, aid, cutoff)
     if aid is None and not explicit and session.last_analysis is not None:
         aid = session.last_analysis
     notes: list[str] = []
@@ -125,7 +131,7 @@ def cmd_plot(session: Session, a) -> PlotResult:
             raise InputError("differences draws a stored versus analysis: run blockyard versus BASELINE, then "
                              "blockyard plot differences --analysis ID --to FILE")
         c = _fresh_cells(session, a)
-        fig = _draw(a.kind, c.obs, lambda: c.cells, None, c.sense, c.metric, c.treatments)
+        fig = _draw(a.kind, c.obs, lambda: c.every_cell, None, c.sense, c.metric, c.treatments)
     else:
         st = _stored(session, aid)
         r = st.result or {}
@@ -149,6 +155,35 @@ def cmd_plot(session: Session, a) -> PlotResult:
         transform = r.get("transform") if st.kind == "blocktest" else None
         fig = _draw(a.kind, pd.DataFrame(st.observations), cells, r.get("comparisons"), sense, st.metric or "value",
                     r.get("treatment_names"), transform, r)
+    F.save(fig, a.to)
+    return PlotResult(a.kind, a.to, aid, notes)
+
+
+def _plot_solved(session: Session, a, aid: int | None, cutoff) -> PlotResult:
+    """The solved-fraction figure: from a stored analysis's censored part, or fresh with --cutoff."""
+    from ..present import figures as F
+
+    notes: list[str] = []
+    if aid is None:
+        if cutoff is None:
+            raise InputError("solved draws runtimes with a cutoff: give --cutoff SECONDS with --slice and --metric, "
+                             "or --analysis ID of a blocktest or versus run with --cutoff")
+        from ..analyses import censored_runtimes
+
+        sl = slice_of(session, a).absolute()
+        with session.warehouse().engine.connect() as conn:
+            cen = censored_runtimes(conn, sl, metric_of(session, a), cutoff, holes=settings_of(session, a).holes)
+        doc = cen.to_dict()
+    else:
+        st = _stored(session, aid)
+        doc = (st.result or {}).get("censored")
+        if not doc:
+            raise InputError(f"analysis {st.id} is a {st.kind} without a cutoff; run blockyard blocktest or versus "
+                             "with --cutoff SECONDS, then plot solved --analysis ID")
+        note = _state_note(st)
+        if note:
+            notes.append(note)
+    fig = F.solved_fraction(doc["per_treatment"], doc["cutoff"], doc.get("metric") or "time", doc.get("unit") or "")
     F.save(fig, a.to)
     return PlotResult(a.kind, a.to, aid, notes)
 

@@ -64,7 +64,9 @@ def run_demo(folder: str, json_mode: bool = False) -> Done:
 
 
 def _walk(session: Session, show, root: Path) -> None:
-    """The main job on the demo: coverage, the blocked test, the baseline comparison, the ledger."""
+    """The main job on the demo: coverage, the blocked test, the baseline comparison, the ledger.
+    The versus step also catches the greedy build's timeouts on oversize loads: its failures part
+    tests solved / not solved per instance and says, in a caution, which treatment fails more."""
     nov = "stacker@1.4 campaign=oct-baseline | solver=stacker campaign=nov-tuning"
     session.focus = nov
     session.metric = "pallets"

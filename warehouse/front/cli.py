@@ -158,7 +158,7 @@ def main() -> None:
 
         code = forward(sys.argv[1:])  # a resident process runs it when one is up (blockyard resident)
         if code is None:
-            from ..ingest.scan import start_early
+            from ..ingest.early import start_early
 
             start_early(sys.argv[1:])  # load: hash the files while the libraries are imported
             code = run()

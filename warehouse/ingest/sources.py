@@ -1,4 +1,4 @@
-"""Reading result files: format detection, a byte-level first pass, and chunked readers.
+"""Reading result files in chunks, after the first pass (scan.py) has checked their bytes.
 
 Every reader yields `(table, lines)` pairs: a pyarrow Table with one column per source column and
 a numpy array with the line (or, for Parquet, the row) each record starts on, so that every error
@@ -20,7 +20,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InputError
-from .scan import FORMATS, SourceInfo, _line_of_offset, detect_format, first_pass  # noqa: F401  (the first pass lives there)
+from .scan import SourceInfo, line_of_offset
 
 CHUNK_ROWS = 100_000  # rows per chunk handed to the checks and the writer; memory stays flat
 FIRST_CHUNK_ROWS = 5_000  # the first chunk is smaller, so that the writer starts sooner (then they double)
@@ -67,7 +67,7 @@ def _check_text(data: bytes, decoder, shown: str, lines_before: int) -> None:
         decoder.decode(data)
     except UnicodeDecodeError as exc:
         at = max(exc.start - pending, 0)
-        line = lines_before + _line_of_offset(data, at)
+        line = lines_before + line_of_offset(data, at)
         bad = data[at:at + 4]
         raise InputError(
             f"{shown} line {line}: bytes {bad!r} are not UTF-8; re-save the file as UTF-8"
@@ -266,6 +266,19 @@ def read_delimited(info: SourceInfo, header: list[str], header_line: int,
             limit = min(CHUNK_ROWS, limit * 2)
     if buffer:
         yield flush()
+
+
+def block_for(info: SourceInfo, tried: int) -> int:
+    """The CSV reader's block for a file with a record longer than `tried` bytes: room for two
+    of its longest record; or, past the largest block, a refusal that names that record."""
+    length, line, column = longest_record(info)
+    if length > MAX_BLOCK_BYTES // 2 or tried >= MAX_BLOCK_BYTES:
+        header, _ = read_header(info)
+        name = header[column] if column < len(header) else f"{column + 1} (past the header's columns)"
+        raise InputError(
+            f"{info.name} line {line}, field {name}: the record is {length / 2**20:.0f} MB long; a record may "
+            f"hold at most {MAX_BLOCK_BYTES // 2 // 2**20} MB; shorten that field, or leave its column out of the file")
+    return min(max(2 * length + BLOCK_BYTES, 4 * tried), MAX_BLOCK_BYTES)
 
 
 def _text_chunks(info: SourceInfo, size: int = 1 << 22) -> Iterator[bytes]:

@@ -355,8 +355,11 @@ def performance_ratios(cells, sense: str = "min") -> pd.DataFrame:
     """Performance ratios after Dolan and More (2002): one row per instance, one column per treatment.
 
     The ratio is a treatment's value over the best value any treatment reached on the instance
-    (for sense "max": the best value over the treatment's value), so the best scores 1. Only
-    instances on which every treatment has a value take part; the values must be positive.
+    (for sense "max": the best value over the treatment's value), so the best scores 1. A row
+    without a value (every run of the treatment there failed) is a failure: its ratio is infinite,
+    never within any factor of the best, as in the paper; an instance no treatment solved is
+    infinite for all. Instances some treatment has no row for (never ran) are left out; the values
+    must be positive.
     """
     df = _frame(cells, ("treatment", "instance", "value"), "the performance profile")
     df["key"] = _instance_keys(df)
@@ -364,12 +367,15 @@ def performance_ratios(cells, sense: str = "min") -> pd.DataFrame:
         t, k = df.loc[df.duplicated(["treatment", "key"]), ["treatment", "key"]].iloc[0]
         raise InputError(f"several values for {t} on instance {k}; the performance profile needs one per treatment and instance")
     names = _order(df["treatment"])
+    failed = pd.to_numeric(df["value"], errors="coerce").isna()
+    df["value"] = pd.to_numeric(df["value"], errors="coerce").where(~failed, np.inf)  # not NaN: NaN is "never ran"
     wide = df.pivot(index="key", columns="treatment", values="value").reindex(columns=names)
     wide = wide.dropna(how="any")
     if wide.empty:
-        raise InputError("no instance has a value for every treatment; the performance profile compares treatments "
+        raise InputError("no instance was run by every treatment; the performance profile compares treatments "
                          "on common instances only")
-    bad = wide[(wide <= 0).any(axis=1)]
+    solved = wide.where(np.isfinite(wide))
+    bad = solved[(solved <= 0).any(axis=1)]
     if not bad.empty:
         key = bad.index[0]
         t = next(c for c in wide.columns if bad.loc[key, c] <= 0)
@@ -377,9 +383,10 @@ def performance_ratios(cells, sense: str = "min") -> pd.DataFrame:
                          f"({len(bad)} instances have a zero or negative value); a ratio to the best is undefined "
                          "there, so plot a positive metric (a time, a count) or use the block profile")
     if sense == "max":
-        ratios = wide.rdiv(wide.max(axis=1), axis=0)
+        ratios = solved.rdiv(solved.max(axis=1), axis=0)
     else:
-        ratios = wide.div(wide.min(axis=1), axis=0)
+        ratios = solved.div(solved.min(axis=1), axis=0)
+    ratios = ratios.fillna(np.inf)  # failures, and every treatment on an instance none solved
     ratios.index.name = "instance"
     ratios.columns.name = None
     return ratios
@@ -391,9 +398,13 @@ def profile_share(ratios: pd.DataFrame, tau: float) -> pd.Series:
 
 
 def profile_steps(ratios: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    """The step curve of one treatment: (tau, rho(tau)) at every tau where rho jumps, from tau = 1."""
+    """The step curve of one treatment: (tau, rho(tau)) at every tau where rho jumps, from tau = 1.
+    Failures (infinite ratios) never count, so the curve stays below 1 by their share."""
     r = np.sort(np.asarray(ratios, dtype=float))
     n = len(r)
+    r = r[np.isfinite(r)]
+    if not len(r):
+        return np.array([1.0]), np.array([0.0])
     taus, counts = np.unique(r, return_counts=True)
     shares = np.cumsum(counts) / n
     if taus[0] > 1.0:
@@ -404,7 +415,9 @@ def profile_steps(ratios: pd.Series) -> tuple[np.ndarray, np.ndarray]:
 def performance_profile(cells, sense: str = "min", metric: str = "value"):
     """Dolan and More's performance profile: for each treatment, rho(tau) against tau (log scale)."""
     ratios = performance_ratios(cells, sense)
-    top = float(ratios.to_numpy().max())
+    finite = ratios.to_numpy()[np.isfinite(ratios.to_numpy())]
+    top = float(finite.max()) if finite.size else 1.0
+    failures = int((~np.isfinite(ratios.to_numpy())).sum())
     right = max(top * 1.08, 1.05)
     fig, ax = _figure(7.2, 4.6)
     for i, t in enumerate(ratios.columns):
@@ -426,10 +439,49 @@ def performance_profile(cells, sense: str = "min", metric: str = "value"):
     ax.xaxis.set_major_locator(FixedLocator(ticks))
     ax.xaxis.set_minor_locator(NullLocator())
     ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:.4g}"))
+    failed = f"; {failures} failures count as never solved" if failures else ""
     _title(ax, f"{metric}: performance profile ({better_words(sense)})",
-           f"{len(ratios)} instances where every treatment has a value; at 1: the share where a treatment is best")
+           f"{len(ratios)} instances every treatment ran{failed}; at 1: the share where a treatment is best")
     _labels(ax, "within this factor of the best treatment on the instance (log scale)", "share of instances")
     _legend(ax, len(ratios.columns))
+    return fig
+
+
+# --- solved fraction over time (runtimes with a cutoff) ----------------------------------------
+
+def solved_fraction(per_treatment, cutoff: float, metric: str = "time", unit: str = ""):
+    """The Kaplan-Meier share of runs solved by each time, one step curve per treatment, up to the
+    cutoff (dashed line). `per_treatment` is the `per_treatment` list of a censored result: dicts
+    with treatment and curve ([time, solved fraction] at the curve's steps). A log time axis when
+    the solve times span more than two orders of magnitude."""
+    rows = list(per_treatment or [])
+    if not rows or any("treatment" not in r or "curve" not in r for r in rows):
+        raise InputError("the solved-fraction figure needs each treatment's curve (an analysis run with --cutoff)")
+    cutoff = float(cutoff)
+    times = [float(t) for r in rows for t, _ in r["curve"] if float(t) > 0]
+    log = bool(times) and cutoff / min(times) > 100
+    left = min(times) / 1.5 if log else 0.0
+    fig, ax = _figure(7.2, 4.6)
+    for i, r in enumerate(rows):
+        pts = [(max(float(t), left), float(f)) for t, f in r["curve"]]
+        xs = [left] + [t for t, _ in pts] + [cutoff]
+        ys = [0.0] + [f for _, f in pts] + [pts[-1][1] if pts else 0.0]
+        ax.step(xs, ys, where="post", color=PALETTE[i % len(PALETTE)], linestyle=DASHES[i % len(DASHES)],
+                linewidth=1.6, label=_t(f"{r['treatment']} ({r.get('solved', '?')} of {r.get('runs', '?')} solved)"))
+    ax.axvline(cutoff, color=NEUTRAL, linewidth=0.9, linestyle="--")
+    if log:
+        ax.set_xscale("log")
+        ax.set_xlim(left, cutoff * 1.05)
+    else:
+        ax.set_xlim(0.0, cutoff * 1.02)
+    ax.set_ylim(0.0, 1.03)
+    ax.xaxis.grid(True, color=GRID, linewidth=0.8)
+    u = f" ({unit})" if unit else ""
+    _title(ax, f"{metric}: share of runs solved by each time",
+           f"Kaplan-Meier; failed runs and runs at or past the cutoff ({cutoff:g}{' ' + unit if unit else ''}, "
+           "dashed) count as unsolved")
+    _labels(ax, f"{metric}{u}" + (" (log scale)" if log else ""), "share of runs solved")
+    _legend(ax, len(rows))
     return fig
 
 

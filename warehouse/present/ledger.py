@@ -139,6 +139,8 @@ def render_recheck(rc) -> str:
     rows = [[k, old.get(k, "-"), new.get(k, "-")] for k in keys]
     if rows:
         out.append(table(rows, ["", "stored", "today"], align=["left", "right", "right"]))
+    for m in getattr(rc, "moved", []):
+        out.append(f"moved     {m}")
     for c in rc.changes:
         out.append(f"changed   {c}")
     if rc.error:

@@ -168,6 +168,12 @@ def draw_figures(st) -> tuple[list[FigureItem], list[str]]:
                          f"Residuals{scale} against fitted values: a funnel means the spread grows with the level "
                          "(try a log transform); a curve means treatment and block effects do not add up.",
                          lambda: F.residuals_vs_fitted(F.analysis_scale(obs, tr), metric, order)))
+    cen = r.get("censored")
+    if isinstance(cen, dict) and cen.get("per_treatment"):
+        plan.append(("solved", "share of runs solved by each time",
+                     f"Kaplan-Meier share of each treatment's runs solved by each time, up to the cutoff "
+                     f"{_plain(cen.get('cutoff'))} (dashed); failed runs and runs at or past the cutoff count as unsolved.",
+                     lambda: F.solved_fraction(cen["per_treatment"], cen["cutoff"], metric, cen.get("unit") or "")))
     for key, title, caption, draw in plan:
         try:
             fig = draw()
@@ -257,7 +263,8 @@ def _blocktest_blocks(r: dict) -> list:
         ranks = {m["treatment"]: m.get("mean_rank") for m in ((r.get("friedman") or {}).get("mean_ranks") or [])}
         adjusted = any("adjusted_mean" in m for m in means)
         scale = tr_name if (tr_name := ((r.get("transform") or {}).get("name") or "none")) != "none" else ""
-        head = ["treatment", "blocks", f"mean ({scale} scale)" if scale else "mean"]
+        geo = any("geometric_mean" in m for m in means)  # log scale: the mean back on the original scale
+        head = ["treatment", "blocks", f"mean ({scale} scale)" if scale else "mean"] + (["geometric mean"] if geo else [])
         if adjusted:
             head = ["treatment", "blocks", "mean", "adjusted mean"]
         if ranks:
@@ -266,6 +273,7 @@ def _blocktest_blocks(r: dict) -> list:
         for m in means:
             row = [str(m.get("treatment")), _plain(m.get("n"))]
             row += [num(m.get("raw_mean")), num(m.get("adjusted_mean"))] if adjusted else [num(m.get("mean"))]
+            row += [num(m.get("geometric_mean"))] if geo and not adjusted else []
             if ranks:
                 row.append(num(ranks.get(m.get("treatment"))))
             rows.append(row)
@@ -285,8 +293,11 @@ def _blocktest_blocks(r: dict) -> list:
                 rows.append(["", f"after {chk['transform']}: Shapiro-Wilk p {_p_eq(chk.get('shapiro_p'))}",
                              _yes(chk.get("shapiro_p"), CHECK_LEVEL)])
                 break
-        rows.append(["equal variances", f"Fligner-Killeen p {_p_eq(p_of('fligner'))}", _yes(p_of("fligner"), CHECK_LEVEL)])
-        rows.append(["", f"Brown-Forsythe p {_p_eq(p_of('brown_forsythe'))}", _yes(p_of("brown_forsythe"), CHECK_LEVEL)])
+        if (d.get("fligner") or {}).get("note"):  # two treatments: the spread checks cannot tell anything
+            rows.append(["equal variances", "Fligner-Killeen, Brown-Forsythe: " + str(d["fligner"]["note"]), "-"])
+        else:
+            rows.append(["equal variances", f"Fligner-Killeen p {_p_eq(p_of('fligner'))}", _yes(p_of("fligner"), CHECK_LEVEL)])
+            rows.append(["", f"Brown-Forsythe p {_p_eq(p_of('brown_forsythe'))}", _yes(p_of("brown_forsythe"), CHECK_LEVEL)])
         rows.append(["additive", f"Tukey non-additivity p {_p_eq(p_of('nonadditivity'))}",
                      _yes(p_of("nonadditivity"), CHECK_LEVEL)])
         outl = d.get("outliers") or []
@@ -297,11 +308,10 @@ def _blocktest_blocks(r: dict) -> list:
         out.append(Para(f"a check holds when its p value is at least {CHECK_LEVEL:g} (common practice)", "note"))
     f, q = r.get("friedman"), r.get("quade")
     ranks = []
-    if isinstance(f, dict) and f.get("statistic") is not None:
-        ranks.append(f"Friedman chi2 = {num(f.get('statistic'), 3)} (ties corrected), p {_p_eq(f.get('p'))}; "
-                     f"Iman-Davenport F = {num(f.get('iman_davenport'), 3)}, p {_p_eq(f.get('p_f'))}")
-    if isinstance(q, dict) and q.get("statistic") is not None:
-        ranks.append(f"Quade F = {num(q.get('statistic'), 3)} on {q.get('df1')} and {q.get('df2')} df, p {_p_eq(q.get('p'))}")
+    if isinstance(f, dict) and isinstance(q, dict):
+        from .analysis import rank_test_lines
+
+        ranks = rank_test_lines(f, q)
     if ranks:
         out.append(Heading("rank tests", 3))
         out.append(Items(ranks))
@@ -313,10 +323,21 @@ def _blocktest_blocks(r: dict) -> list:
                 "conover": f"Conover after Friedman ({p.get('adjust')} adjusted)"}.get(p.get("method"), str(p.get("method")))
         out.append(Heading(f"all pairs: {name}", 3))
         conf = p.get("confidence") or 0.95
-        out.append(Table(["pair", "diff", f"{_pct(conf)} % interval", "p adj"],
-                         [[f"{x.get('first')} - {x.get('second')}", signed(x.get("diff")),
-                           f"{_lo(x.get('ci_low'))} .. {_hi(x.get('ci_high'))}", pval(x.get("p_adjusted"))]
-                          for x in p.get("pairs") or []], [False, True, True, True]))
+        ratios = isinstance(p.get("original_scale"), dict)  # a log-scale Tukey, also as ratios
+        rows = []
+        for x in p.get("pairs") or []:
+            row = [f"{x.get('first')} - {x.get('second')}", signed(x.get("diff")),
+                   f"{_lo(x.get('ci_low'))} .. {_hi(x.get('ci_high'))}"]
+            if ratios:
+                row += [num(x.get("ratio"), 3), f"{num(x.get('ratio_low'), 3)} .. {num(x.get('ratio_high'), 3)}",
+                        f"{signed(x.get('percent'), 2)} %"]
+            rows.append(row + [pval(x.get("p_adjusted"))])
+        head = ["pair", "diff", f"{_pct(conf)} % interval"]
+        head += ["ratio", f"ratio {_pct(conf)} % interval", "change"] if ratios else []
+        out.append(Table(head + ["p adj"], rows, [False] + [True] * len(head)))
+        if ratios:
+            out.append(Para(f"diff on the log scale; ratio = exp(diff), the {p['original_scale'].get('ratios')}; "
+                            "change = the ratio as a percent difference", "note"))
     return out
 
 
@@ -353,6 +374,75 @@ def _versus_blocks(r: dict) -> list:
     out.append(Para("diff = treatment - baseline, in the metric's units; change is relative to the baseline; wins, ties "
                     "and losses count blocks where the treatment did better than, the same as, or worse than the baseline",
                     "note"))
+    return out
+
+
+def _censored_blocks(cen: dict) -> list:
+    """The --cutoff part of a blocktest or versus: counts and Kaplan-Meier per treatment, hazard
+    ratios of solving against the reference, the stratified log-rank test."""
+    cut = f"{_plain(cen.get('cutoff'))}" + (f" {cen['unit']}" if cen.get("unit") else "")
+    out: list = [Heading("runtimes with a cutoff", 3),
+                 Para(f"{cen.get('metric') or 'time'} up to {cut}: failed runs and runs at or past {cut} count as "
+                      f"unsolved at {cut}; {cen.get('runs')} runs in {cen.get('blocks')} blocks")]
+    out += [Para(str(n), "note") for n in cen.get("notes") or []]
+    rows = [[str(p.get("treatment")), _plain(p.get("runs")), _plain(p.get("solved")), _plain(p.get("censored")),
+             f"{num(100 * (p.get('solved_fraction') or 0), 3)} %",
+             num(p.get("median_time")) if p.get("median_time") is not None else "not reached",
+             num(p.get("restricted_mean_time")), num(p.get("mean_time_solved_only"))]
+            for p in cen.get("per_treatment") or []]
+    out.append(Table(["treatment", "runs", "solved", "unsolved", "share solved", "median time", "restricted mean",
+                      "mean (solved runs only)"], rows, [False] + [True] * 7))
+    out.append(Para(f"median time: Kaplan-Meier, unsolved runs censored at {cut} (not reached: fewer than half "
+                    f"solve); restricted mean: the mean time with unsolved runs counted at {cut}", "note"))
+    if cen.get("cox"):
+        conf = cen.get("confidence") or 0.95
+        rows = []
+        for c in cen["cox"]:
+            ph = c.get("proportional_p")
+            rows.append([str(c.get("treatment")), num(c.get("hazard_ratio"), 3) if c.get("estimable") else "not estimable",
+                         f"{num(c.get('ci_low'), 3)} .. {num(c.get('ci_high'), 3)}" if c.get("estimable") else "-",
+                         pval(c.get("p_adjusted")), "-" if ph is None else f"{'yes' if ph >= 0.05 else 'no'} (p {_p_eq(ph)})"])
+        out.append(Para(f"hazard of solving against {cen.get('reference')}: Cox model stratified by block "
+                        f"(variance: {(cen.get('cox_method') or {}).get('variance', 'model-based')})"))
+        out.append(Table(["treatment", "hazard ratio", f"{_pct(conf)} % interval", "p adj", "proportional"], rows,
+                         [False, True, True, True, False]))
+        out.append(Para("a hazard ratio above 1 solves sooner than the reference; p adjusted by Holm; proportional: "
+                        "the ratio holds over time (Schoenfeld residuals)", "note"))
+    lr = cen.get("logrank") or {}
+    if lr.get("chi2") is not None:
+        out.append(Para(f"log-rank test, stratified by block: chi2 = {num(lr['chi2'], 4)} on {lr.get('df')} df, "
+                        f"p {_p_eq(lr.get('p'))}"))
+    return out
+
+
+def _failures_blocks(f: dict) -> list:
+    """The failures part of a blocktest or versus: rates per treatment, the test of whether
+    solving depends on the treatment, the follow-ups against the baseline."""
+    from ..analyze.failures import share_text
+    from .analysis import failure_test_line
+
+    out: list = [Heading("failures", 3)]
+    n = f.get("instances") or 0
+    if not n:
+        return out + [Para("not compared: no instance was run by every treatment")]
+    if not any(p.get("failed") for p in f.get("per_treatment") or []):
+        return out + [Para(f"none: every run on the {n} instances every treatment ran succeeded")]
+    left = f"; {f['left_out']} instances not run by every treatment were left out" if f.get("left_out") else ""
+    out.append(Para(f"on the {n} instances every treatment ran{left}; {f.get('rule')}"))
+    out.append(Table(["treatment", "runs", "failed", "share failed", "unsolved instances"],
+                     [[str(p.get("treatment")), _plain(p.get("runs")), _plain(p.get("failed")),
+                       share_text(p.get("failed_share")), f"{p.get('unsolved')} of {p.get('instances')}"]
+                      for p in f.get("per_treatment") or []], [False, True, True, True, True]))
+    if isinstance(f.get("test"), dict):
+        out.append(Para(failure_test_line(f["test"])))
+    follow = f.get("follow_ups") or []
+    if follow:
+        out.append(Para(f"against {f.get('baseline')}: McNemar per treatment (exact below 25 instances solved by one "
+                        "only), Holm adjusted"))
+        out.append(Table(["treatment", "unsolved by it only", "unsolved by the baseline only", "p adj"],
+                         [[str(x.get("treatment")), _plain(x.get("unsolved_only_by_treatment")),
+                           _plain(x.get("unsolved_only_by_baseline")), pval(x.get("p_adjusted"))] for x in follow],
+                         [False, True, True, True]))
     return out
 
 
@@ -470,8 +560,13 @@ def content(data: ReportData) -> list:
         blocks += _versus_blocks(r)
     else:
         blocks += _plan_blocks(r)
+    if isinstance(r.get("failures"), dict):
+        blocks += _failures_blocks(r["failures"])
+    cen = r.get("censored") if isinstance(r.get("censored"), dict) else None
+    if cen:
+        blocks += _censored_blocks(cen)
     blocks.append(Heading("cautions"))
-    warnings = [str(w) for w in r.get("warnings") or []]
+    warnings = [str(w) for w in (r.get("warnings") or []) + ((cen or {}).get("warnings") or [])]
     blocks.append(Items(warnings) if warnings else Para("no cautions were recorded with this analysis"))
     if data.figures or data.notes:
         blocks.append(Heading("figures"))

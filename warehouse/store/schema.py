@@ -166,7 +166,7 @@ runs = Table(
     # conflicts). SQLite holds none (revision 0007): building it was a fifth of a large load, and
     # a load there proves its runs new from the cell summaries and a hash of its own keys instead,
     # falling back to a unique index on the one campaign's keys for the length of the load
-    # (ingest/loader.py: _StoredCells, _RunHashes, _campaign_key).
+    # (ingest/runkey.py: StoredCells, RunHashes, campaign_key).
     # Live runs only (revision 0008): a file reloaded into its own campaign (`load --again`)
     # goes in beside its retracted runs, under the same keys; the loads keep other retracted
     # runs' keys themselves.

@@ -8,7 +8,7 @@ import time
 import pytest
 
 from warehouse.errors import InputError
-from warehouse.ingest import scan
+from warehouse.ingest import early, scan
 
 
 def _csv(path, rows: int, extra: str = ""):
@@ -23,32 +23,32 @@ def _fields(info):
 
 @pytest.fixture(autouse=True)
 def _no_leftovers():
-    scan._EARLY.clear()
-    scan._EARLY_READS.clear()
+    early._EARLY.clear()
+    early._EARLY_READS.clear()
     yield
-    scan._EARLY.clear()
-    scan._EARLY_READS.clear()
+    early._EARLY.clear()
+    early._EARLY_READS.clear()
 
 
 def test_an_early_pass_gives_what_a_pass_in_place_gives(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     _csv(tmp_path / "a.csv", 500)
-    scan.start_early(["-w", "x.db", "load", "a.csv", "--campaign", "c", "--layout", "l.toml"])
-    assert list(scan._EARLY) == [str((tmp_path / "a.csv").resolve())]
-    early = scan.first_pass_of(tmp_path / "a.csv", "a.csv")
-    assert _fields(early) == _fields(scan.first_pass(tmp_path / "a.csv", "a.csv"))
-    assert not scan._EARLY  # taken once
+    early.start_early(["-w", "x.db", "load", "a.csv", "--campaign", "c", "--layout", "l.toml"])
+    assert list(early._EARLY) == [str((tmp_path / "a.csv").resolve())]
+    got = early.first_pass_of(tmp_path / "a.csv", "a.csv")
+    assert _fields(got) == _fields(scan.first_pass(tmp_path / "a.csv", "a.csv"))
+    assert not early._EARLY  # taken once
 
 
 def test_a_file_changed_after_the_early_pass_is_read_again(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     f = _csv(tmp_path / "a.csv", 500)
-    scan.start_early(["load", "a.csv", "--campaign", "c"])
-    scan._EARLY[str(f.resolve())].done.wait()
+    early.start_early(["load", "a.csv", "--campaign", "c"])
+    early._EARLY[str(f.resolve())].done.wait()
     _csv(f, 501)  # another row: a new size and time
     later = time.time() + 5
     os.utime(f, (later, later))
-    got = scan.first_pass_of(f, "a.csv")
+    got = early.first_pass_of(f, "a.csv")
     assert _fields(got) == _fields(scan.first_pass(f, "a.csv"))
     assert got.lines == 502
 
@@ -59,11 +59,11 @@ def test_a_refusal_found_early_is_the_same_line(tmp_path, monkeypatch):
     f.write_bytes(b"solver,group,instance,pallets\nstacker,g1,i1,3\nstacker,g1,i\x002,4\n")
     with pytest.raises(InputError) as in_place:
         scan.first_pass(f, "bad.csv")
-    scan.start_early(["load", "bad.csv", "--campaign", "c"])
-    with pytest.raises(InputError) as early:
-        scan.first_pass_of(f, "bad.csv")
-    assert str(early.value) == str(in_place.value)
-    assert "bad.csv line 3" in str(early.value) and "NUL" in str(early.value)
+    early.start_early(["load", "bad.csv", "--campaign", "c"])
+    with pytest.raises(InputError) as found:
+        early.first_pass_of(f, "bad.csv")
+    assert str(found.value) == str(in_place.value)
+    assert "bad.csv line 3" in str(found.value) and "NUL" in str(found.value)
 
 
 @pytest.mark.parametrize("argv", [
@@ -73,8 +73,8 @@ def test_no_early_pass_for_other_commands_or_other_files(tmp_path, monkeypatch, 
     monkeypatch.chdir(tmp_path)
     _csv(tmp_path / "a.csv", 5)
     (tmp_path / "l.toml").write_text("", encoding="utf-8")
-    scan.start_early(argv)
-    assert not scan._EARLY
+    early.start_early(argv)
+    assert not early._EARLY
 
 
 def test_the_command_line_loads_and_refuses_as_before(tmp_path):
@@ -99,7 +99,7 @@ def _load_both_ways(tmp_path, monkeypatch, location, data: bytes, name: str = "a
     """The same file loaded with the early parse into `location`, and without it into a second
     warehouse: (result of each, whether the early parse was taken)."""
     from warehouse.front.cli import run
-    from warehouse.ingest import loader, sources
+    from warehouse.ingest import sources
 
     import io
 
@@ -109,21 +109,21 @@ def _load_both_ways(tmp_path, monkeypatch, location, data: bytes, name: str = "a
     monkeypatch.chdir(tmp_path)
     (tmp_path / name).write_bytes(data)
     taken = []
-    real = loader.take_early_read
+    real = early.take_early_read
 
     def spy(info):
         got = real(info)
         taken.append(got is not None)
         return got
 
-    monkeypatch.setattr(loader, "take_early_read", spy)
+    monkeypatch.setattr(early, "take_early_read", spy)
     out = []
-    for where, early in ((location, True), (str(tmp_path / "plain.db"), False)):
-        if not early:
+    for where, started in ((location, True), (str(tmp_path / "plain.db"), False)):
+        if not started:
             assert run(["init", "-w", where], out=io.StringIO(), err=io.StringIO()) == 0
         argv = ["-w", where, "load", name, "--campaign", "c", "--json"]
-        if early:
-            scan.start_early(argv)
+        if started:
+            early.start_early(argv)
         o, e = io.StringIO(), io.StringIO()
         code = run(argv, out=o, err=e)
         out.append((code, o.getvalue(), e.getvalue()))

@@ -1,0 +1,136 @@
+"""The speed devices wrapped around a load: each changes how fast a file loads, never what it
+stores. Each one's docstring gives the measurement that keeps it (interleaved A/B rounds of
+benchmarks/ingest.py; the story in docs/performance.md). The page cache and journal of a large
+first load are store/bulk.py's.
+"""
+from __future__ import annotations
+
+from .cellsums import put_unless_stopped
+
+
+class Prefetch:
+    """Reads the next chunk in a helper thread while this one is written.
+
+    Only for the readers whose parsing runs in pyarrow without Python's global lock (CSV, TSV,
+    Parquet); the helper stops as soon as the load does, on success or failure.
+    """
+
+    def __init__(self, chunks, depth: int = 1):
+        import queue
+        import threading
+
+        self._q: queue.Queue = queue.Queue(maxsize=depth)
+        self._stop = threading.Event()
+        self._chunks = chunks
+        self._thread = threading.Thread(target=self._run, name="blockyard-read", daemon=True)
+        self._thread.start()
+
+    def _put(self, item) -> bool:
+        return put_unless_stopped(self._q, item, self._stop, 0.1)
+
+    def _run(self) -> None:
+        try:
+            for chunk in self._chunks:
+                if not self._put(("chunk", chunk)):
+                    return
+            self._put(("end", None))
+        except BaseException as exc:  # noqa: BLE001 - handed to the loading thread
+            self._put(("error", exc))
+        finally:
+            close = getattr(self._chunks, "close", None)
+            if close is not None and self._stop.is_set():
+                try:
+                    close()
+                except Exception:  # noqa: BLE001
+                    pass
+
+    def close(self) -> None:
+        """Stop the helper and wait for it (also when the chunks were never asked for)."""
+        self._stop.set()
+        self._thread.join()
+
+    def __iter__(self):
+        try:
+            while True:
+                kind, item = self._q.get()
+                if kind == "chunk":
+                    yield item
+                elif kind == "end":
+                    return
+                else:
+                    raise item
+        finally:
+            self._stop.set()
+            self._thread.join()
+
+
+class ForeignKeysOff:
+    """SQLite only: skip the per-row foreign key lookups while the runs go in.
+
+    Every id written comes from the dimension tables in the same transaction, so the lookups
+    would only repeat what the loader knows. The pragma is set outside the transaction (SQLite
+    ignores it inside one) and always set back before the connection goes back to the pool.
+    """
+
+    def __init__(self, conn, active: bool):
+        self.raw = conn.connection.driver_connection if active else None
+
+    def __enter__(self):
+        if self.raw is not None:
+            self.raw.execute("PRAGMA foreign_keys = OFF")
+        return self
+
+    def __exit__(self, *exc):
+        if self.raw is not None:
+            self.raw.execute("PRAGMA foreign_keys = ON")
+        return False
+
+
+class CollectorPaused:
+    """Python's cycle collector paused while a file loads. A load makes millions of short-lived
+    lists (the rows handed to the driver) and no reference cycles of its own; each few hundred
+    lists would start a collection that walks the objects the libraries keep (0.1 to 0.2 s of
+    a 1M-run load's 3.6 s, in interleaved pairs). The collector runs again, as before, after."""
+
+    def __enter__(self):
+        import gc
+
+        self.was = gc.isenabled()
+        gc.disable()
+        return self
+
+    def __exit__(self, *exc):
+        import gc
+
+        if self.was:
+            gc.enable()
+        return False
+
+
+class PandasNotForArrow:
+    """While a file loads: pyarrow's first conversion of a Python value imports pandas (0.2 s of a
+    command's start) only to learn whether the value is a pandas object; the loader hands it
+    numpy arrays and plain values only. The import fails fast instead, and pyarrow goes on
+    without pandas. Only in a process that has not imported pandas yet (a `blockyard load`), and
+    taken out as soon as the load returns, so that nothing else is kept from pandas.
+    """
+
+    def find_spec(self, name, path=None, target=None):
+        if name == "pandas" or name.startswith("pandas."):
+            raise ImportError("pandas is not imported while a file loads")
+        return None
+
+    def __enter__(self):
+        import sys
+
+        self.active = "pandas" not in sys.modules
+        if self.active:
+            sys.meta_path.insert(0, self)
+        return self
+
+    def __exit__(self, *exc):
+        import sys
+
+        if self.active and self in sys.meta_path:
+            sys.meta_path.remove(self)
+        return False
