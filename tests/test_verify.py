@@ -129,3 +129,25 @@ def test_a_damaged_file_is_reported(two_campaigns, cli, location):
     assert r.code in (2, 3), r
     assert r.code == 2 or "integrity" in r.out and "holds          the database file" not in r.out
     assert len(r.err.strip().splitlines()) <= 1
+
+
+@pytest.mark.skipif(ON_POSTGRES, reason="a damaged file is a SQLite matter (PostgreSQL checks its own pages)")
+def test_a_load_refuses_a_damaged_file_and_names_verify(two_campaigns, cli, location, tmp_path):
+    import os
+    import sqlite3
+
+    con = sqlite3.connect(location)
+    con.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+    page = con.execute("PRAGMA page_size").fetchone()[0]
+    # the page of the runs table's root, overwritten: its b-tree no longer holds together
+    root = con.execute("SELECT rootpage FROM sqlite_master WHERE name = 'runs'").fetchone()[0]
+    con.close()
+    with open(location, "r+b") as fh:
+        fh.seek((root - 1) * page)
+        fh.write(os.urandom(page))
+    more = tmp_path / "more.csv"
+    more.write_text("solver,version,family,group,instance,seed,pallets\nstk,9,f1,g1,i1,1,3\n")
+    r = cli("load", str(more), "--campaign", "c3")
+    assert r.code == 2, r
+    assert "fails SQLite's quick check" in r.err and "blockyard verify" in r.err
+    assert len(r.err.strip().splitlines()) == 1

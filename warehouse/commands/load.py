@@ -69,6 +69,7 @@ def cmd_load(session: Session, a) -> LoadResult:
             named = ", ".join(a.files[:3]) + (f" and {len(a.files) - 3} more" if len(a.files) > 3 else "")
             raise StorageError(f"cannot load {named} into warehouse {wh.display}: it is read-only here "
                                f"({wh.read_only}); nothing was stored")
+        _refuse_damaged(wh)
         return LoadResult(_load_each(wh, a, layout), a.dry_run)
     if a.dry_run:  # stores nothing, so makes no warehouse either: checks against an empty one aside
         import tempfile
@@ -94,6 +95,30 @@ def cmd_load(session: Session, a) -> LoadResult:
         else:
             raise
     return LoadResult(_load_each(session.warehouse(), a, layout), a.dry_run, created=created)
+
+
+QUICK_CHECK_MAX_BYTES = 1 << 30  # SQLite's quick check reads every page: about 0.1 s per 100 MB from cache
+
+
+def _refuse_damaged(wh) -> None:
+    """A load adds to a SQLite file only when SQLite's own quick check passes: runs written into a
+    damaged file could be lost with it, and its other pages may already be wrong. Files over 1 GiB
+    skip the check (it would cost seconds on every load; `blockyard verify` runs the full one)."""
+    if wh.path is None or not wh.path.exists() or wh.path.stat().st_size > QUICK_CHECK_MAX_BYTES:
+        return
+    import sqlite3
+
+    try:
+        con = sqlite3.connect(f"file:{wh.path}?mode=ro", uri=True)
+        try:
+            found = [r[0] for r in con.execute("PRAGMA quick_check(3)")]
+        finally:
+            con.close()
+    except sqlite3.DatabaseError as exc:
+        found = [str(exc)]
+    if found != ["ok"]:
+        raise StorageError(f"warehouse {wh.display} fails SQLite's quick check ({'; '.join(found)[:200]}); nothing "
+                           "was loaded; run blockyard verify, and restore the file from a backup")
 
 
 def _missing_sqlite_warehouse(session: Session) -> str | None:
