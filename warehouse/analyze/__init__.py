@@ -14,10 +14,12 @@ designs   incomplete and generalized block designs
 baseline  many-to-one comparisons against a baseline (Dunnett, paired t, Wilcoxon), effect sizes,
           win / tie / loss counts
 pairs     all-pairs comparisons (Tukey on the block model, Nemenyi and Conover after Friedman)
+failures  failure rates: solved / not solved per instance, Cochran's Q, McNemar follow-ups
+censored  runtimes with a cutoff as censored data: Kaplan-Meier, stratified Cox, stratified log-rank
 planning  power and number of blocks needed
 
 Submodules are imported on demand so that ``import warehouse.analyze`` stays cheap.
 """
 from __future__ import annotations
 
-__all__ = ["tidy", "anova", "ranks", "designs", "baseline", "pairs", "planning"]
+__all__ = ["tidy", "anova", "ranks", "designs", "baseline", "pairs", "failures", "censored", "planning"]

@@ -56,7 +56,7 @@ def _warm_up() -> None:
     from ..commands import catalog  # noqa: F401
     from .. import analyses, ledger  # noqa: F401
     from ..collapse import coverage, observations  # noqa: F401
-    from ..analyze import anova, baseline, designs, pairs, planning, ranks  # noqa: F401
+    from ..analyze import anova, baseline, censored, designs, failures, pairs, planning, ranks  # noqa: F401
     from ..present import analysis, ledger as ledger_text, text  # noqa: F401
     import tabulate  # noqa: F401
 
