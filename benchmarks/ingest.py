@@ -237,13 +237,14 @@ def a_b(src: Path, work: Path, other: Path, rounds: int) -> None:
         ref, _ = time_reference(src, work, "n")
         order = [("a", here), ("b", other)] if k % 2 == 0 else [("b", other), ("a", here)]
         took = {tag: time_load(src, work, tag, tree) for tag, tree in order}
-        (wa, _, ca), (wb, _, cb) = took["a"], took["b"]
-        seen.append((wa / ref, wb / ref, wb / wa, cb / ca))
+        (wa, pa, ca), (wb, pb, cb) = took["a"], took["b"]
+        seen.append((wa / ref, wb / ref, wb / wa, cb / ca, pa, pb))
         print(f"round {k + 1:<3} this {wa:5.2f} s  other {wb:5.2f} s  reference {ref:5.2f} s   this/ref {wa / ref:.2f}  "
-              f"other/ref {wb / ref:.2f}  other/this {wb / wa:.3f}  processor {ca:5.2f} / {cb:5.2f} s: {cb / ca:.3f}")
-    med = [statistics.median(r[i] for r in seen) for i in range(4)]
+              f"other/ref {wb / ref:.2f}  other/this {wb / wa:.3f}  processor {ca:5.2f} / {cb:5.2f} s: {cb / ca:.3f}  "
+              f"peak {pa:.0f} / {pb:.0f} MiB")
+    med = [statistics.median(r[i] for r in seen) for i in range(6)]
     print(f"median     this/ref {med[0]:.2f}  other/ref {med[1]:.2f}  other/this {med[2]:.3f}  "
-          f"processor other/this {med[3]:.3f}  (other: {other})")
+          f"processor other/this {med[3]:.3f}  peak {med[4]:.0f} / {med[5]:.0f} MiB  (other: {other})")
 
 
 def time_reference(csv_path: Path, work: Path, tag: str) -> tuple[float, float]:

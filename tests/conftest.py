@@ -112,3 +112,18 @@ def run_counts(location: str) -> dict:
             return counts(c)
     finally:
         w.close()
+
+
+def load_rows(cli, tmp_path, runs: list[dict], header: list[str], layout: str, name: str, campaign: str) -> None:
+    """Write runs as a CSV file with a layout beside it and load them through the command line."""
+    import csv
+
+    path = tmp_path / name
+    with open(path, "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=header)
+        w.writeheader()
+        w.writerows(runs)
+    lay = tmp_path / "layout.toml"
+    lay.write_text(layout)
+    r = cli("load", str(path), "--campaign", campaign, "--layout", str(lay))
+    assert r.code == 0, r

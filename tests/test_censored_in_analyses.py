@@ -6,12 +6,13 @@ log-rank test): an implementation independent of Blockyard's statsmodels one.
 """
 from __future__ import annotations
 
-import csv
 import math
 import random
 
 import pandas as pd
 import pytest
+
+from conftest import load_rows
 
 lifelines = pytest.importorskip("lifelines")
 # lifelines calls pandas in ways pandas 3 announces it will drop: its noise, not ours
@@ -51,15 +52,7 @@ def make_runs(seed: int = 3, families=("mixed-sku", "oversize"), groups=3, insta
 
 
 def load(cli, tmp_path, runs, name="runs.csv", campaign="oct"):
-    path = tmp_path / name
-    with open(path, "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=HEADER)
-        w.writeheader()
-        w.writerows(runs)
-    layout = tmp_path / "layout.toml"
-    layout.write_text(LAYOUT)
-    r = cli("load", str(path), "--campaign", campaign, "--layout", str(layout))
-    assert r.code == 0, r
+    load_rows(cli, tmp_path, runs, HEADER, LAYOUT, name, campaign)
 
 
 def by_hand(runs: list[dict], cutoff: float = CUTOFF) -> pd.DataFrame:

@@ -7,7 +7,6 @@ The runs are made up inline. The expected numbers come from the same rows counte
 """
 from __future__ import annotations
 
-import csv
 import math
 import random
 
@@ -17,6 +16,8 @@ import pytest
 from scipy import stats
 from statsmodels.stats.contingency_tables import cochrans_q, mcnemar
 from statsmodels.stats.multitest import multipletests
+
+from conftest import load_rows
 
 HEADER = ["solver", "version", "family", "group", "instance", "seed", "status", "pallets", "seconds", "bins"]
 LAYOUT = """
@@ -55,15 +56,7 @@ def make_runs(seed: int = 5, fail: dict | None = None, versions=EFFECT, groups=4
 
 
 def load(cli, tmp_path, runs, name="runs.csv", campaign="c1"):
-    path = tmp_path / name
-    with open(path, "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=HEADER)
-        w.writeheader()
-        w.writerows(runs)
-    layout = tmp_path / "layout.toml"
-    layout.write_text(LAYOUT)
-    r = cli("load", str(path), "--campaign", campaign, "--layout", str(layout))
-    assert r.code == 0, r
+    load_rows(cli, tmp_path, runs, HEADER, LAYOUT, name, campaign)
 
 
 def by_hand(runs) -> tuple[pd.DataFrame, pd.DataFrame]:

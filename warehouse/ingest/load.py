@@ -159,7 +159,7 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
         fl.known_metrics = {r[0] for r in conn.execute(select(S.metrics.c.name))}
     # The reading starts now, in a helper thread where it can, while the write transaction opens
     chunks = checked(fl, _readers(fl))
-    if info.fmt != "jsonl":  # pyarrow parses without Python's lock: read ahead in a helper thread
+    if info.fmt != "jsonl":  # (the JSON Lines parse holds Python's lock: nothing to overlap)
         chunks = Prefetch(chunks)
     summing = Summing()
     try:
