@@ -194,22 +194,22 @@ def test_a_renewal_can_itself_be_renewed(campaign, cli):
 
 
 def test_a_failed_renewal_leaves_no_half_moved_claims(campaign, cli, wh, monkeypatch):
-    from warehouse import ledger
+    from warehouse.ledger import rechecking as ledger_recheck
 
     old = _blocktest(cli)
     for text in ("fewer pallets with 1.6", "on every group"):
         _json(cli, "keep", text, "--analysis", str(old))
     _retract_some(cli)
     analyses_before, claims_before = _rows(wh, S.analyses), _rows(wh, S.claims)
-    move = ledger._move_claims
+    move = ledger_recheck._move_claims
 
     def move_then_fail(conn, old_id, new_id):
         move(conn, old_id, new_id)  # the claims have moved, the analysis is written ...
         raise OSError("the disk went away")  # ... and then the work fails before the commit
 
-    monkeypatch.setattr(ledger, "_move_claims", move_then_fail)
+    monkeypatch.setattr(ledger_recheck, "_move_claims", move_then_fail)
     with pytest.raises(OSError):
-        ledger.recheck(wh, old, renew=True)
+        ledger_recheck.recheck(wh, old, renew=True)
     assert _rows(wh, S.analyses) == analyses_before
     assert _rows(wh, S.claims) == claims_before
 
