@@ -24,7 +24,7 @@ import pytest
 
 from warehouse.errors import InputError
 from warehouse.present import figures as F
-from warehouse.present.report import md
+from warehouse.present.pages import md
 
 # The PNG signature: the first eight bytes of every PNG file (PNG specification, W3C / ISO/IEC 15948).
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"

@@ -242,7 +242,7 @@ def _write_atomic(path: str, data: bytes) -> None:
 def export_report(session: Session, analysis_id: int, path: str, now: float | None = None) -> ExportResult:
     """Write stored analysis `analysis_id` as an HTML or Markdown report to `path`."""
     from ..errors import BlockyardError
-    from ..present import report as R
+    from ..present import pages, report as R
 
     ext = os.path.splitext(path)[1].lower()
     if ext not in REPORT_FORMATS:
@@ -262,7 +262,7 @@ def export_report(session: Session, analysis_id: int, path: str, now: float | No
     data = R.ReportData(st, imports, time.time() if now is None else now, figs, notes + fig_notes)
     fmt = REPORT_FORMATS[ext]
     if fmt == "html":
-        _write_atomic(path, R.to_html(data).encode("utf-8"))
+        _write_atomic(path, pages.to_html(data).encode("utf-8"))
     else:
         stem = os.path.splitext(os.path.basename(path))[0]
         folder_name = f"{stem}_files"
@@ -273,7 +273,7 @@ def export_report(session: Session, analysis_id: int, path: str, now: float | No
             name = f"analysis-{st.id}-{f.key}.png"
             _write_atomic(os.path.join(target, name), f.png)
             links[f.key] = f"{folder_name}/{name}"
-        _write_atomic(path, R.to_markdown(data, links).encode("utf-8"))
+        _write_atomic(path, pages.to_markdown(data, links).encode("utf-8"))
     return ExportResult(st.id, path, fmt, len(figs), st.state, data.notes)
 
 
