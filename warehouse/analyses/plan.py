@@ -6,10 +6,11 @@ from dataclasses import dataclass, field
 
 
 from ..errors import DesignError, InputError
+from ..shown import Shown
 
 
 @dataclass
-class PlanResult:
+class PlanResult(Shown):
     plan: object
     kind_of_plan: str
     source: dict = field(default_factory=dict)

@@ -10,10 +10,11 @@ from ..errors import DesignError, InputError
 from ..select.slices import Slice
 from ..collapse.settings import Collapse
 from .common import censored_runtimes, collapse_doc, dedupe, failure_part, numeric_warnings, read_cutoff
+from ..shown import Shown
 
 
 @dataclass
-class VersusResult:
+class VersusResult(Shown):
     collapsed: Collapsed
     baseline: str
     stats: object  # BaselineResult

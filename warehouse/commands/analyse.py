@@ -7,6 +7,7 @@ from dataclasses import dataclass, replace
 from .registry import add_json, args, command
 from ..collapse.settings import Collapse
 from .session import Session
+from ..shown import Shown
 
 
 class _Words(list):
@@ -71,7 +72,7 @@ def _peek_args(p):
 
 
 @dataclass
-class PeekResult:
+class PeekResult(Shown):
     cov: object
     limit: int | None = None
 

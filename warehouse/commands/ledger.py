@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from .registry import Done, add_json, args, command
 from ..errors import InputError
 from .session import Session
+from ..shown import Shown
 
 
 def _keep_args(p):
@@ -39,7 +40,7 @@ def _recall_args(p):
 
 
 @dataclass
-class RecallList:
+class RecallList(Shown):
     items: list
 
     def to_dict(self) -> dict:
@@ -54,7 +55,7 @@ class RecallList:
 
 
 @dataclass
-class RecallOne:
+class RecallOne(Shown):
     item: object
 
     def to_dict(self) -> dict:
@@ -90,7 +91,7 @@ def _recheck_args(p):
 
 
 @dataclass
-class RecheckResult:
+class RecheckResult(Shown):
     rc: object
 
     def to_dict(self) -> dict:

@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from ..errors import InputError, StorageError
 from .registry import add_json, args, command
 from .session import Session
+from ..shown import Shown
 
 
 # --- load --------------------------------------------------------------------------------------
@@ -24,7 +25,7 @@ def _load_args(p):
 
 
 @dataclass
-class LoadResult:
+class LoadResult(Shown):
     reports: list
     dry_run: bool
     created: str | None = None  # the warehouse this load created (a SQLite path that held no file)

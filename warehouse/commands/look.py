@@ -5,6 +5,7 @@ from dataclasses import dataclass
 
 from .registry import add_json, args, command
 from .session import Session
+from ..shown import Shown
 
 
 # --- inventory ---------------------------------------------------------------------------------
@@ -27,7 +28,7 @@ class _Listings(list):
 
 
 @dataclass
-class InventoryResult:
+class InventoryResult(Shown):
     inv: object
 
     def to_dict(self) -> dict:

@@ -10,6 +10,7 @@ from dataclasses import dataclass, field
 from typing import Callable
 
 from .session import Session
+from ..shown import Shown
 
 
 @dataclass
@@ -45,7 +46,7 @@ def args(configure):
 
 
 @dataclass
-class Done:
+class Done(Shown):
     """A plain result: a message and a JSON document."""
 
     text: str

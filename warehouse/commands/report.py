@@ -10,6 +10,7 @@ from .registry import add_json, args, command
 from ..errors import InputError
 from ..collapse.settings import Collapse
 from .session import Session
+from ..shown import Shown
 
 KINDS = ("profile", "qq", "residuals", "differences", "performance", "solved")
 REPORT_FORMATS = {".html": "html", ".md": "markdown"}
@@ -69,7 +70,7 @@ def _plot_args(p):
 
 
 @dataclass
-class PlotResult:
+class PlotResult(Shown):
     kind: str
     file: str
     analysis_id: int | None
@@ -110,11 +111,21 @@ def _draw(kind: str, obs, cells_fn, comparisons, sense: str, metric: str, order,
          "blockyard plot differences --analysis 2 --to differences.png")
 @args(_plot_args)
 def cmd_plot(session: Session, a) -> PlotResult:
-    import pandas as pd
-
     from ..present import figures as F
 
     F.figure_format(a.to)  # refuse a wrong extension before any work
+    fig, aid, notes = figure_of(session, a)
+    F.save(fig, a.to)
+    return PlotResult(a.kind, a.to, aid, notes)
+
+
+def figure_of(session: Session, a):
+    """The figure `plot` draws, with the analysis it drew (or None) and its notes: what the
+    command writes to a file and a notebook shows (`Yard.plot`)."""
+    import pandas as pd
+
+    if a.kind not in KINDS:
+        raise InputError(f"plot {a.kind}: choose one of {', '.join(KINDS)}")
     cutoff = getattr(a, "cutoff", None)
     explicit = getattr(a, "slice", None) is not None or getattr(a, "metric", None) is not None or cutoff is not None
     aid = _analysis_id(a.analysis, "--analysis")
@@ -155,11 +166,10 @@ def cmd_plot(session: Session, a) -> PlotResult:
         transform = r.get("transform") if st.kind == "blocktest" else None
         fig = _draw(a.kind, pd.DataFrame(st.observations), cells, r.get("comparisons"), sense, st.metric or "value",
                     r.get("treatment_names"), transform, r)
-    F.save(fig, a.to)
-    return PlotResult(a.kind, a.to, aid, notes)
+    return fig, aid, notes
 
 
-def _plot_solved(session: Session, a, aid: int | None, cutoff) -> PlotResult:
+def _plot_solved(session: Session, a, aid: int | None, cutoff):
     """The solved-fraction figure: from a stored analysis's censored part, or fresh with --cutoff."""
     from ..present import figures as F
 
@@ -184,8 +194,7 @@ def _plot_solved(session: Session, a, aid: int | None, cutoff) -> PlotResult:
         if note:
             notes.append(note)
     fig = F.solved_fraction(doc["per_treatment"], doc["cutoff"], doc.get("metric") or "time", doc.get("unit") or "")
-    F.save(fig, a.to)
-    return PlotResult(a.kind, a.to, aid, notes)
+    return fig, aid, notes
 
 
 # --- export ------------------------------------------------------------------------------------
@@ -198,7 +207,7 @@ def _export_args(p):
 
 
 @dataclass
-class ExportResult:
+class ExportResult(Shown):
     analysis_id: int
     file: str
     format: str

@@ -5,6 +5,7 @@ from dataclasses import dataclass, field
 
 from .registry import add_json, args, command
 from .session import Session
+from ..shown import Shown
 
 WRONG = 3  # the exit status when something does not hold (0 when all holds, 2 for a user's mistake)
 
@@ -28,7 +29,7 @@ def ledger_check(conn):
 
 
 @dataclass
-class VerifyResult:
+class VerifyResult(Shown):
     where: str
     checks: list
     repaired: int | None = None  # imports whose summaries were rebuilt (--repair), or None

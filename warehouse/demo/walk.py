@@ -18,8 +18,10 @@ STEPS = table(cmd_load, cmd_inventory, cmd_peek, cmd_blocktest, cmd_versus, cmd_
 
 
 def _step(session: Session, name: str, **kw):
+    from ..commands.yard import Yard
+
     ns = argparse.Namespace(json=False, **kw)
-    return STEPS[name].run(session, ns)
+    return Yard(session=session).call(STEPS[name], ns)
 
 
 def run_demo(folder: str, json_mode: bool = False) -> Done:

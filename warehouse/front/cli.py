@@ -69,7 +69,7 @@ def commands() -> dict:
 
 
 def build_parser(table: dict | None = None):
-    from .. import __version__
+    from ..version import __version__
 
     parser = _Parser(
         prog="blockyard",
@@ -109,7 +109,9 @@ def run(argv: list[str] | None = None, out=None, err=None) -> int:
     session = Session(location=getattr(a, "warehouse", None), commands=table)
     cmd = table[a.command]
     try:
-        result = cmd.run(session, a)
+        from ..commands.yard import Yard
+
+        result = Yard(session=session).call(cmd, a)  # the one way a command runs (a notebook's too)
         if getattr(a, "json", False):
             out.write(json_document(result) + "\n")
         else:

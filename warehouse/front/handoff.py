@@ -70,7 +70,7 @@ def private_dir(create: bool) -> Path | None:
 
 def code_stamp() -> str:
     """What this Blockyard is: the interpreter, the version, and when its files last changed."""
-    from .. import __version__
+    from ..version import __version__
 
     here = Path(__file__).resolve().parents[1]  # the whole package, not this folder alone
     newest, count = 0, 0

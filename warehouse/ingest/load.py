@@ -34,7 +34,7 @@ import numpy as np
 from sqlalchemy import func, insert, select, update
 from sqlalchemy.exc import IntegrityError, OperationalError
 
-from .. import __version__
+from ..version import __version__
 from ..errors import InputError, StorageError
 from ..store import schema as S
 from ..store.bulk import BULK_MIN_ROWS, BulkJournal

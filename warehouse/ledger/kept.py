@@ -10,7 +10,7 @@ from dataclasses import dataclass, field
 
 from sqlalchemy import func, insert, or_, select
 
-from .. import __version__
+from ..version import __version__
 from ..errors import InputError
 from ..select.resolve import Dims, condition
 from ..select.slices import Slice

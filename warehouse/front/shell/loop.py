@@ -290,7 +290,9 @@ class Shell(Completing):
         a = self.parser(name).parse_args(argv)
         cmd = self.commands()[name]
         try:
-            result = cmd.run(self.session, a)
+            from ...commands.yard import Yard
+
+            result = Yard(session=self.session).call(cmd, a)
         finally:
             if name in REFRESH_AFTER:  # names and counts may have changed
                 self.refresh()
