@@ -157,3 +157,18 @@ def test_it_closes_and_reopens(location, files):
     y.close()
     assert y.inventory().to_dict()["runs"] == 0  # reopens on use
     y.close()
+
+
+def test_init_peek_and_upgrade(wh_location, files):
+    """A new warehouse made from Python, its coverage, and an upgrade that has nothing to do."""
+    with warehouse.open(wh_location) as y:
+        y.init()
+        y.load(files / "oct-baseline.csv", "oct-baseline", layout=files / "rack-a.toml")
+        cov = y.peek("family=mixed-sku", "pallets")
+        assert cov.to_dict() and "mixed-sku" in str(cov)
+        assert y.upgrade().render()
+        with pytest.raises(InputError, match="unknown collapse option replicate"):
+            y.observations("family=mixed-sku", "pallets", replicate="median")
+        med = y.observations("family=mixed-sku", "pallets", replicates="median")
+        mean = y.observations("family=mixed-sku", "pallets")
+        assert len(med) == len(mean) and not np.allclose(med["value"], mean["value"])
