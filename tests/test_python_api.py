@@ -172,3 +172,10 @@ def test_init_peek_and_upgrade(wh_location, files):
         med = y.observations("family=mixed-sku", "pallets", replicates="median")
         mean = y.observations("family=mixed-sku", "pallets")
         assert len(med) == len(mean) and not np.allclose(med["value"], mean["value"])
+
+
+def test_guard_from_python_gives_the_command_lines_verdicts(yard, cli):
+    res = yard.guard("stacker@1.4", NOV, "pallets", margin="2%")
+    doc = cli("guard", "stacker@1.4", "--slice", NOV, "--metric", "pallets", "--margin", "2%", "--json").json()
+    assert [v["verdict"] for v in res.to_dict()["verdicts"]] == [v["verdict"] for v in doc["verdicts"]]
+    assert res.exit_status in (0, 3, 4) and not res.table("verdicts").empty

@@ -134,6 +134,13 @@ class Yard:
         adjust, better, margin, confidence, cutoff and the collapse options. Kept in the ledger."""
         return self._run("versus", baseline=baseline, slice=slice, metric=metric, **options)
 
+    def guard(self, baseline: str, slice: str = "", metric: str | None = None, *, margin, **options):
+        """Stop a change that made things worse than `baseline` by more than `margin` (units, or
+        "2%"); options: confidence, markdown (a file to write the CI summary to) and the collapse
+        options. `result.exit_status` is what the command exits with: 0 all not-worse, 3 some
+        worse, 4 some inconclusive. Kept in the ledger."""
+        return self._run("guard", baseline=baseline, slice=slice, metric=metric, margin=str(margin), **options)
+
     def plan(self, **options):
         """Blocks needed for a comparison; options: effect, delta, means (a list or "a,b,c"), sd,
         sigma, from_analysis (an analysis id), blocks, power, alpha, comparisons."""

@@ -272,6 +272,9 @@ def treatments_of(doc: dict) -> list[str]:
     rows = doc.get("comparisons")
     if isinstance(rows, list):  # a plan's "comparisons" is a count, not rows
         names += [r.get("treatment") for r in rows if isinstance(r, dict) and r.get("treatment")]
+    rows = doc.get("verdicts")  # a guard's
+    if isinstance(rows, list):
+        names += [r.get("treatment") for r in rows if isinstance(r, dict) and r.get("treatment")]
     return sorted(set(names))
 
 

@@ -28,6 +28,8 @@ def verdicts_of(kind: str, doc: dict) -> dict:
             p, d = r.get("p_adjusted"), r.get("diff") or 0.0
             out[r["treatment"]] = {"significant": p is not None and p < level, "sign": (d > 0) - (d < 0)}
         return out
+    if kind == "guard":
+        return {r["treatment"]: r.get("verdict") for r in doc.get("verdicts", [])}
     if kind == "plan":
         return {"blocks_needed": doc.get("blocks_needed")}
     return {}
@@ -35,7 +37,7 @@ def verdicts_of(kind: str, doc: dict) -> dict:
 
 def rerun(wh: Warehouse, st: Stored):
     """Run a stored analysis again on today's data, with its stored slice and settings."""
-    from ..analyses import run_blocktest, run_plan, run_versus
+    from ..analyses import run_blocktest, run_guard, run_plan, run_versus
     from ..collapse.settings import Collapse
 
     opts = st.settings.get("options", {})
@@ -50,6 +52,9 @@ def rerun(wh: Warehouse, st: Stored):
             return run_versus(conn, st.slice, st.metric, col, opts["baseline"], opts.get("method", "dunnett"),
                               opts.get("adjust", "holm"), opts.get("better"), opts.get("margin"),
                               opts.get("confidence", 0.95), quick=False, cutoff=opts.get("cutoff"))
+        if st.kind == "guard":
+            return run_guard(conn, st.slice, st.metric, col, opts["baseline"], opts["margin"],
+                             opts.get("confidence", 0.95), quick=False)
     if st.kind == "plan":
         source = src = None
         if opts.get("from") is not None:
@@ -76,7 +81,7 @@ def note_source(res, doc: dict, kind: str, state: str, stale: int) -> None:
     if not src:
         return
     src.update(state=state, stale=state == "stale", stale_runs=int(stale))
-    held = doc.get("blocks") if kind in ("blocktest", "versus") else None
+    held = doc.get("blocks") if kind in ("blocktest", "versus", "guard") else None
     need = getattr(res.plan, "blocks_needed", None)
     if isinstance(held, int) and not isinstance(held, bool):
         src["blocks_held"] = held

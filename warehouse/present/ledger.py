@@ -22,6 +22,9 @@ def headline(kind: str, doc: dict) -> str:
         for r in doc.get("comparisons", []):
             parts.append(f"{r.get('treatment')} {signed(r.get('diff'))} ({r.get('verdict', '')})")
         return f"{doc.get('metric')} vs {doc.get('baseline')}: " + "; ".join(parts)
+    if kind == "guard":
+        parts = [f"{v.get('treatment')} {v.get('verdict')}" for v in doc.get("verdicts", [])]
+        return f"{doc.get('metric')} against {doc.get('baseline')}, margin {doc.get('margin')}: " + "; ".join(parts)
     if kind == "plan":
         if "blocks_needed" in doc:
             return f"{doc['blocks_needed']} blocks needed (power {doc.get('power')}, alpha {doc.get('alpha')})"
@@ -120,6 +123,12 @@ def _numbers(kind: str, doc: dict | None) -> list[tuple[str, str]]:
         for r in doc.get("comparisons", []):
             out.append((f"{r['treatment']} diff", signed(r.get("diff"))))
             out.append((f"{r['treatment']} p adj", pval(r.get("p_adjusted"))))
+        return out
+    if kind == "guard":
+        out = [("blocks", str(doc.get("blocks")))]
+        for v in doc.get("verdicts", []):
+            out.append((f"{v['treatment']} verdict", str(v.get("verdict"))))
+            out.append((f"{v['treatment']} worse by at most", signed(v.get("bound"))))
         return out
     return [(k, str(doc.get(k))) for k in ("blocks_needed", "power", "alpha") if k in doc]
 

@@ -116,6 +116,8 @@ def report_title(st) -> str:
         return f"{metric}: every treatment against {r.get('baseline', 'the baseline')}"
     if st.kind == "blocktest":
         return f"{metric}: blocked comparison of {r.get('treatments', 'the')} treatments"
+    if st.kind == "guard":
+        return f"{metric}: is any treatment worse than {r.get('baseline', 'the baseline')}?"
     if st.kind == "plan":
         return "sample-size plan"
     return f"{st.kind} of {metric}"
@@ -150,7 +152,7 @@ def draw_figures(st) -> tuple[list[FigureItem], list[str]]:
                      f"{metric} per block and treatment, blocks ordered by their mean: lines that keep their order "
                      "across blocks mean a consistent difference; crossing lines mean the ranking depends on the block.",
                      lambda: F.block_profile(obs, sense, metric, order)))
-        base = r.get("baseline") if st.kind == "versus" else None
+        base = r.get("baseline") if st.kind in ("versus", "guard") else None
         against = f"{base}'s value on the same block" if base else "the block's mean over treatments"
         plan.append(("relative", "block profile, relative",
                      f"Each treatment's {metric} per block as a percentage difference from {against}: a "
@@ -188,7 +190,7 @@ def _settings_pairs(st) -> list[tuple[str, str]]:
     out = [("kind", st.kind), ("slice", st.slice_text or "(everything)")]
     if st.metric:
         out.append(("metric", f"{st.metric} ({better_words(r.get('sense'))})"))
-    if st.kind == "versus":
+    if st.kind in ("versus", "guard"):
         out.append(("baseline", str(r.get("baseline", "-"))))
     if st.kind == "blocktest" and r.get("design"):
         out.append(("design", f"{r.get('treatments', '-')} treatments x {r.get('blocks', '-')} blocks, {r['design']}"))
@@ -374,6 +376,25 @@ def _versus_blocks(r: dict) -> list:
     return out
 
 
+def _guard_blocks(r: dict) -> list:
+    conf = r.get("confidence") or 0.95
+    unit = f" {r['unit']}" if r.get("unit") else ""
+    ms = (f", residual mean square {num(r['residual_ms'])} on {r.get('residual_df')} df"
+          if r.get("residual_ms") is not None else "")
+    out: list = [Heading("guard against the baseline", 3),
+                 Para(f"baseline {r.get('baseline')}; margin {num(r.get('margin_units'))}{unit} (given as "
+                      f"{r.get('margin')}); Dunnett, one-sided in the worse direction, {_pct(conf)} % family-wise "
+                      f"bounds{ms}; exit status {r.get('exit_status')}")]
+    rows = [[str(v.get("treatment")), str(v.get("verdict")), signed(v.get("difference")), signed(v.get("bound")),
+             "-" if v.get("more_blocks") is None else str(v.get("more_blocks")), str(v.get("reason") or "")]
+            for v in r.get("verdicts") or []]
+    out.append(Table(["treatment", "verdict", "difference", "worse by at most", "more blocks", "why"], rows,
+                     [False, False, True, True, True, False]))
+    out.append(Para("difference = treatment - baseline, in the metric's units; 'worse by at most' is the one-sided "
+                    "family-wise bound in the worse direction; more blocks is an estimate", "note"))
+    return out
+
+
 def _censored_blocks(cen: dict) -> list:
     """The --cutoff part of a blocktest or versus: counts and Kaplan-Meier per treatment, hazard
     ratios of solving against the reference, the stratified log-rank test."""
@@ -555,6 +576,8 @@ def content(data: ReportData) -> list:
         blocks += _blocktest_blocks(r)
     elif st.kind == "versus":
         blocks += _versus_blocks(r)
+    elif st.kind == "guard":
+        blocks += _guard_blocks(r)
     else:
         blocks += _plan_blocks(r)
     if isinstance(r.get("failures"), dict):
