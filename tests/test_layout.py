@@ -128,6 +128,7 @@ def test_layers_import_only_themselves_and_the_layers_before_them():
 KNOWN_UPWARD = [
     "warehouse.analyses.blocktest -> warehouse.present.analysis",
     "warehouse.analyses.blocktest -> warehouse.present.text",
+    "warehouse.analyses.noise -> warehouse.present.noise",
     "warehouse.analyses.plan -> warehouse.present.analysis",
     "warehouse.analyses.versus -> warehouse.present.analysis",
     "warehouse.analyses.versus -> warehouse.present.text",
