@@ -131,6 +131,7 @@ KNOWN_UPWARD = [
     "warehouse.analyses.blocktest -> warehouse.present.analysis",
     "warehouse.analyses.guard -> warehouse.present.guard",
     "warehouse.analyses.blocktest -> warehouse.present.text",
+    "warehouse.analyses.noise -> warehouse.present.noise",
     "warehouse.analyses.plan -> warehouse.present.analysis",
     "warehouse.analyses.versus -> warehouse.present.analysis",
     "warehouse.analyses.versus -> warehouse.present.text",

@@ -179,3 +179,14 @@ def test_guard_from_python_gives_the_command_lines_verdicts(yard, cli):
     doc = cli("guard", "stacker@1.4", "--slice", NOV, "--metric", "pallets", "--margin", "2%", "--json").json()
     assert [v["verdict"] for v in res.to_dict()["verdicts"]] == [v["verdict"] for v in doc["verdicts"]]
     assert res.exit_status in (0, 3, 4) and not res.table("verdicts").empty
+
+
+def test_noise_and_its_plan_from_python(yard, cli):
+    res = yard.noise("family=mixed-sku", "pallets")
+    comps = res.table("components")
+    assert list(comps["level"]) == ["group", "instance", "seed"]
+    doc = cli("noise", "--slice", "family=mixed-sku", "--metric", "pallets", "--json").json()
+    assert np.allclose(comps["variance"], [c["variance"] for c in doc["components"]])
+    plan = yard.plan(noise=res.analysis_id, effect=1.0)
+    assert set(plan.to_dict()["allocation"]) >= {"groups", "instances_per_group", "seeds_per_instance", "power",
+                                                 "cpu_hours"}

@@ -10,8 +10,9 @@ from __future__ import annotations
 from .blocktest import BlocktestResult, pair_methods, run_blocktest
 from .common import censored_runtimes
 from .guard import GuardResult, run_guard
+from .noise import NoiseResult, run_noise
 from .plan import PlanResult, run_plan
 from .versus import VersusResult, campaign_drift, run_versus
 
-__all__ = ["BlocktestResult", "GuardResult", "PlanResult", "VersusResult", "campaign_drift", "censored_runtimes", "pair_methods",
-           "run_blocktest", "run_guard", "run_plan", "run_versus"]
+__all__ = ["BlocktestResult", "GuardResult", "NoiseResult", "PlanResult", "VersusResult", "campaign_drift",
+           "censored_runtimes", "pair_methods", "run_blocktest", "run_guard", "run_noise", "run_plan", "run_versus"]

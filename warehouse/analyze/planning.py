@@ -11,6 +11,8 @@ blocks_for_dunnett(delta, sigma, treatments, power=0.8, alpha=0.05, alternative=
 rcbd_power(means, sigma, blocks, alpha=0.05)
 blocks_for_rcbd(means, sigma, power=0.8, alpha=0.05)
 more_blocks(needed, held)
+conditional_power(z, held, more, critical)
+blocks_to_settle(z, held, critical, power=0.8)
 """
 from __future__ import annotations
 
@@ -449,3 +451,56 @@ def more_blocks(needed: int, held: int) -> int:
         if isinstance(v, bool) or int(v) != v or v < 0:
             raise InputError(f"{name} must be a whole number of blocks >= 0, not {v!r}")
     return max(0, int(needed) - int(held))
+
+
+def conditional_power(z: float, held: int, more: int, critical: float) -> float:
+    """Chance that a comparison standing at statistic ``z`` on ``held`` blocks clears ``critical``
+    once ``more`` blocks are added, if the true difference is the one estimated now (conditional
+    power at the current estimate, on the normal scale). With the information fraction
+    t = n / (n + m), the final statistic is sqrt(t) z + sqrt(1 - t) Z_new, Z_new ~ N(z sqrt(m / n), 1),
+    so CP = Phi((|z| sqrt((n + m) / n) - c) / sqrt(m / (n + m))).
+
+    Reference: Lan and Wittes, The B-value: a tool for monitoring data (Biometrics 1988);
+    Proschan, Lan and Wittes, Statistical Monitoring of Clinical Trials (2006), chapter 3.
+
+    Example::
+
+        from warehouse.analyze.planning import conditional_power
+        conditional_power(1.5, 12, 12, 1.96)
+    """
+    n, m = int(held), int(more)
+    if n < 1:
+        raise DesignError("conditional power needs the blocks held so far (1 or more)")
+    if m <= 0:
+        return float(abs(z) >= critical)
+    num = abs(z) * math.sqrt((n + m) / n) - critical
+    return float(stats.norm.cdf(num / math.sqrt(m / (n + m))))
+
+
+def blocks_to_settle(z: float, held: int, critical: float, power: float = 0.8) -> int | None:
+    """Fewest blocks to add so that :func:`conditional_power` reaches ``power``; 0 when |z| already
+    clears ``critical``; None when the estimate is 0 or not even MAX_BLOCKS more would do.
+
+    Example::
+
+        from warehouse.analyze.planning import blocks_to_settle
+        blocks_to_settle(1.5, 12, 1.96)
+    """
+    if not (0.0 < power < 1.0):
+        raise InputError(f"power {power!r} must lie strictly between 0 and 1, e.g. 0.8")
+    if abs(z) >= critical:
+        return 0
+    if z == 0 or not math.isfinite(z):
+        return None
+    if conditional_power(z, held, MAX_BLOCKS, critical) < power:
+        return None
+    lo, hi = 0, 1
+    while conditional_power(z, held, hi, critical) < power:
+        lo, hi = hi, min(hi * 2, MAX_BLOCKS)
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if conditional_power(z, held, mid, critical) >= power:
+            hi = mid
+        else:
+            lo = mid
+    return hi

@@ -83,3 +83,86 @@ def common_runs(rt: RunTimes, treatments: list[str], holes: str = "drop") -> tup
         notes.append(f"{left} instances left out because not every treatment in their block has runs on them")
     keep = pd.MultiIndex.from_frame(df[["block", "instance_id"]]).isin(shared)
     return df[keep].reset_index(drop=True), notes
+
+
+# --- per-run values for the variance components -------------------------------------------------
+
+#: metric names and units read as a run's CPU time when no --time-metric is given
+TIME_NAMES = ("seconds", "cpu_seconds", "cpu", "runtime", "time", "wall_seconds")
+TIME_UNITS = ("s", "sec", "secs", "second", "seconds")
+
+
+@dataclass
+class RunValues:
+    metric: str
+    sense: str
+    unit: str
+    runs: pd.DataFrame  # treatment, group (the block), instance (label), instance_id, seed, run_id, status, value, seconds
+    treatments: list[str]
+    time_metric: str | None  # the metric read as a run's seconds (None: none found)
+    fingerprint: str
+    max_run_id: int
+    notes: list[str] = field(default_factory=list)
+
+
+def time_metric_of(dims, wanted: str | None, metric: str) -> str | None:
+    """The metric that holds a run's seconds: `wanted`, else the analysed metric when it is a time,
+    else one named or measured like a time (TIME_NAMES, TIME_UNITS); None when there is none."""
+    from ..errors import InputError
+
+    if wanted:
+        if wanted not in dims.metrics:
+            raise InputError(f"--time-metric {wanted}: no such metric; known: {', '.join(sorted(dims.metrics))}")
+        return wanted
+    def timely(name: str) -> bool:
+        return name.lower() in TIME_NAMES or str(dims.metrics[name][3]).lower() in TIME_UNITS
+    if timely(metric):
+        return metric
+    for name in TIME_NAMES:
+        if name in dims.metrics:
+            return name
+    return next((m for m in sorted(dims.metrics) if timely(m)), None)
+
+
+def run_values(conn, sl: Slice, metric: str | None, time_metric: str | None = None) -> RunValues:
+    """Every live run of slice `sl` with its value of `metric`, its seed, status and (when a time
+    metric is found) its seconds: what the variance components read. One query, the slice as
+    bound conditions on integer keys; the names are matched in Python."""
+    import hashlib
+
+    from .observations import _instances, _metric, _treatment_key
+
+    dims = Dims.load(conn)
+    metric, slot, sense, unit = _metric(dims, metric)
+    tm = time_metric_of(dims, time_metric, metric)
+    cols = [R.c.id, R.c.solver_id, R.c.instance_id, R.c.seed, R.c.status, R.c[f"v{slot}"]]
+    if tm is not None:
+        cols.append(R.c[f"v{dims.metrics[tm][1]}"])
+    q = select(*cols).where(condition(sl, dims, conn)).order_by(R.c.id)
+    names = ["run_id", "solver_id", "instance_id", "seed", "status", "value"] + (["seconds"] if tm else [])
+    from .observations import rows_frame
+
+    got = rows_frame(conn.execute(q), columns=names)
+    if got.empty:
+        raise DesignError(f"no runs in slice '{brief(sl.text, 200) or '(everything)'}'; see blockyard inventory for what is stored")
+    inst = _instances(conn, sorted(int(i) for i in got["instance_id"].unique()))
+    got = got.merge(inst, on="instance_id", how="left")
+    label = {int(s): dims.treatment(int(s)) for s in got["solver_id"].unique()}
+    block = {int(g): dims.block(int(g)) for g in got["group_id"].unique()}
+    runs = pd.DataFrame({
+        "treatment": got["solver_id"].astype("int64").map(label),
+        "group": got["group_id"].astype("int64").map(block),
+        "instance_id": got["instance_id"].astype("int64"),
+        "seed": got["seed"].astype("int64"),
+        "run_id": got["run_id"].astype("int64"),
+        "status": got["status"].astype("int64").map(S.STATUS_NAMES).fillna("failed"),
+        "value": pd.to_numeric(got["value"], errors="coerce").astype(float),
+        "seconds": pd.to_numeric(got["seconds"], errors="coerce").astype(float) if tm else float("nan"),
+    })
+    runs["instance"] = got["instance"].astype(str)
+    # the runs and their values, in id order: a recheck tells "the same runs" from this
+    h = hashlib.sha256()
+    h.update(runs["run_id"].to_numpy("int64").tobytes())
+    h.update(runs["value"].to_numpy("float64").tobytes())
+    return RunValues(metric, sense, unit, runs, sorted(runs["treatment"].unique(), key=_treatment_key), tm,
+                     h.hexdigest(), int(runs["run_id"].max()))

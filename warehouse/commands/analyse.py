@@ -218,11 +218,27 @@ def _plan_args(p):
     p.add_argument("--power", type=float, default=0.8, help="target power (default 0.8)")
     p.add_argument("--alpha", type=float, default=0.05, help="family-wise significance level (default 0.05)")
     p.add_argument("--comparisons", type=int, default=1, help="comparisons sharing alpha (Bonferroni split; default 1)")
+    g = p.add_argument_group("from a noise analysis: groups x instances x seeds (with --noise)")
+    g.add_argument("--noise", metavar="ANALYSIS", help="plan the allocation of groups, instances per group and seeds "
+                   "per instance from a stored noise analysis; --effect is then the difference in the metric's units")
+    g.add_argument("--budget-hours", type=float, metavar="H", help="with --noise: the most power within H CPU hours "
+                   "(instead of the least CPU time for --power)")
+    g.add_argument("--run-seconds", type=float, metavar="S", help="with --noise: a run's CPU seconds, when the analysis "
+                   "has no time metric (or to override it)")
+    g.add_argument("--instance-seconds", type=float, default=0.0, metavar="S", help="with --noise: CPU seconds to make "
+                   "one new instance (default 0)")
+    g.add_argument("--group-seconds", type=float, default=0.0, metavar="S", help="with --noise: CPU seconds to make "
+                   "one new instance group (default 0)")
+    g.add_argument("--max-groups", type=int, metavar="N", help="with --noise: the groups there are (no cap by default)")
+    g.add_argument("--max-instances", type=int, metavar="N", help="with --noise: the instances a group can hold")
+    p.add_argument("--more", metavar="ANALYSIS", help="for a stored versus: how many more blocks would likely settle "
+                   "each comparison at its current estimate (conditional power; an estimate)")
     add_json(p)
 
 
-@command("plan", "blocks needed to detect a given effect with a given power",
-         "blockyard plan --effect 0.5 --power 0.8 --alpha 0.05 --comparisons 3")
+@command("plan", "blocks needed to detect a given effect with a given power; with --noise, groups x instances x seeds",
+         "blockyard plan --effect 0.5 --power 0.8 --alpha 0.05 --comparisons 3; "
+         "blockyard plan --noise 12 --effect 0.4 --budget-hours 20")
 @args(_plan_args)
 def cmd_plan(session: Session, a):
     from .. import ledger
@@ -234,9 +250,31 @@ def cmd_plan(session: Session, a):
         st = ledger.get(session.warehouse(), ledger.parse_id(a.from_id, "--from"))
         source = dict(st.result)
         source["analysis_id"] = st.id
+    noise = more = None
+    for key, where in (("noise", "--noise"), ("more", "--more")):
+        if getattr(a, key, None) is not None:
+            if st is not None:
+                from ..errors import InputError
+
+                raise InputError(f"--from and {where} read different analyses: give one of them")
+            st = ledger.get(session.warehouse(), ledger.parse_id(getattr(a, key), where))
+            doc = dict(st.result)
+            doc["analysis_id"], doc["kind"] = st.id, st.kind
+            if key == "noise":
+                if st.kind != "noise":
+                    from ..errors import InputError
+
+                    raise InputError(f"--noise {st.id}: analysis {st.id} is a {st.kind}; run blockyard noise first "
+                                     "and give its id")
+                noise = doc
+            else:
+                more = doc
     res = run_plan(effect=a.effect, delta=a.delta, sd=a.sd, source=source, power=a.power, alpha=a.alpha,
                    comparisons=a.comparisons, means=_floats(a.means) if a.means else None, sigma=a.sigma,
-                   blocks=a.blocks)
+                   blocks=a.blocks, noise=noise, more=more, budget_hours=getattr(a, "budget_hours", None),
+                   run_seconds=getattr(a, "run_seconds", None), group_seconds=getattr(a, "group_seconds", 0.0) or 0.0,
+                   instance_seconds=getattr(a, "instance_seconds", 0.0) or 0.0,
+                   max_groups=getattr(a, "max_groups", None), max_instances=getattr(a, "max_instances", None))
     if st is not None:
         ledger.note_source(res, st.result, st.kind, st.state, st.stale_runs)
     # a plan is kept like any analysis, so that a claim made on it ("we need 34 blocks") is tied to

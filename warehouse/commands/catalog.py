@@ -8,13 +8,14 @@ from .guard import cmd_guard
 from .ledger import cmd_keep, cmd_recall, cmd_recheck, cmd_retract
 from .load import cmd_load
 from .look import cmd_inventory
+from .noise import cmd_noise
 from .registry import Command, table
 from .report import cmd_export, cmd_plot
 from .setup import cmd_init, cmd_upgrade
 from .verify import cmd_verify
 
 COMMANDS = (cmd_init, cmd_upgrade, cmd_load, cmd_inventory, cmd_peek, cmd_blocktest, cmd_versus, cmd_guard, cmd_plan,
-            cmd_keep, cmd_recall, cmd_recheck, cmd_retract, cmd_plot, cmd_export, cmd_verify)
+            cmd_noise, cmd_keep, cmd_recall, cmd_recheck, cmd_retract, cmd_plot, cmd_export, cmd_verify)
 
 
 def commands(*extra) -> dict[str, Command]:

@@ -141,14 +141,22 @@ class Yard:
         worse, 4 some inconclusive. Kept in the ledger."""
         return self._run("guard", baseline=baseline, slice=slice, metric=metric, margin=str(margin), **options)
 
+    def noise(self, slice: str = "", metric: str | None = None, **options):
+        """Variance components of group, instance and seed (pooled and per treatment, and those of
+        a comparison); options: method (auto, anova, reml), confidence, time_metric. Kept in the
+        ledger; `result.table("components")` is a DataFrame."""
+        return self._run("noise", slice=slice, metric=metric, **options)
+
     def plan(self, **options):
         """Blocks needed for a comparison; options: effect, delta, means (a list or "a,b,c"), sd,
-        sigma, from_analysis (an analysis id), blocks, power, alpha, comparisons."""
+        sigma, from_analysis (an analysis id), blocks, power, alpha, comparisons; with noise (a
+        kept noise analysis's id): budget_hours, run_seconds, max_groups, ...; more (a kept versus's
+        id): the blocks that would likely settle each comparison."""
         if "from_analysis" in options:
             options["from_id"] = options.pop("from_analysis")
         if isinstance(options.get("means"), (list, tuple)):
             options["means"] = ",".join(str(m) for m in options["means"])
-        for key in ("from_id",):
+        for key in ("from_id", "noise", "more"):
             if options.get(key) is not None:
                 options[key] = str(options[key])
         return self._run("plan", **options)

@@ -4,16 +4,17 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from ..commands.analyse import cmd_blocktest, cmd_peek, cmd_versus
+from ..commands.analyse import cmd_blocktest, cmd_peek, cmd_plan, cmd_versus
 from ..commands.ledger import cmd_keep, cmd_recall, cmd_recheck, cmd_retract
 from ..commands.load import cmd_load
+from ..commands.noise import cmd_noise
 from ..commands.look import cmd_inventory
 from ..commands.registry import Done, add_json, args, command, table
 from ..commands.report import cmd_export
 from ..commands.session import Session
 from ..errors import BlockyardError
 
-STEPS = table(cmd_load, cmd_inventory, cmd_peek, cmd_blocktest, cmd_versus, cmd_keep, cmd_recall, cmd_retract, cmd_recheck,
+STEPS = table(cmd_load, cmd_inventory, cmd_peek, cmd_blocktest, cmd_versus, cmd_noise, cmd_plan, cmd_keep, cmd_recall, cmd_retract, cmd_recheck,
               cmd_export)
 
 
@@ -66,7 +67,8 @@ def run_demo(folder: str, json_mode: bool = False) -> Done:
 
 
 def _walk(session: Session, show, root: Path) -> None:
-    """The main job on the demo: coverage, the blocked test, the baseline comparison, the ledger.
+    """The main job on the demo: coverage, the blocked test, the baseline comparison, where the runs
+    vary and the allocation of the next campaign, the ledger.
     The versus step also catches the greedy build's timeouts on oversize loads: its failures part
     tests solved / not solved per instance and says, in a caution, which treatment fails more."""
     nov = "stacker@1.4 campaign=oct-baseline | solver=stacker campaign=nov-tuning"
@@ -80,6 +82,14 @@ def _walk(session: Session, show, root: Path) -> None:
     vs = _step(session, "versus", baseline="stacker@1.4", slice=nov, metric="pallets", method="dunnett", adjust="holm",
                better=None, margin=None, confidence=0.95, **common)
     show("versus", f'blockyard versus stacker@1.4 --slice "{nov}" --metric pallets', vs)
+    # where the November runs vary, and what the next campaign should buy with its CPU hours
+    tuning = "solver=stacker campaign=nov-tuning"
+    nz = _step(session, "noise", slice=tuning, metric="pallets", method="auto", confidence=0.95, time_metric=None)
+    show("noise", f'blockyard noise --slice "{tuning}" --metric pallets', nz)
+    plan = dict(effect=1.0, delta=None, means=None, sd=None, sigma=None, from_id=None, blocks=None, power=0.8,
+                alpha=0.05, comparisons=1, noise=str(nz.analysis_id), budget_hours=None, run_seconds=None,
+                instance_seconds=0.0, group_seconds=0.0, max_groups=None, max_instances=None, more=None)
+    show("plan", f"blockyard plan --noise {nz.analysis_id} --effect 1", _step(session, "plan", **plan))
     claim = "stacker 1.6 uses fewer pallets than the October baseline 1.4"
     show("keep", f'blockyard keep "{claim}" --analysis {vs.analysis_id} --tag demo',
          _step(session, "keep", claim=claim, analysis=vs.analysis_id, tag=["demo"]))

@@ -31,13 +31,22 @@ def verdicts_of(kind: str, doc: dict) -> dict:
     if kind == "guard":
         return {r["treatment"]: r.get("verdict") for r in doc.get("verdicts", [])}
     if kind == "plan":
+        if isinstance(doc.get("allocation"), dict):
+            a = doc["allocation"]
+            return {"allocation": [a.get("groups"), a.get("instances_per_group"), a.get("seeds_per_instance")]}
+        if isinstance(doc.get("more"), list):
+            return {f"more blocks for {r.get('treatment')}": r.get("more_blocks") for r in doc["more"]}
         return {"blocks_needed": doc.get("blocks_needed")}
+    if kind == "noise":
+        from ..analyses.noise import verdicts
+
+        return verdicts(doc)
     return {}
 
 
 def rerun(wh: Warehouse, st: Stored):
     """Run a stored analysis again on today's data, with its stored slice and settings."""
-    from ..analyses import run_blocktest, run_guard, run_plan, run_versus
+    from ..analyses import run_blocktest, run_guard, run_noise, run_plan, run_versus
     from ..collapse.settings import Collapse
 
     opts = st.settings.get("options", {})
@@ -55,16 +64,34 @@ def rerun(wh: Warehouse, st: Stored):
         if st.kind == "guard":
             return run_guard(conn, st.slice, st.metric, col, opts["baseline"], opts["margin"],
                              opts.get("confidence", 0.95), quick=False)
+        if st.kind == "noise":
+            return run_noise(conn, st.slice, st.metric, opts.get("confidence", 0.95), opts.get("method", "auto"),
+                             opts.get("time_metric"))
     if st.kind == "plan":
         source = src = None
-        if opts.get("from") is not None:
-            src = get(wh, int(opts["from"]), with_state=False)
-            source = dict(rerun(wh, src).to_dict())
-            source["analysis_id"] = src.id
-        res = run_plan(effect=opts.get("effect"), delta=opts.get("delta"), sd=opts.get("sd"), source=source,
-                       power=opts.get("power", 0.8), alpha=opts.get("alpha", 0.05),
-                       comparisons=opts.get("comparisons", 1), means=opts.get("means"), sigma=opts.get("sigma"),
-                       blocks=opts.get("blocks"))
+        noise = more = None
+        # the analysis a plan stood on, re-run on today's data: --from, --noise or --more
+        for key in ("from", "noise", "more"):
+            if opts.get(key) is not None:
+                src = get(wh, int(opts[key]), with_state=False)
+                doc = dict(rerun(wh, src).to_dict())
+                doc["analysis_id"], doc["kind"] = src.id, src.kind
+                source, noise, more = (doc if key == "from" else None, doc if key == "noise" else None,
+                                       doc if key == "more" else None)
+        if noise is not None:
+            res = run_plan(effect=opts.get("effect"), noise=noise, power=opts.get("power", 0.8),
+                           budget_hours=opts.get("budget_hours"), alpha=opts.get("alpha", 0.05),
+                           comparisons=opts.get("comparisons", 1), run_seconds=opts.get("run_seconds"),
+                           group_seconds=opts.get("group_seconds") or 0.0,
+                           instance_seconds=opts.get("instance_seconds") or 0.0, max_groups=opts.get("max_groups"),
+                           max_instances=opts.get("max_instances"))
+        elif more is not None:
+            res = run_plan(more=more, power=opts.get("power", 0.8))
+        else:
+            res = run_plan(effect=opts.get("effect"), delta=opts.get("delta"), sd=opts.get("sd"), source=source,
+                           power=opts.get("power", 0.8), alpha=opts.get("alpha", 0.05),
+                           comparisons=opts.get("comparisons", 1), means=opts.get("means"), sigma=opts.get("sigma"),
+                           blocks=opts.get("blocks"))
         if src is not None:
             # the source re-ran on today's data: no longer stale, whatever it was when the plan was made
             note_source(res, source, src.kind, "fresh" if src.intact else "tampered", 0)

@@ -1,4 +1,4 @@
-"""Text for peek, blocktest, versus and plan."""
+"""Text for peek, blocktest, versus and plan (the plans made from a noise analysis: present/noise.py)."""
 from __future__ import annotations
 
 from .text import num, pairs, pval, signed, table
@@ -357,6 +357,10 @@ def render_censored(cen) -> str:
 
 
 def render_plan(res) -> str:
+    if res.kind_of_plan in ("allocation", "more"):
+        from .noise import render_allocation, render_more
+
+        return (render_allocation if res.kind_of_plan == "allocation" else render_more)(res)
     d = res.plan.to_dict()
     out = []
     if res.source:

@@ -557,3 +557,41 @@ def analysis_scale(obs, transform: dict | None) -> pd.DataFrame:
     else:
         df["value"] = np.log(shifted)
     return df
+
+
+# --- variance components -----------------------------------------------------------------------
+
+def component_shares(parts: list[tuple[str, list[dict]]], metric: str = "value"):
+    """Stacked bars of the variance shares: one bar per (label, components) pair, e.g. pooled,
+    each treatment, and a treatment difference; a segment per level, its share printed in it."""
+    if not parts:
+        raise InputError("no components to draw")
+    coarse_first = ["group", "treatment x group", "instance", "treatment x instance", "seed"]
+    levels: list[str] = []
+    for _, rows in parts:
+        for r in rows:
+            if r["level"] not in levels:
+                levels.append(r["level"])
+    levels.sort(key=lambda x: coarse_first.index(x) if x in coarse_first else len(coarse_first))
+    fig, ax = _figure(7.2, 0.9 + 0.55 * len(parts))
+    ax.yaxis.grid(False)
+    ax.xaxis.grid(True, color=GRID, linewidth=0.8)
+    y = np.arange(len(parts))[::-1]
+    left = np.zeros(len(parts))
+    for k, level in enumerate(levels):
+        share = np.array([next((float(r["share"] or 0.0) for r in rows if r["level"] == level), 0.0)
+                          for _, rows in parts])
+        ax.barh(y, share * 100, left=left * 100, color=PALETTE[k % len(PALETTE)], height=0.62, label=_t(level),
+                edgecolor="white", linewidth=0.8)
+        for yy, l, s in zip(y, left, share):
+            if s >= 0.08:
+                ax.text((l + s / 2) * 100, yy, f"{100 * s:.0f} %", ha="center", va="center", fontsize=8, color="white")
+        left += share
+    ax.set_yticks(y)
+    ax.set_yticklabels([_t(label) for label, _ in parts])
+    ax.set_xlim(0, 100)
+    _labels(ax, "share of the variance (%)", "")
+    _title(ax, f"where {metric} varies", "pooled over treatments, per treatment, and for a treatment difference")
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.18 - 0.1 / max(1, len(parts))), ncol=min(len(levels), 5),
+              frameon=False, fontsize=8.5, labelcolor=INK)
+    return fig

@@ -120,6 +120,8 @@ def report_title(st) -> str:
         return f"{metric}: is any treatment worse than {r.get('baseline', 'the baseline')}?"
     if st.kind == "plan":
         return "sample-size plan"
+    if st.kind == "noise":
+        return f"{metric}: where the runs vary (groups, instances, seeds)"
     return f"{st.kind} of {metric}"
 
 
@@ -140,6 +142,14 @@ def draw_figures(st) -> tuple[list[FigureItem], list[str]]:
     scale = "" if not tr or (tr.get("name") or "none") == "none" else f" on the {tr['name']} scale the analysis used"
 
     plan = []
+    if st.kind == "noise":
+        obs = pd.DataFrame()  # the per-group means it keeps are a record, not a design to draw
+        parts = _noise_parts(r)
+        if parts:
+            plan.append(("components", "where the variance lies",
+                         f"Share of the variance of {metric} at each level: pooled over the treatments, per treatment, "
+                         "and for a treatment difference from block to block (the levels a plan of groups, instances "
+                         "and seeds uses).", lambda: F.component_shares(parts, metric)))
     if st.kind == "versus" and r.get("comparisons"):
         plan.append(("differences", "differences from the baseline",
                      f"Each treatment minus {r.get('baseline')} in {metric}, with its "
@@ -181,6 +191,35 @@ def draw_figures(st) -> tuple[list[FigureItem], list[str]]:
             continue
         made.append(FigureItem(key, title, caption, F.png_bytes(fig)))
     return made, notes
+
+
+def _noise_parts(r: dict) -> list[tuple[str, list[dict]]]:
+    parts = [("pooled", r.get("components") or [])] if r.get("components") else []
+    parts += [(p["treatment"], p["components"]) for p in r.get("per_treatment") or [] if p.get("components")
+              and len(r.get("per_treatment") or []) > 1]
+    comp = r.get("comparison_components") or {}
+    if comp.get("components"):
+        parts.append(("a difference", comp["components"]))
+    return parts
+
+
+def _noise_blocks(r: dict) -> list:
+    def rows(comps):
+        return [[str(c.get("level")), num(c.get("variance")), num(None if c.get("share") is None else 100 * c["share"]),
+                 num(c.get("ci_low")), num(c.get("ci_high"))] for c in comps or []]
+
+    pct = _pct(r.get("confidence"))
+    head = ["level", "variance", "share (%)", f"{pct} % low", f"{pct} % high"]
+    out: list = [Heading("components, pooled over the treatments", 3),
+                 Para(f"method: {r.get('method')}; {r.get('runs_used')} of {r.get('runs_in_slice')} runs used"),
+                 Table(head, rows(r.get("components")), [False, True, True, True, True])]
+    comp = r.get("comparison_components") or {}
+    if comp.get("components"):
+        out += [Heading("components of a treatment difference (what a plan uses)", 3),
+                Table(head, rows(comp["components"]), [False, True, True, True, True])]
+    if r.get("run_seconds") is not None:
+        out.append(Para(f"a run takes {num(r['run_seconds'])} s on average ({r.get('time_metric')})"))
+    return out
 
 
 # --- the content -------------------------------------------------------------------------------
@@ -578,6 +617,8 @@ def content(data: ReportData) -> list:
         blocks += _versus_blocks(r)
     elif st.kind == "guard":
         blocks += _guard_blocks(r)
+    elif st.kind == "noise":
+        blocks += _noise_blocks(r)
     else:
         blocks += _plan_blocks(r)
     if isinstance(r.get("failures"), dict):
