@@ -31,7 +31,7 @@ class RunTimes:
 
 def run_times(conn, sl: Slice, metric: str | None) -> RunTimes:
     """Every live run of slice `sl` with its value of `metric` (None where it has none) and status."""
-    from .observations import _instances, _metric, _treatment_key, rows_frame
+    from .common import _instances, _metric, _treatment_key, rows_frame
 
     dims = Dims.load(conn)
     metric, slot, sense, unit = _metric(dims, metric)
