@@ -184,7 +184,7 @@ WHOLE_SLICES = ["campaign=oct", "campaign=nov", "campaign=nov family=f2", "versi
 
 @pytest.mark.parametrize("metric", ["pallets", "seconds"])
 def test_the_block_summaries_give_what_the_pandas_collapse_gives(whole, metric):
-    from warehouse.collapse.observations import _rows_from_blocks
+    from warehouse.collapse.in_sql import _rows_from_blocks
     from warehouse.select.resolve import Dims
 
     session = Session(location=whole)
@@ -214,7 +214,7 @@ def test_the_block_summaries_give_what_the_pandas_collapse_gives(whole, metric):
 
 
 def test_the_block_summaries_step_aside_when_a_treatment_misses_instances(varied):
-    from warehouse.collapse.observations import _rows_from_blocks
+    from warehouse.collapse.in_sql import _rows_from_blocks
     from warehouse.select.resolve import Dims
 
     session = Session(location=varied)

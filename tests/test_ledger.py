@@ -419,7 +419,7 @@ def _cells_frame(sum_ok):
 def test_the_fingerprint_is_the_same_for_sums_made_in_another_order():
     # 0.1 + 0.2 + 0.3 summed left to right and right to left differ in the last bit (IEEE 754
     # double rounding, common practice); the same runs must give the same fingerprint either way
-    from warehouse.collapse.observations import _fingerprint, fingerprint_v1
+    from warehouse.collapse.in_pandas import _fingerprint, fingerprint_v1
     from warehouse.select.slices import parse
 
     left, right = (0.1 + 0.2) + 0.3, 0.1 + (0.2 + 0.3)

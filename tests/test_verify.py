@@ -151,3 +151,12 @@ def test_a_load_refuses_a_damaged_file_and_names_verify(two_campaigns, cli, loca
     assert r.code == 2, r
     assert "fails SQLite's quick check" in r.err and "blockyard verify" in r.err
     assert len(r.err.strip().splitlines()) == 1
+
+
+@pytest.mark.skipif(not ON_POSTGRES, reason="SQLite's foreign keys refuse such a run (revision 0009)")
+def test_a_run_naming_a_solver_that_is_not_there_is_found(two_campaigns, cli, wh):
+    # PostgreSQL holds no reference constraint on the ids a load writes: verify checks them instead
+    sql(wh, "UPDATE runs SET solver_id = 999999 WHERE id = (SELECT min(id) FROM runs)")
+    code, checks, _ = verify(cli)
+    assert code == 3
+    assert any("1 runs name a solver id that is not in the warehouse" in f for f in checks["imports"]["found"])

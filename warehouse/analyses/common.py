@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import pandas as pd
 
-from ..collapse.observations import Collapsed
+from ..collapse.common import Collapsed
 from ..errors import DesignError, InputError
 from ..select.slices import Slice
 

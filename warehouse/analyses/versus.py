@@ -5,7 +5,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 
-from ..collapse.observations import Collapsed, collapse
+from ..collapse.common import Collapsed
+from ..collapse.observations import collapse
 from ..errors import DesignError, InputError
 from ..select.slices import Slice
 from ..collapse.settings import Collapse

@@ -5,7 +5,7 @@ import re
 
 import pandas as pd
 
-from .observations import Collapsed
+from .common import Collapsed
 
 _TIME_UNITS = {"s", "sec", "secs", "second", "seconds", "ms", "min", "h", "us"}
 _TIME_NAMES = re.compile(r"time|second|runtime|wall|cpu|elapsed|duration", re.I)

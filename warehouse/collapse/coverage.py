@@ -36,7 +36,8 @@ class Coverage:
 
 def coverage(conn, sl: Slice, metric: str | None = None, collapse_settings=None) -> Coverage:
     from .cautions import hash_pseudo_replication, host_caution, pseudo_replication
-    from .observations import _treatment_key, collapse, rows_frame
+    from .common import _treatment_key, rows_frame
+    from .observations import collapse
 
     dims = Dims.load(conn)
     cond = condition(sl, dims, conn)

@@ -31,7 +31,7 @@ class RunTimes:
 
 def run_times(conn, sl: Slice, metric: str | None) -> RunTimes:
     """Every live run of slice `sl` with its value of `metric` (None where it has none) and status."""
-    from .observations import _instances, _metric, _treatment_key, rows_frame
+    from .common import _instances, _metric, _treatment_key, rows_frame
 
     dims = Dims.load(conn)
     metric, slot, sense, unit = _metric(dims, metric)
@@ -130,7 +130,7 @@ def run_values(conn, sl: Slice, metric: str | None, time_metric: str | None = No
     bound conditions on integer keys; the names are matched in Python."""
     import hashlib
 
-    from .observations import _instances, _metric, _treatment_key
+    from .common import _instances, _metric, _treatment_key
 
     dims = Dims.load(conn)
     metric, slot, sense, unit = _metric(dims, metric)
@@ -140,7 +140,7 @@ def run_values(conn, sl: Slice, metric: str | None, time_metric: str | None = No
         cols.append(R.c[f"v{dims.metrics[tm][1]}"])
     q = select(*cols).where(condition(sl, dims, conn)).order_by(R.c.id)
     names = ["run_id", "solver_id", "instance_id", "seed", "status", "value"] + (["seconds"] if tm else [])
-    from .observations import rows_frame
+    from .common import rows_frame
 
     got = rows_frame(conn.execute(q), columns=names)
     if got.empty:

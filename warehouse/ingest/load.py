@@ -38,7 +38,7 @@ from ..version import __version__
 from ..errors import InputError, StorageError
 from ..store import schema as S
 from ..store.bulk import BULK_MIN_ROWS, BulkJournal
-from ..store.connect import Warehouse
+from ..store.connect import Warehouse, hold_runs_for_load
 from . import early, reload, runkey
 from .cellsums import Summing, run_statements
 from .checks import FileLoad, Rows, checked
@@ -286,7 +286,7 @@ def _open_import(conn, wh: Warehouse, p: Path, campaign: str, layout: Layout, fl
                  total: int) -> _Import:
     """The import's row, the names known already, and the way its runs are kept once per campaign."""
     if wh.dialect == "postgresql":
-        conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
+        hold_runs_for_load(conn)
     cid = campaign_id(conn, campaign)
     fl.chain = reload.replaced_chain(conn, fl.replaces)
     import_id = conn.execute(insert(S.imports).values(

@@ -40,7 +40,8 @@ def _with_nulls(values: np.ndarray, present: np.ndarray) -> list:
 
 
 class Writer:
-    """Writes run rows; the dialect decides executemany (SQLite) or COPY (PostgreSQL)."""
+    """Writes run rows; the dialect decides executemany (SQLite) or COPY (PostgreSQL: straight into
+    runs while no key is taken, else staged and moved past the taken keys)."""
 
     def __init__(self, conn, dialect: str, slots: list[int], campaign_id: int, import_id: int,
                  numbered: bool = False, chain: tuple[int, ...] = ()):
@@ -69,13 +70,16 @@ class Writer:
             self._buf = np.empty(0, dtype=np.float64)  # the bound values of a chunk, reused
         else:
             self.campaign_id, self.import_id = campaign_id, import_id
-            # made again for each writer: a metric new in this file may have added a column to runs
-            self.conn.exec_driver_sql("DROP TABLE IF EXISTS blockyard_stage")
-            self.conn.exec_driver_sql(
-                "CREATE TEMP TABLE blockyard_stage (LIKE runs INCLUDING DEFAULTS) ON COMMIT DROP"
-            )
-            self.copy_sql = f"COPY blockyard_stage ({names}) FROM STDIN (FORMAT csv)"
-            self.move_sql = _move_sql(conn, names, campaign_id, chain)
+            self.names = names
+            self.move_sql, held = _move_sql(conn, names, campaign_id, chain)
+            # Straight into runs while no key is taken (docs/performance.md: staging and moving
+            # each chunk was a second write of every run). The run key refuses a taken key by
+            # failing the COPY; the chunk is then undone to its savepoint and this writer moves
+            # every chunk from then on past the taken keys (`_move`). A campaign whose retracted
+            # runs hold keys (outside the chain a reload replaces) is moved that way from the start.
+            self.direct = not held
+            self.staged = False
+            self.copy_runs = f"COPY runs ({names}) FROM STDIN (FORMAT csv)"
 
     def _marks(self, same: dict[str, str]) -> str:
         """One row's VALUES group: the import's two ids and the chunk's constants as literals."""
@@ -104,12 +108,35 @@ class Writer:
             data[f"v{s}"] = pa.array(vals, mask=np.isnan(vals))
         buf = io.BytesIO()
         pacsv.write_csv(pa.table(data), buf, pacsv.WriteOptions(include_header=False))
+        payload = buf.getbuffer()
         cur = self.raw.cursor()
-        cur.execute("TRUNCATE blockyard_stage")
-        with cur.copy(self.copy_sql) as cp:
-            cp.write(buf.getvalue())
-        cur.execute(self.move_sql)
+        if self.direct:
+            import psycopg
 
+            cur.execute("SAVEPOINT blockyard_chunk")
+            try:
+                with cur.copy(self.copy_runs) as cp:
+                    cp.write(payload)
+            except psycopg.errors.UniqueViolation:
+                cur.execute("ROLLBACK TO SAVEPOINT blockyard_chunk")
+                self.direct = False  # a key is taken: this chunk and the rest go past the taken keys
+            else:
+                cur.execute("RELEASE SAVEPOINT blockyard_chunk")
+                return
+        self._move(cur, payload)
+
+    def _move(self, cur, payload) -> None:
+        """PostgreSQL: the chunk staged in a temporary table, then moved into runs past the keys
+        taken (`_move_sql`)."""
+        if not self.staged:
+            # made again for each writer: a metric new in this file may have added a column to runs
+            cur.execute("DROP TABLE IF EXISTS blockyard_stage")
+            cur.execute("CREATE TEMP TABLE blockyard_stage (LIKE runs INCLUDING DEFAULTS) ON COMMIT DROP")
+            self.staged = True
+        cur.execute("TRUNCATE blockyard_stage")
+        with cur.copy(f"COPY blockyard_stage ({self.names}) FROM STDIN (FORMAT csv)") as cp:
+            cp.write(payload)
+        cur.execute(self.move_sql)
 
     def _write_sqlite(self, ids, rows: Rows, solver, instance, host, has_host, metric_of_slot) -> None:
         m = len(ids)
@@ -176,9 +203,9 @@ class Writer:
         self.raw.executemany(self.sql_one, zip(*columns))
 
 
-def _move_sql(conn, names: str, campaign_id: int, chain: tuple[int, ...]) -> str:
+def _move_sql(conn, names: str, campaign_id: int, chain: tuple[int, ...]) -> tuple[str, bool]:
     """PostgreSQL: the statement that moves the staged rows into runs, past every run whose key
-    is taken. The unique run key holds the live runs (ON CONFLICT names it, WHERE and all, so
+    is taken, and whether retracted runs of the campaign hold keys. The unique run key holds the live runs (ON CONFLICT names it, WHERE and all, so
     that the partial index is the one inferred); the campaign's retracted runs outside the chain
     a reload replaces hold theirs through an anti-join. Most campaigns hold no such run (the
     runs table is locked for the load, so that stays true while it writes): then the join is
@@ -193,7 +220,7 @@ def _move_sql(conn, names: str, campaign_id: int, chain: tuple[int, ...]) -> str
                  "AND r.instance_id = s.instance_id AND r.seed = s.seed AND r.replicate = s.replicate)")
     return (f"INSERT INTO runs ({names}) SELECT {names} FROM blockyard_stage s{where} ORDER BY id "
             "ON CONFLICT (campaign_id, solver_id, instance_id, seed, replicate) WHERE retraction_id IS NULL "
-            "DO NOTHING")
+            "DO NOTHING"), held
 
 
 @dataclass

@@ -123,8 +123,54 @@ def _server_engine(location: str) -> tuple[Engine, str]:
             f"warehouse URL scheme '{url.drivername}' is not supported; use a file path (SQLite) "
             "or postgresql://user@host/dbname"
         )
-    engine = create_engine(url, future=True, pool_pre_ping=True)
+    # libpq's keepalives (the client notices a server gone quiet); a keepalive named in the URL wins
+    given = set(url.query)
+    args = {k: v for k, v in CLIENT_KEEPALIVES.items() if k not in given}
+    engine = create_engine(url, future=True, pool_pre_ping=True, connect_args=args)
+
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn, _record):
+        # the server's side: a session whose client died or went quiet ends (and drops its locks)
+        with dbapi_conn.cursor() as cur:
+            for name, value in SERVER_WATCH.items():
+                if name == "client_connection_check_interval" and dbapi_conn.info.server_version < 140000:
+                    continue  # (PostgreSQL 14 brought it)
+                cur.execute("SELECT set_config(%s, %s, false)", (name, value))
+        dbapi_conn.commit()
+
     return engine, url.render_as_string(hide_password=True)
+
+
+# A load killed or cut off must not leave its server session holding the runs table's lock
+# (docs/reliability.md, "A load that dies on a server"). A client killed on a live machine closes
+# its socket and the server ends the session at once; these cover the rest.
+# libpq connection parameters (PostgreSQL documentation, "Parameter Key Words"): probe an idle
+# connection after 30 s, every 10 s, give up after 3 unanswered probes.
+CLIENT_KEEPALIVES = {"keepalives": 1, "keepalives_idle": 30, "keepalives_interval": 10, "keepalives_count": 3}
+# Server settings each session sets for itself (all user-settable; PostgreSQL documentation,
+# "Connection Settings"): the server probes a quiet client the same way (a machine that died or
+# a network cut sends no close), and checks every 5 s, while a statement runs, that the client
+# is still there (PostgreSQL 14 and later).
+SERVER_WATCH = {"tcp_keepalives_idle": "30", "tcp_keepalives_interval": "10", "tcp_keepalives_count": "3",
+                "client_connection_check_interval": "5s"}
+# A load's transaction is never idle for long: between two statements the client reads and checks
+# one chunk (well under a second). A client that stops there (stopped, hung, swapped out) has the
+# server end its session after this long, with its locks (idle_in_transaction_session_timeout,
+# set for the load's transaction alone).
+LOAD_IDLE_SECONDS = 60
+LOAD_IDLE_ENV = "BLOCKYARD_LOAD_IDLE_SECONDS"  # another limit, in seconds (the tests use a short one)
+
+
+def hold_runs_for_load(conn) -> None:
+    """PostgreSQL, at the start of a load's transaction: the runs table's write lock (loads and
+    retractions take it in turn; readers never wait for it), and the limit on how long the
+    transaction may sit idle (`LOAD_IDLE_SECONDS`)."""
+    try:
+        idle = max(1, int(os.environ.get(LOAD_IDLE_ENV, LOAD_IDLE_SECONDS)))
+    except ValueError:
+        idle = LOAD_IDLE_SECONDS
+    conn.exec_driver_sql(f"SET LOCAL idle_in_transaction_session_timeout = '{idle}s'")
+    conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
 
 
 def _make(location: str) -> Warehouse:
