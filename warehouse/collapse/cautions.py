@@ -123,11 +123,45 @@ def pooling_cautions(c: Collapsed, baseline: str | None = None) -> list[str]:
                        "a difference between the campaigns is mixed into its result")
         if len(by_host) > 1:
             out.append(f"{t} pools runs from {len(by_host)} hosts: {_listed(sorted(by_host.items()))}")
+        first, last, imports = c.periods.get(t, (None, None, 0))
+        if first is not None and last is not None and last - first > POOLED_DAYS * DAY:
+            out.append(f"{t} pools runs finished over {(last - first) / DAY:.0f} days ({_day(first)} to {_day(last)}, "
+                       f"{imports} import{'s' if imports != 1 else ''}): whatever changed on the machines or in the "
+                       "instance files over that time is mixed into its result")
+    confounded = False
     if baseline and baseline in c.campaigns:
         base = set(c.campaigns[baseline])
         others = sorted({x for t in c.treatments if t != baseline for x in c.campaigns.get(t, [])} - base)
         if others:
+            confounded = True
             out.append(f"the baseline {baseline} comes from {', '.join(sorted(base))} and the others (also) from "
                        f"{', '.join(others)}: campaign is confounded with treatment (see the drift line where a "
                        "treatment ran in both)")
+    if baseline and not confounded:
+        out += _period_apart(c, baseline)
     return out
+
+
+POOLED_DAYS = 14  # a treatment's runs finished over more days than this pool periods (common practice: two weeks)
+DAY = 86_400
+
+
+def _day(stamp: int) -> str:
+    import time
+
+    return time.strftime("%Y-%m-%d", time.gmtime(stamp))
+
+
+def _period_apart(c: Collapsed, baseline: str) -> list[str]:
+    """A baseline whose runs all finished before (or after) every other treatment's, by a day or
+    more: within one campaign, the period is then confounded with the treatment."""
+    base = c.periods.get(baseline, (None, None, 0))
+    rest = [c.periods[t] for t in c.treatments if t != baseline and t in c.periods]
+    if base[0] is None or base[1] is None or not rest or any(p[0] is None or p[1] is None for p in rest):
+        return []
+    first, last = min(p[0] for p in rest), max(p[1] for p in rest)
+    if base[1] + DAY <= first or last + DAY <= base[0]:
+        return [f"the baseline {baseline}'s runs finished {_day(base[0])} to {_day(base[1])} and the others' "
+                f"{_day(first)} to {_day(last)}: the period is confounded with treatment (a change of machines, "
+                "load or instance files between them would read as a difference between treatments)"]
+    return []

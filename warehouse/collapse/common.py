@@ -49,6 +49,8 @@ class Collapsed:
     hash_conflicts: list[str] = field(default_factory=list)
     # treatment -> [(campaign, host, runs)]: where each treatment's runs in the slice came from
     sources: dict[str, list[tuple[str, str, int]]] = field(default_factory=dict)
+    # treatment -> (earliest, latest finish time, imports): the span of the imports its runs came from
+    periods: dict[str, tuple[int | None, int | None, int]] = field(default_factory=dict)
     _earlier: Callable[[], str] | None = None  # makes the 0.1 hash of the same runs (pandas way only)
     _all_cells: pd.DataFrame | None = None  # see `every_cell` (pandas way only)
 
@@ -165,22 +167,41 @@ def _conflict_note(dims: Dims, group_id, name: str, hashes) -> str:
             "slice; its versions are kept apart and are not comparable")
 
 
-def _sources(conn, table, where, dims: Dims) -> tuple[dict, dict, dict]:
-    """Which hosts and campaigns each treatment's runs came from, and how many runs from each."""
+def _sources(conn, table, where, dims: Dims) -> tuple[dict, dict, dict, dict]:
+    """Which hosts and campaigns each treatment's runs came from, and how many runs from each; and
+    the period of the imports they came from (their runs' earliest and latest finish times)."""
     runs = func.count() if table is R else func.sum(table.c.n)
-    seen = rows_frame(conn.execute(select(table.c.solver_id, table.c.host_id, table.c.campaign_id, runs)
-                                   .where(where).group_by(table.c.solver_id, table.c.host_id, table.c.campaign_id)),
-                      columns=["solver_id", "host_id", "campaign_id", "runs"])
+    seen = rows_frame(conn.execute(select(table.c.solver_id, table.c.host_id, table.c.campaign_id, table.c.import_id,
+                                          runs)
+                                   .where(where).group_by(table.c.solver_id, table.c.host_id, table.c.campaign_id,
+                                                          table.c.import_id)),
+                      columns=["solver_id", "host_id", "campaign_id", "import_id", "runs"])
     host_name = {int(h): dims.hosts.get(int(h), "(unknown)") for h in seen["host_id"].dropna().unique()}
-    hosts, campaigns, sources = {}, {}, {}
+    when = _import_periods(conn, seen["import_id"].dropna().unique().tolist())
+    hosts, campaigns, sources, periods = {}, {}, {}, {}
     for s, g in seen.groupby("solver_id"):
         t = dims.treatment(int(s))
+        by = g.groupby(["campaign_id", "host_id"], dropna=False)["runs"].sum()
         where_from = [(dims.campaigns[int(c)], "(unknown)" if pd.isna(h) else host_name[int(h)], int(n))
-                      for c, h, n in zip(g["campaign_id"], g["host_id"], g["runs"])]
+                      for (c, h), n in by.items()]
         sources[t] = sorted(where_from)
         hosts[t] = sorted({h for _, h, _ in where_from})
         campaigns[t] = sorted({c for c, _, _ in where_from})
-    return hosts, campaigns, sources
+        spans = [when[int(i)] for i in g["import_id"].unique() if int(i) in when]
+        firsts = [a for a, _ in spans if a is not None]
+        lasts = [b for _, b in spans if b is not None]
+        periods[t] = (min(firsts) if firsts else None, max(lasts) if lasts else None, int(g["import_id"].nunique()))
+    return hosts, campaigns, sources, periods
+
+
+def _import_periods(conn, import_ids: list) -> dict[int, tuple[int | None, int | None]]:
+    """Each import's earliest and latest run finish time (revision 0004 keeps them on the import)."""
+    if not import_ids:
+        return {}
+    I = S.imports
+    rows = conn.execute(select(I.c.id, I.c.first_finished, I.c.last_finished)
+                        .where(I.c.id.in_([int(i) for i in import_ids])))
+    return {int(r.id): (r.first_finished, r.last_finished) for r in rows}
 
 
 def _with_values(treatments: list[str], obs: pd.DataFrame, notes: list[str], metric: str) -> list[str]:

@@ -78,7 +78,7 @@ def collapse_in_pandas(conn, sl: Slice, dims: Dims, metric: str, slot: int, sens
     for c in ("n", "n_ok", "n_fail", "id_sum", "id_max"):  # whole numbers (PostgreSQL sums come as Decimals)
         agg[c] = agg[c].astype(np.int64)
     # which hosts and campaigns each treatment's runs came from: a small second query
-    hosts, campaigns, sources = _sources(conn, table, where, dims)
+    hosts, campaigns, sources, periods = _sources(conn, table, where, dims)
     runs_in_slice = int(agg["n"].sum())
     max_run_id = int(agg["id_max"].max())
     notes: list[str] = []
@@ -132,7 +132,7 @@ def collapse_in_pandas(conn, sl: Slice, dims: Dims, metric: str, slot: int, sens
         treatments=treatments,
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=runs_in_slice, runs_used=runs_used,
         instances_used=int(used_cells["instance_id"].nunique()), notes=notes, hosts=hosts, campaigns=campaigns,
-        sources=sources,
+        sources=sources, periods=periods,
         fingerprint=fingerprint, _earlier=lambda: fingerprint_v1(agg, st, metric, sl), max_run_id=max_run_id, hash_conflicts=conflicts,
         _all_cells=every,
     )

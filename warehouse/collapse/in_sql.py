@@ -72,12 +72,12 @@ def collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense: 
     fail_runs = sum(int(r.n_fail) for r in rows)
     if fail_runs:
         notes.insert(0, f"{fail_runs} failed runs dropped")
-    hosts, campaigns, sources = _sources(conn, C, where, dims)
+    hosts, campaigns, sources, periods = _sources(conn, C, where, dims)
     return Collapsed(
         slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, _cells=None,
         treatments=treatments,
         blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=sum(int(r.n) for r in rows), runs_used=runs_used,
-        instances_used=instances_used, notes=notes, hosts=hosts, campaigns=campaigns, sources=sources,
+        instances_used=instances_used, notes=notes, hosts=hosts, campaigns=campaigns, sources=sources, periods=periods,
         fingerprint=fingerprint, max_run_id=max(int(r.id_max) for r in rows), hash_conflicts=conflicts)
 
 
