@@ -28,11 +28,24 @@ class BlocktestResult(Shown):
 
     kind = "blocktest"
 
-    def to_dict(self) -> dict:
-        c, s = self.collapsed, self.stats
+    def stats_doc(self) -> dict:
+        """The statistics' document, made once for the ledger, the output and the text alike,
+        without the table of residuals (one row per observation, which neither the document nor
+        the text shows: converting it was most of recording a 170-treatment blocktest)."""
         sd = self.__dict__.get("_stats_doc")
-        if sd is None:  # the statistics' document is the same for the ledger and for the output
-            sd = self.__dict__["_stats_doc"] = s.to_dict()
+        if sd is None:
+            from dataclasses import fields
+
+            from ..analyze.tidy import _jsonable
+
+            s = self.stats
+            sd = self.__dict__["_stats_doc"] = {f.name: _jsonable(getattr(s, f.name)) for f in fields(s)
+                                                if f.name != "residuals"}
+        return sd
+
+    def to_dict(self) -> dict:
+        c = self.collapsed
+        sd = self.stats_doc()
         d = {"slice": c.slice_text, "metric": c.metric, "sense": c.sense, "design": self.design,
              "treatments": len(c.treatments), "blocks": len(c.blocks), "treatment_names": c.treatments,
              "dropped_blocks": c.dropped_blocks, "anova": sd["anova"], "collapse": collapse_doc(c),

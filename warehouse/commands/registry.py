@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import argparse
 from dataclasses import dataclass, field
-from typing import Callable
+from collections.abc import Callable
 
 from .session import Session
 from ..shown import Shown

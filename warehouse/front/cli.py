@@ -155,15 +155,27 @@ def _one_line(message: str) -> str:
 
 
 def main() -> None:
+    import time
+
+    started = time.perf_counter()
     try:
-        from .handoff import forward
+        from .handoff import forward, suggestion
 
         code = forward(sys.argv[1:])  # a resident process runs it when one is up (blockyard resident)
         if code is None:
-            from ..ingest.early import start_early
+            if "load" in sys.argv[1:]:  # (any other command would only pay for importing it)
+                # typing before the helper thread starts: were the thread first to import it, a
+                # dataclass made meanwhile here would find it half made (dataclasses looks it up
+                # in sys.modules). The other commands never import it at start-up at all.
+                import typing  # noqa: F401
 
-            start_early(sys.argv[1:])  # load: hash the files while the libraries are imported
+                from ..ingest.early import start_early
+
+                start_early(sys.argv[1:])  # load: hash the files while the libraries are imported
             code = run()
+            hint = suggestion(sys.argv[1:], time.perf_counter() - started, sys.stderr.isatty() and sys.stdout.isatty())
+            if hint:
+                sys.stderr.write(hint + "\n")
     except BrokenPipeError:  # output piped into head: not an error
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         code = 0

@@ -21,9 +21,7 @@ until it is the resident itself.
 """
 from __future__ import annotations
 
-import json
 import os
-import socket
 import struct
 import sys
 import time
@@ -37,7 +35,11 @@ _HEADER = struct.Struct("!I")
 
 
 def supported() -> bool:
-    return sys.platform.startswith("linux") and hasattr(socket, "AF_UNIX")
+    if not sys.platform.startswith("linux"):
+        return False
+    import socket  # (here, not at the top: a command with no resident running never needs it)
+
+    return hasattr(socket, "AF_UNIX")
 
 
 def runtime_dir() -> Path:
@@ -88,6 +90,8 @@ def code_stamp() -> str:
 # --- the wire: length-prefixed JSON ------------------------------------------------------------
 
 def _send(sock: socket.socket, doc: dict) -> None:
+    import json
+
     data = json.dumps(doc).encode()
     sock.sendall(_HEADER.pack(len(data)) + data)
 
@@ -97,6 +101,8 @@ def _recv(sock: socket.socket) -> dict | None:
     if head is None:
         return None
     body = _read(sock, _HEADER.unpack(head)[0])
+    import json
+
     return None if body is None else json.loads(body)
 
 
@@ -112,11 +118,14 @@ def _read(sock: socket.socket, n: int) -> bytes | None:
 
 
 def _connect(timeout: float = 1.0) -> socket.socket | None:
-    if not supported() or private_dir(create=False) is None:
+    # the socket file first: with no resident running, no socket module is imported at all
+    if private_dir(create=False) is None:
         return None
     path = socket_path()
-    if not path.exists():
+    if not path.exists() or not supported():
         return None
+    import socket
+
     sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
     sock.settimeout(timeout)
     try:
@@ -196,6 +205,35 @@ def forward(argv: list[str]) -> int | None:
         return int(reply.get("code", 1))
     finally:
         sock.close()
+
+
+SUGGEST_AFTER = 2.0  # seconds: a cold analysis slower than this may mention the resident, once per user
+
+
+def suggestion(argv: list[str], seconds: float, terminal: bool) -> str | None:
+    """The one line a slow cold command in a terminal may print about the resident, or None.
+
+    Only for a command a resident would have run, typed at a terminal (not a script's pipe),
+    when none runs and the user has not turned it off; said once per user (a mark in the private
+    runtime folder). The resident stays opt-in: this never starts one."""
+    if not terminal or seconds < SUGGEST_AFTER or _command_of(argv) not in FORWARDED:
+        return None
+    if os.environ.get("BLOCKYARD_RESIDENT", "").lower() in ("off", "0", "no") or not supported():
+        return None
+    if socket_path().exists():
+        return None  # one runs (or its socket is left over): nothing to suggest
+    try:
+        d = private_dir(create=True)
+        if d is None:
+            return None
+        mark = d / "resident-suggested"
+        if mark.exists():
+            return None
+        mark.touch()
+    except OSError:
+        return None
+    return (f"blockyard: that took {seconds:.1f} s, most of it loading the statistics libraries; "
+            "'blockyard resident start' keeps one process ready for the analysis commands (said once)")
 
 
 # --- the resident's side -----------------------------------------------------------------------

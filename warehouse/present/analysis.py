@@ -168,7 +168,7 @@ def _p_eq(p) -> str:
 
 def _means_table(res) -> str:
     s = res.stats
-    sd = s.to_dict()
+    sd = res.stats_doc()
     if res.design == "incomplete":
         rows = [[r["treatment"], str(r["n"]), num(r["raw_mean"]), num(r["adjusted_mean"])] for r in sd["adjusted_means"]]
         return table(rows, ["treatment", "blocks", "mean", "adjusted mean"], align=["left", "right", "right", "right"])

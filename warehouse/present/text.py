@@ -2,9 +2,8 @@
 from __future__ import annotations
 
 import math
-import shutil
 import sys
-from typing import Iterable, Sequence
+from collections.abc import Iterable, Sequence
 
 
 def num(x, digits: int = 4) -> str:
@@ -56,6 +55,8 @@ def table(rows: Sequence[Sequence], headers: Sequence[str], align: Sequence[str]
     except TypeError:  # tabulate before 0.10 has the module-level switch only
         text = tabulate(rows, headers=headers, tablefmt="plain", colalign=align, disable_numparse=True)
     if width is None and sys.stdout.isatty():
+        import shutil  # (here: its archive modules are a tenth of `blockyard --help`'s imports)
+
         width = shutil.get_terminal_size((120, 24)).columns
     lines = text.splitlines()
     if width and lines and max(len(l) for l in lines) > width:

@@ -23,8 +23,9 @@ from sqlalchemy import (
     text,
 )
 
-# The alembic revision this module describes; a test checks it equals the migrations' head.
-SCHEMA_REVISION = "0009"
+# The alembic revision this module describes (kept in store/revision.py, which opening a
+# warehouse reads without SQLAlchemy); a test checks it equals the migrations' head.
+from .revision import SCHEMA_REVISION  # noqa: E402,F401
 
 NAME = 255  # longest name accepted for solvers, instances, groups, hosts, metrics
 
