@@ -11,6 +11,7 @@ import pytest
 import statsmodels.formula.api as smf
 from statsmodels.stats.power import TTestPower
 
+from warehouse.analyze import allocation as A
 from warehouse.analyze import noise as N
 from warehouse.analyze.planning import blocks_to_settle, conditional_power
 from warehouse.errors import DesignError
@@ -184,26 +185,26 @@ def test_block_difference_variance_is_what_a_simulated_block_shows():
                   s2_ti=0.6, effects=[0.0, 0.0])
     block = df.groupby(["group", "treatment"])["value"].mean().unstack()
     diff = block["t1"] - block["t0"]
-    assert float(diff.var()) == pytest.approx(N.block_difference_variance(0.3, 0.6, 0.8, 3, 2), rel=0.06)
+    assert float(diff.var()) == pytest.approx(A.block_difference_variance(0.3, 0.6, 0.8, 3, 2), rel=0.06)
 
 
 def test_the_allocation_finds_the_closed_form_optimum():
     # Cochran, Sampling Techniques, ch. 10: n_s* = sqrt(c_inst s2_seed / (c_run s2_TI)),
     # n_i* = sqrt(c_group s2_TI / (c_inst s2_TG)); with these numbers both are exactly 4
-    cf = N.closed_form_allocation(1.0, 4.0, 16.0, cost_group=16.0, cost_instance=4.0, cost_run=1.0)
+    cf = A.closed_form_allocation(1.0, 4.0, 16.0, cost_group=16.0, cost_instance=4.0, cost_run=1.0)
     assert cf == {"seeds_per_instance": pytest.approx(4.0), "instances_per_group": pytest.approx(4.0)}
     # a small effect, so that hundreds of groups are needed and the t's df do not tilt the choice
     for budget in (None, 10 * 1920 / 3600):
-        plan = N.plan_allocation(1.0, 4.0, 16.0, effect=0.3, run_seconds=1.0, treatments=1, group_seconds=16.0,
+        plan = A.plan_allocation(1.0, 4.0, 16.0, effect=0.3, run_seconds=1.0, treatments=1, group_seconds=16.0,
                                  instance_seconds=4.0, budget_hours=budget)
         a = plan.allocation
         assert (a["instances_per_group"], a["seeds_per_instance"]) == (4, 4), plan.best[:3]
 
 
 def test_the_power_of_an_allocation_is_the_paired_t_power():
-    plan = N.plan_allocation(0.2, 0.5, 1.0, effect=0.5, run_seconds=30, treatments=2, max_groups=20)
+    plan = A.plan_allocation(0.2, 0.5, 1.0, effect=0.5, run_seconds=30, treatments=2, max_groups=20)
     a = plan.allocation
-    sd = math.sqrt(N.block_difference_variance(0.2, 0.5, 1.0, a["instances_per_group"], a["seeds_per_instance"]))
+    sd = math.sqrt(A.block_difference_variance(0.2, 0.5, 1.0, a["instances_per_group"], a["seeds_per_instance"]))
     # statsmodels' TTestPower is the reference for the paired t-test's power
     ref = TTestPower().power(effect_size=0.5 / sd, nobs=a["groups"], alpha=0.05, alternative="two-sided")
     assert a["power"] == pytest.approx(float(ref), abs=1e-6)
@@ -217,11 +218,11 @@ def test_the_power_of_an_allocation_is_the_paired_t_power():
 
 
 def test_pure_run_cost_puts_the_optimum_at_the_boundary_and_says_so():
-    plan = N.plan_allocation(0.2, 0.5, 1.0, effect=0.5, run_seconds=30, treatments=2)
+    plan = A.plan_allocation(0.2, 0.5, 1.0, effect=0.5, run_seconds=30, treatments=2)
     a = plan.allocation
     assert (a["instances_per_group"], a["seeds_per_instance"]) == (1, 1)
     assert any("only cost" in w for w in plan.warnings)
-    budget = N.plan_allocation(0.2, 0.5, 1.0, effect=0.5, run_seconds=30, treatments=2, budget_hours=2.0)
+    budget = A.plan_allocation(0.2, 0.5, 1.0, effect=0.5, run_seconds=30, treatments=2, budget_hours=2.0)
     assert budget.allocation["cpu_hours"] <= 2.0 and budget.goal == "budget"
 
 

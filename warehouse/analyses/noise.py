@@ -219,8 +219,8 @@ def allocation_from(doc: dict, effect: float, power: float = 0.8, budget_hours: 
                     alpha: float = 0.05, comparisons: int = 1, run_seconds: float | None = None,
                     group_seconds: float = 0.0, instance_seconds: float = 0.0, max_groups: int | None = None,
                     max_instances: int | None = None, max_seeds: int | None = None):
-    """The allocation for a stored noise analysis's document (see analyze.noise.plan_allocation)."""
-    from ..analyze.noise import plan_allocation
+    """The allocation for a stored noise analysis's document (see analyze.allocation.plan_allocation)."""
+    from ..analyze.allocation import plan_allocation
 
     aid = doc.get("analysis_id")
     comp = doc.get("comparison_components")

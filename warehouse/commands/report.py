@@ -252,6 +252,7 @@ def export_report(session: Session, analysis_id: int, path: str, now: float | No
     """Write stored analysis `analysis_id` as an HTML or Markdown report to `path`."""
     from ..errors import BlockyardError
     from ..present import pages, report as R
+    from ..present.document import ReportData
 
     ext = os.path.splitext(path)[1].lower()
     if ext not in REPORT_FORMATS:
@@ -268,7 +269,7 @@ def export_report(session: Session, analysis_id: int, path: str, now: float | No
         imports = []
         notes.append(f"the imports behind the slice could not be listed: {exc}")
     figs, fig_notes = R.draw_figures(st)
-    data = R.ReportData(st, imports, time.time() if now is None else now, figs, notes + fig_notes)
+    data = ReportData(st, imports, time.time() if now is None else now, figs, notes + fig_notes)
     fmt = REPORT_FORMATS[ext]
     if fmt == "html":
         _write_atomic(path, pages.to_html(data).encode("utf-8"))

@@ -7,7 +7,8 @@ import base64
 import html
 from urllib.parse import quote
 
-from .report import KV, Fig, Heading, Items, Para, ReportData, State, Table, content
+from .document import KV, Fig, Heading, Items, Para, ReportData, State, Table
+from .report import content
 
 
 # --- HTML --------------------------------------------------------------------------------------
