@@ -34,7 +34,7 @@ def run_demo(folder: str, json_mode: bool = False) -> Done:
     db = root / "demo.db"
     for suffix in ("", "-wal", "-shm"):
         Path(str(db) + suffix).unlink(missing_ok=True)  # the demo's own file, rebuilt each time
-    written = generate(root)
+    generate(root)
     init_warehouse(str(db)).close()
     session = Session(location=str(db))
     files = root / "files"
