@@ -14,7 +14,8 @@ def test_the_demo_walks_every_step_and_keeps_its_analyses(tmp_path):
     assert code == 0, err.getvalue()
     text = out.getvalue()
     for step in ("$ blockyard load", "$ blockyard inventory", "$ blockyard peek", "$ blockyard blocktest",
-                 "$ blockyard versus", "$ blockyard keep", "$ blockyard recall", "$ blockyard retract",
+                 "$ blockyard versus", "$ blockyard guard", "$ blockyard noise",
+                 "$ blockyard plan --noise", "$ blockyard keep", "$ blockyard recall", "$ blockyard retract",
                  "$ blockyard recheck", "$ blockyard export"):
         assert step in text, step
     assert (tmp_path / "yard" / "report.html").stat().st_size > 0

@@ -5,6 +5,7 @@ import argparse
 from pathlib import Path
 
 from ..commands.analyse import cmd_blocktest, cmd_peek, cmd_plan, cmd_versus
+from ..commands.guard import cmd_guard
 from ..commands.ledger import cmd_keep, cmd_recall, cmd_recheck, cmd_retract
 from ..commands.load import cmd_load
 from ..commands.noise import cmd_noise
@@ -14,7 +15,7 @@ from ..commands.report import cmd_export
 from ..commands.session import Session
 from ..errors import BlockyardError
 
-STEPS = table(cmd_load, cmd_inventory, cmd_peek, cmd_blocktest, cmd_versus, cmd_noise, cmd_plan, cmd_keep, cmd_recall, cmd_retract, cmd_recheck,
+STEPS = table(cmd_load, cmd_inventory, cmd_peek, cmd_blocktest, cmd_versus, cmd_guard, cmd_noise, cmd_plan, cmd_keep, cmd_recall, cmd_retract, cmd_recheck,
               cmd_export)
 
 
@@ -82,6 +83,11 @@ def _walk(session: Session, show, root: Path) -> None:
     vs = _step(session, "versus", baseline="stacker@1.4", slice=nov, metric="pallets", method="dunnett", adjust="holm",
                better=None, margin=None, confidence=0.95, **common)
     show("versus", f'blockyard versus stacker@1.4 --slice "{nov}" --metric pallets', vs)
+    # the nightly question: did any November build get worse than 1.4 by more than 2 %?
+    gd = _step(session, "guard", baseline="stacker@1.4", slice=nov, metric="pallets", margin="2%", confidence=0.95,
+               markdown=None, **common)
+    show("guard", f'blockyard guard stacker@1.4 --slice "{nov}" --metric pallets --margin 2%   '
+         f'# exit status {gd.exit_status}', gd)
     # where the November runs vary, and what the next campaign should buy with its CPU hours
     tuning = "solver=stacker campaign=nov-tuning"
     nz = _step(session, "noise", slice=tuning, metric="pallets", method="auto", confidence=0.95, time_metric=None)
