@@ -136,3 +136,40 @@ def failure_part(conn, sl: Slice, c: Collapsed, baseline: str | None = None, qui
 
 
 # --- versus ------------------------------------------------------------------------------------
+
+
+def baseline_cautions(c: Collapsed, baseline: str, numeric: list[str]) -> list[str]:
+    """The cautions every comparison against a baseline carries: the design, hosts, pooling,
+    pseudo-replication, numerical trouble, and the blocks dropped for want of the baseline or of
+    another treatment (named, the first eight)."""
+    from ..collapse.cautions import design_cautions, host_caution, pooling_cautions, pseudo_replication
+
+    out = (list(design_cautions(c)) + host_caution(c, baseline) + pooling_cautions(c, baseline)
+           + pseudo_replication(c) + list(numeric))
+    missing_base = [d["block"] for d in c.dropped_blocks if baseline in d["missing"]]
+    other = [d["block"] for d in c.dropped_blocks if baseline not in d["missing"]]
+    if missing_base:
+        n = len(missing_base)
+        out.append(f"{n} block{' is' if n == 1 else 's are'} not in the baseline and {'was' if n == 1 else 'were'} "
+                   f"dropped: {', '.join(missing_base[:8])}")
+    if other:
+        n = len(other)
+        out.append(f"{n} block{' misses' if n == 1 else 's miss'} another treatment and {'was' if n == 1 else 'were'} "
+                   f"dropped: {', '.join(other[:8])}")
+    return out
+
+
+def drift_cautions(drift: list[dict], large: float | None, large_words: str) -> list[str]:
+    """A treatment that differs from itself across campaigns, significantly or by at least `large`
+    (the smallest difference reported, or the margin), earns a caution: part of each difference
+    between campaigns may be the campaigns."""
+    out = []
+    for d in drift:
+        big = large is not None and d["difference"] is not None and abs(d["difference"]) >= large
+        sig = d["p"] is not None and d["p"] < 0.05
+        if sig or big:
+            out.append(f"{d['treatment']} differs from itself between {d['campaigns'][0]} and {d['campaigns'][1]} by "
+                       f"{d['difference']:+.3g} on {d['blocks']} common blocks ({'significant' if sig else 'not significant'}"
+                       f"{', ' + large_words if big else ''}): part of each difference between campaigns may be "
+                       "the campaigns, not the treatments")
+    return out

@@ -15,7 +15,7 @@ from ..collapse.settings import Collapse
 from ..errors import DesignError, InputError
 from ..select.slices import Slice
 from ..shown import Shown
-from .common import collapse_doc, dedupe, failure_part, numeric_warnings
+from .common import baseline_cautions, collapse_doc, dedupe, drift_cautions, failure_part, numeric_warnings
 
 WORSE = 3  # some treatment is worse (0: all not-worse; 2: a user's mistake, as everywhere)
 UNSETTLED = 4  # none is worse, some are inconclusive
@@ -151,7 +151,7 @@ def run_guard(conn, sl: Slice, metric: str | None, settings: Collapse, baseline:
     blocks), at family-wise `confidence`; failures count (see the module's docstring)."""
     from ..analyze.guard import GuardStats, guard_vs_baseline, margin_in_units
     from ..analyze.tidy import refuse_overflow
-    from ..collapse.cautions import design_cautions, host_caution, imputed_failures, pooling_cautions, pseudo_replication
+    from ..collapse.cautions import imputed_failures
     from .versus import campaign_drift
 
     if margin is None or str(margin).strip() == "":
@@ -199,27 +199,11 @@ def run_guard(conn, sl: Slice, metric: str | None, settings: Collapse, baseline:
                                       confidence=confidence)
     level = 1 - confidence
     verdicts = _verdicts(stats, failures, level)
-    warnings = (list(design_cautions(c)) + host_caution(c, baseline) + pooling_cautions(c, baseline)
-                + pseudo_replication(c) + numeric)
-    if c.dropped_blocks:
-        missing_base = [d["block"] for d in c.dropped_blocks if baseline in d["missing"]]
-        other = [d["block"] for d in c.dropped_blocks if baseline not in d["missing"]]
-        if missing_base:
-            warnings.append(f"{len(missing_base)} blocks are not in the baseline and were dropped: {', '.join(missing_base[:8])}")
-        if other:
-            warnings.append(f"{len(other)} blocks miss another treatment and were dropped: {', '.join(other[:8])}")
+    warnings = baseline_cautions(c, baseline, numeric)
     warnings += list(stats.warnings)
     warnings += imputed_failures(c) + failures.warnings
     drift = campaign_drift(conn, c, settings, baseline)
-    for d in drift:
-        big = d["difference"] is not None and abs(d["difference"]) >= stats.margin_units
-        sig = d["p"] is not None and d["p"] < 0.05
-        if sig or big:
-            warnings.append(
-                f"{d['treatment']} differs from itself between {d['campaigns'][0]} and {d['campaigns'][1]} by "
-                f"{d['difference']:+.3g} on {d['blocks']} common blocks ({'significant' if sig else 'not significant'}"
-                f"{', as large as the margin' if big else ''}): part of each difference between campaigns may be "
-                "the campaigns, not the treatments")
+    warnings += drift_cautions(drift, stats.margin_units, "as large as the margin")
     res = GuardResult(c, baseline, stats, verdicts, failures, dedupe(warnings),
                       options={"baseline": baseline, "margin": str(margin).strip(), "confidence": confidence})
     res.drift = drift

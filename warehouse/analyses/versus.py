@@ -10,7 +10,8 @@ from ..collapse.observations import collapse
 from ..errors import DesignError, InputError
 from ..select.slices import Slice
 from ..collapse.settings import Collapse
-from .common import censored_runtimes, collapse_doc, dedupe, failure_part, numeric_warnings, read_cutoff
+from .common import (baseline_cautions, censored_runtimes, collapse_doc, dedupe, drift_cautions, failure_part,
+                     numeric_warnings, read_cutoff)
 from ..shown import Shown
 
 
@@ -94,7 +95,7 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
                confidence: float = 0.95, quick: bool = True, cutoff: float | None = None) -> VersusResult:
     from ..analyze.baseline import dunnett_vs_baseline, paired_vs_baseline
     from ..analyze.tidy import refuse_overflow
-    from ..collapse.cautions import design_cautions, host_caution, imputed_failures, pooling_cautions, pseudo_replication
+    from ..collapse.cautions import imputed_failures
 
     if method not in ("dunnett", "paired-t", "wilcoxon"):
         raise InputError(f"--method {method}: choose dunnett, paired-t or wilcoxon")
@@ -133,16 +134,8 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
         else:
             stats = paired_vs_baseline(obs, baseline, method=method, adjust=adjust, alternative=alternative,
                                        confidence=confidence, better=word, margin=m)
-    warnings = (list(design_cautions(c)) + host_caution(c, baseline) + pooling_cautions(c, baseline)
-                + pseudo_replication(c) + numeric)
+    warnings = baseline_cautions(c, baseline, numeric)
     drift = campaign_drift(conn, c, settings, baseline)
-    if c.dropped_blocks:
-        missing_base = [d["block"] for d in c.dropped_blocks if baseline in d["missing"]]
-        other = [d["block"] for d in c.dropped_blocks if baseline not in d["missing"]]
-        if missing_base:
-            warnings.append(f"{len(missing_base)} blocks are not in the baseline and were dropped: {', '.join(missing_base[:8])}")
-        if other:
-            warnings.append(f"{len(other)} blocks miss another treatment and were dropped: {', '.join(other[:8])}")
     warnings += list(stats.warnings)
     failures = failure_part(conn, sl, c, baseline, quick=quick)
     warnings += imputed_failures(c) + failures.warnings
@@ -155,15 +148,7 @@ def run_versus(conn, sl: Slice, metric: str | None, settings: Collapse, baseline
         res.options["cutoff"] = cutoff
         res.censored = censored_runtimes(conn, sl, c.metric, cutoff, baseline, "drop", confidence)
     smallest = min((abs(r["diff"]) for r in stats.comparisons if r.get("diff") is not None), default=None)
-    for d in drift:
-        big = smallest is not None and d["difference"] is not None and abs(d["difference"]) >= smallest
-        if (d["p"] is not None and d["p"] < 0.05) or big:
-            why = "significant" if d["p"] is not None and d["p"] < 0.05 else "not significant"
-            warnings.append(
-                f"{d['treatment']} differs from itself between {d['campaigns'][0]} and {d['campaigns'][1]} by "
-                f"{d['difference']:+.3g} on {d['blocks']} common blocks ({why}"
-                f"{', as large as the smallest difference reported' if big else ''}): part of each difference "
-                "between campaigns may be the campaigns, not the treatments")
+    warnings += drift_cautions(drift, smallest, "as large as the smallest difference reported")
     if any(res.verdict(r) for r in stats.comparisons) and not margin:
         warnings.append("significant is not the same as large enough to matter: judge the size of each difference, "
                         "or set --margin to count small differences as ties")

@@ -29,23 +29,35 @@ class RunTimes:
     notes: list[str] = field(default_factory=list)
 
 
+def _read(conn, sl: Slice, dims: Dims, cols: list, names: list[str], order=None) -> pd.DataFrame:
+    """The slice's runs with the columns `cols` (named `names`, which hold solver_id and
+    instance_id), each run's instance name and group, its treatment and block labels. One query on
+    the runs, one on their instances; a slice with no runs is a one-line error."""
+    from .common import _instances, rows_frame
+
+    q = select(*cols).where(condition(sl, dims, conn))
+    got = rows_frame(conn.execute(q if order is None else q.order_by(order)), columns=names)
+    if got.empty:
+        raise DesignError(f"no runs in slice '{brief(sl.text, 200) or '(everything)'}'; see blockyard inventory for what is stored")
+    got = got.merge(_instances(conn, sorted(int(i) for i in got["instance_id"].unique())), on="instance_id", how="left")
+    label = {int(s): dims.treatment(int(s)) for s in got["solver_id"].unique()}
+    block = {int(g): dims.block(int(g)) for g in got["group_id"].unique()}
+    got["treatment"] = got["solver_id"].astype("int64").map(label)
+    got["block"] = got["group_id"].astype("int64").map(block)
+    return got
+
+
 def run_times(conn, sl: Slice, metric: str | None) -> RunTimes:
     """Every live run of slice `sl` with its value of `metric` (None where it has none) and status."""
-    from .common import _instances, _metric, _treatment_key, rows_frame
+    from .common import _metric, _treatment_key
 
     dims = Dims.load(conn)
     metric, slot, sense, unit = _metric(dims, metric)
-    q = select(R.c.solver_id, R.c.instance_id, R.c.status, R.c[f"v{slot}"]).where(condition(sl, dims, conn))
-    got = rows_frame(conn.execute(q), columns=["solver_id", "instance_id", "status", "value"])
-    if got.empty:
-        raise DesignError(f"no runs in slice '{brief(sl.text, 200) or '(everything)'}'; see blockyard inventory for what is stored")
-    inst = _instances(conn, sorted(int(i) for i in got["instance_id"].unique()))
-    got = got.merge(inst, on="instance_id", how="left")
-    label = {int(s): dims.treatment(int(s)) for s in got["solver_id"].unique()}
-    block = {int(g): dims.block(int(g)) for g in got["group_id"].unique()}
+    got = _read(conn, sl, dims, [R.c.solver_id, R.c.instance_id, R.c.status, R.c[f"v{slot}"]],
+                ["solver_id", "instance_id", "status", "value"])
     runs = pd.DataFrame({
-        "treatment": got["solver_id"].astype("int64").map(label),
-        "block": got["group_id"].astype("int64").map(block),
+        "treatment": got["treatment"],
+        "block": got["block"],
         "instance_id": got["instance_id"].astype("int64"),
         "status": got["status"].astype("int64").map(S.STATUS_NAMES).fillna("failed"),
         "value": pd.to_numeric(got["value"], errors="coerce").astype(float),
@@ -130,7 +142,7 @@ def run_values(conn, sl: Slice, metric: str | None, time_metric: str | None = No
     bound conditions on integer keys; the names are matched in Python."""
     import hashlib
 
-    from .common import _instances, _metric, _treatment_key
+    from .common import _metric, _treatment_key
 
     dims = Dims.load(conn)
     metric, slot, sense, unit = _metric(dims, metric)
@@ -138,20 +150,11 @@ def run_values(conn, sl: Slice, metric: str | None, time_metric: str | None = No
     cols = [R.c.id, R.c.solver_id, R.c.instance_id, R.c.seed, R.c.status, R.c[f"v{slot}"]]
     if tm is not None:
         cols.append(R.c[f"v{dims.metrics[tm][1]}"])
-    q = select(*cols).where(condition(sl, dims, conn)).order_by(R.c.id)
     names = ["run_id", "solver_id", "instance_id", "seed", "status", "value"] + (["seconds"] if tm else [])
-    from .common import rows_frame
-
-    got = rows_frame(conn.execute(q), columns=names)
-    if got.empty:
-        raise DesignError(f"no runs in slice '{brief(sl.text, 200) or '(everything)'}'; see blockyard inventory for what is stored")
-    inst = _instances(conn, sorted(int(i) for i in got["instance_id"].unique()))
-    got = got.merge(inst, on="instance_id", how="left")
-    label = {int(s): dims.treatment(int(s)) for s in got["solver_id"].unique()}
-    block = {int(g): dims.block(int(g)) for g in got["group_id"].unique()}
+    got = _read(conn, sl, dims, cols, names, order=R.c.id)
     runs = pd.DataFrame({
-        "treatment": got["solver_id"].astype("int64").map(label),
-        "group": got["group_id"].astype("int64").map(block),
+        "treatment": got["treatment"],
+        "group": got["block"],
         "instance_id": got["instance_id"].astype("int64"),
         "seed": got["seed"].astype("int64"),
         "run_id": got["run_id"].astype("int64"),

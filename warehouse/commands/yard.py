@@ -85,7 +85,10 @@ class Yard:
         if errors:
             from ..errors import BlockyardError
 
-            raise BlockyardError(errors[0])
+            loaded = len(res.reports) - len(errors)
+            more = f" ({len(errors) - 1} more refused; {loaded} of {len(res.reports)} files stored or already there)" \
+                if len(res.reports) > 1 else ""
+            raise BlockyardError(errors[0] + more)
         return res
 
     def inventory(self, kind: str | None = None, limit: int | None = None):
@@ -120,7 +123,7 @@ class Yard:
 
     def peek(self, slice: str = "", metric: str | None = None, limit: int | None = None, **collapse):
         """Coverage of the slice: runs per treatment and block, holes, failures and cautions."""
-        return self._run("peek", slice=slice, metric=metric, limit=limit, **self._collapse_values(collapse))
+        return self._run("peek", slice=slice, metric=metric, limit=limit, **collapse)
 
     # --- analyses ------------------------------------------------------------------------------
 
@@ -229,10 +232,6 @@ class Yard:
         if unknown:
             raise InputError(f"unknown collapse option {unknown[0]}: choose from {', '.join(COLLAPSE_OPTIONS)}")
         return replace(self.session.collapse, **{k: v for k, v in collapse.items() if v is not None})
-
-    def _collapse_values(self, collapse: dict) -> dict:
-        self._settings(collapse)  # the same check, the same words
-        return collapse
 
 
 def _slice(text) -> object:
