@@ -14,6 +14,11 @@ from ..store import schema as S
 
 # the cell_stats columns in table order (the order store.cells writes them in too)
 COLUMNS = [c.name for c in S.cell_stats.columns]
+# their types on PostgreSQL, as numpy's big-endian codes (the binary COPY of `copy_payload`)
+COPY_TYPES = {"campaign_id": ">i4", "import_id": ">i4", "solver_id": ">i4", "instance_id": ">i4", "host_id": ">i4",
+              "slot": ">i2", "n": ">i8", "n_ok": ">i8", "sum_ok": ">f8", "sq_ok": ">f8", "min_ok": ">f8",
+              "max_ok": ">f8", "n_fail": ">i8", "n_fail_v": ">i8", "sum_fail_v": ">f8", "id_sum": ">i8",
+              "id_max": ">i8"}
 INTS = ("n", "n_ok", "n_fail", "n_fail_v", "id_sum", "id_max")
 FLOATS = ("sum_ok", "sq_ok", "min_ok", "max_ok", "sum_fail_v")
 MERGE_AT = 200_000  # reduced cell rows kept per slot before they are merged again
@@ -199,6 +204,31 @@ class CellSums:
         for slot in sorted(self.parts):
             out.extend(self._slot_rows(slot, campaign_id, import_id))
         return out
+
+    def copy_payload(self, campaign_id: int, import_id: int) -> bytes:
+        """The cell rows in PostgreSQL's binary COPY format, in `COPY_TYPES` order: numpy writes
+        them, with no Python object per value (a tuple per row was half a second at 100,000
+        cells), and the sums go over exactly."""
+        from ..store.pgcopy import binary_rows, framed
+
+        out = []
+        for slot in sorted(self.parts):
+            self._merge(slot)
+            keys, s = self.parts[slot][0]
+            m = len(keys)
+            no_ok = s["n_ok"] == 0
+            host = keys[:, 2]
+            columns = {
+                "campaign_id": (np.full(m, campaign_id), None), "import_id": (np.full(m, import_id), None),
+                "solver_id": (keys[:, 0], None), "instance_id": (keys[:, 1], None), "host_id": (host, host < 0),
+                "slot": (np.full(m, slot), None), "sum_ok": (s["sum_ok"], no_ok), "sq_ok": (s["sq_ok"], no_ok),
+                "min_ok": (s["min_ok"], no_ok), "max_ok": (s["max_ok"], no_ok),
+                "sum_fail_v": (s["sum_fail_v"], s["n_fail_v"] == 0),
+            }
+            for name in INTS:
+                columns[name] = (s[name], None)
+            out.append(binary_rows([columns[c] for c in COLUMNS], [COPY_TYPES[c] for c in COLUMNS]))
+        return framed(b"".join(out)) if out else b""
 
     def _slot_rows(self, slot: int, campaign_id: int, import_id: int) -> list[tuple]:
         self._merge(slot)

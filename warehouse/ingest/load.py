@@ -36,6 +36,7 @@ from sqlalchemy.exc import IntegrityError, OperationalError
 
 from ..version import __version__
 from ..errors import InputError, StorageError
+from ..store import partitions
 from ..store import schema as S
 from ..store.bulk import BULK_MIN_ROWS, BulkJournal
 from ..store.connect import Warehouse, hold_runs_for_load
@@ -202,6 +203,7 @@ class _Import:
     key: runkey.RunKey
     next_id: int
     first_id: int
+    partition: str | None = None  # PostgreSQL: the campaign's new partition, attached at the end
     writer: Writer | None = None
     read: int = 0
     loaded: int = 0
@@ -234,7 +236,7 @@ def _write(wh: Warehouse, p: Path, campaign: str, layout: Layout, fl: FileLoad, 
                 summing.finish(imp.campaign_id, imp.import_id)
             else:
                 summing.finish()
-            if imp.key.quick and imp.loaded:
+            if wh.is_sqlite and imp.key.quick and imp.loaded:
                 last = conn.execute(select(func.max(S.runs.c.id))).scalar()
                 if last != imp.next_id - 1:  # SQLite numbered the rows otherwise than the load did
                     raise StorageError(f"warehouse {wh.display} numbered the runs of {shown} up to {last}, "
@@ -250,6 +252,8 @@ def _write(wh: Warehouse, p: Path, campaign: str, layout: Layout, fl: FileLoad, 
                 first_run_id=imp.first_id if loaded else None, last_run_id=imp.next_id - 1 if loaded else None,
                 first_finished=imp.first_fin if loaded else None, last_finished=imp.last_fin if loaded else None))
             _write_summaries(imp, wh, summing)
+            if imp.partition is not None:  # its indexes are built now, by sorting
+                partitions.attach(conn, imp.campaign_id)
             report.rows_read, report.rows_loaded = imp.read, loaded
             report.rows_rejected, report.rows_skipped = rejected, imp.skipped
             report.import_id = imp.import_id
@@ -296,8 +300,14 @@ def _open_import(conn, wh: Warehouse, p: Path, campaign: str, layout: Layout, fl
         loaded_at=int(time.time()), tool_version=__version__)).inserted_primary_key[0]
     dims = Dimensions(conn)
     next_id = (conn.execute(select(func.max(S.runs.c.id))).scalar() or 0) + 1
-    key = runkey.RunKey(conn, wh.is_sqlite, cid, fl.chain, quick_allowed, total)
-    return _Import(conn, cid, import_id, dims, key, next_id, next_id)
+    fresh = None
+    if partitions.partitioned(conn):
+        if quick_allowed:
+            fresh = partitions.fresh(conn, cid)  # a new campaign's: filled with no index, attached at the end
+        else:
+            partitions.ensure(conn, cid)
+    key = runkey.RunKey(conn, wh.is_sqlite, cid, fl.chain, quick_allowed, total, fresh=fresh is not None)
+    return _Import(conn, cid, import_id, dims, key, next_id, next_id, partition=fresh)
 
 
 def _write_chunk(imp: _Import, wh: Warehouse, layout: Layout, fl: FileLoad, raw, rows: Rows, summing: Summing,
@@ -307,7 +317,7 @@ def _write_chunk(imp: _Import, wh: Warehouse, layout: Layout, fl: FileLoad, raw,
     slots = sorted(metric_slots.values())
     if imp.writer is None or imp.writer.slots != slots:
         imp.writer = Writer(imp.conn, wh.dialect, slots, imp.campaign_id, imp.import_id, numbered=imp.key.quick,
-                            chain=fl.chain)
+                            chain=fl.chain, into=imp.partition)
     got: ChunkIds = imp.dims.resolve(rows.keys, fl.warnings)
     m = len(rows)
     ids = np.arange(imp.next_id, imp.next_id + m, dtype=np.int64)
@@ -379,7 +389,10 @@ def _write_summaries(imp: _Import, wh: Warehouse, summing: Summing) -> None:
         from ..store import cells
 
         summaries = summing.result()
-        cells.write_rows(conn, wh.dialect, summaries.rows(imp.campaign_id, imp.import_id))
+        for _ in summing.parts():  # (none without ids: this waits for the run hashes' verdict)
+            pass
+        imp.key.proved(summing)
+        cells.copy_binary(conn, summaries.copy_payload(imp.campaign_id, imp.import_id))
     group_of = {iid: key[0] for key, iid in imp.dims.instances.items()}
     blocks.write(conn, blocks.from_sums(summaries, imp.campaign_id, imp.import_id, group_of))
 

@@ -20,6 +20,7 @@ from sqlalchemy import literal, select
 
 from ..errors import InputError
 from ..store import schema as S
+from ..store.pgcopy import binary_rows, framed
 from . import values as V
 from .cellsums import constant_columns
 from .checks import FileLoad, Rows
@@ -44,7 +45,7 @@ class Writer:
     runs while no key is taken, else staged and moved past the taken keys)."""
 
     def __init__(self, conn, dialect: str, slots: list[int], campaign_id: int, import_id: int,
-                 numbered: bool = False, chain: tuple[int, ...] = ()):
+                 numbered: bool = False, chain: tuple[int, ...] = (), into: str | None = None):
         self.conn, self.dialect = conn, dialect
         self.slots = slots
         # `numbered` (SQLite, a bulk load with the keys set aside): SQLite numbers the rows itself.
@@ -79,7 +80,17 @@ class Writer:
             # runs hold keys (outside the chain a reload replaces) is moved that way from the start.
             self.direct = not held
             self.staged = False
-            self.copy_runs = f"COPY runs ({names}) FROM STDIN (FORMAT csv)"
+            self.copy_runs = f"COPY runs ({names}) FROM STDIN (FORMAT binary)"
+            self.types = [_PG_TYPES.get(c, ">f8") for c in RUN_COLS] + [">f8"] * len(slots)
+            # `into`: the campaign's new partition, not attached yet and with no index (the load
+            # proved its runs new: runkey.RunKey, fresh); a metric new in this chunk may have
+            # added a value column to runs since it was made
+            self.into = into
+            if into is not None:
+                from ..store.partitions import same_columns
+
+                same_columns(conn, into)
+                self.copy_runs = f"COPY {into} ({names}) FROM STDIN (FORMAT binary)"
 
     def _marks(self, same: dict[str, str]) -> str:
         """One row's VALUES group: the import's two ids and the chunk's constants as literals."""
@@ -90,26 +101,21 @@ class Writer:
         if self.dialect == "sqlite":
             self._write_sqlite(ids, rows, solver, instance, host, has_host, metric_of_slot)
             return
-        import io
-
-        import pyarrow.csv as pacsv
-
         m = len(ids)
-        data = {
-            "id": pa.array(ids), "campaign_id": pa.array(np.full(m, self.campaign_id, dtype=np.int64)),
-            "import_id": pa.array(np.full(m, self.import_id, dtype=np.int64)),
-            "solver_id": pa.array(solver), "instance_id": pa.array(instance), "seed": pa.array(rows.seed),
-            "replicate": pa.array(rows.replicate), "status": pa.array(rows.status),
-            "finished_at": pa.array(rows.finished, mask=~rows.has_finished),
-            "host_id": pa.array(host, mask=~has_host), "source_line": pa.array(rows.lines),
-        }
+        # (values, the rows that are NULL or None) in RUN_COLS order, then the value columns
+        data = [(ids, None), (np.full(m, self.campaign_id, dtype=np.int64), None),
+                (np.full(m, self.import_id, dtype=np.int64), None), (solver, None), (instance, None),
+                (rows.seed, None), (rows.replicate, None), (rows.status, None),
+                (rows.finished, ~rows.has_finished), (host, ~has_host), (rows.lines, None)]
         for s in self.slots:
             vals = rows.metrics[metric_of_slot[s]]
-            data[f"v{s}"] = pa.array(vals, mask=np.isnan(vals))
-        buf = io.BytesIO()
-        pacsv.write_csv(pa.table(data), buf, pacsv.WriteOptions(include_header=False))
-        payload = buf.getbuffer()
+            data.append((vals, np.isnan(vals)))
+        payload = framed(binary_rows(data, self.types))
         cur = self.raw.cursor()
+        if self.into is not None:  # nothing to refuse a row: no savepoint
+            with cur.copy(self.copy_runs) as cp:
+                cp.write(payload)
+            return
         if self.direct:
             import psycopg
 
@@ -134,7 +140,7 @@ class Writer:
             cur.execute("CREATE TEMP TABLE blockyard_stage (LIKE runs INCLUDING DEFAULTS) ON COMMIT DROP")
             self.staged = True
         cur.execute("TRUNCATE blockyard_stage")
-        with cur.copy(f"COPY blockyard_stage ({self.names}) FROM STDIN (FORMAT csv)") as cp:
+        with cur.copy(f"COPY blockyard_stage ({self.names}) FROM STDIN (FORMAT binary)") as cp:
             cp.write(payload)
         cur.execute(self.move_sql)
 
@@ -203,6 +209,10 @@ class Writer:
         self.raw.executemany(self.sql_one, zip(*columns))
 
 
+# the runs columns' types on PostgreSQL, as numpy's big-endian codes (the value columns: >f8)
+_PG_TYPES = {"id": ">i8", "campaign_id": ">i4", "import_id": ">i4", "solver_id": ">i4", "instance_id": ">i4",
+             "seed": ">i8", "replicate": ">i4", "status": ">i2", "finished_at": ">i8", "host_id": ">i4",
+             "source_line": ">i4"}
 def _move_sql(conn, names: str, campaign_id: int, chain: tuple[int, ...]) -> tuple[str, bool]:
     """PostgreSQL: the statement that moves the staged rows into runs, past every run whose key
     is taken, and whether retracted runs of the campaign hold keys. The unique run key holds the live runs (ON CONFLICT names it, WHERE and all, so

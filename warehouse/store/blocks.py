@@ -108,8 +108,16 @@ def from_cells(campaign_id: int, import_id: int, slot: int, solver: np.ndarray, 
 
 
 def write(conn, rows: list[tuple]) -> None:
-    if rows:
+    if not rows:
+        return
+    if conn.dialect.name == "sqlite":
         conn.execute(insert(B), [dict(zip(COLUMNS, r)) for r in rows])
+        return
+    # a server: one COPY, not a statement's parameters per row
+    cur = conn.connection.driver_connection.cursor()
+    with cur.copy(f"COPY block_stats ({', '.join(COLUMNS)}) FROM STDIN") as cp:
+        for r in rows:
+            cp.write_row(r)
 
 
 def rebuild(conn, import_ids) -> int:

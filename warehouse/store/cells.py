@@ -61,6 +61,14 @@ def write_rows(conn, dialect: str, rows: list[tuple]) -> None:
                 cp.write_row(r)
 
 
+def copy_binary(conn, payload: bytes) -> None:
+    """A server: cell rows as one binary COPY payload, COLUMNS order (ingest/cellsums.CellSums.copy_payload)."""
+    if payload:
+        cur = conn.connection.driver_connection.cursor()
+        with cur.copy(f"COPY cell_stats ({', '.join(COLUMNS)}) FROM STDIN (FORMAT binary)") as cp:
+            cp.write(payload)
+
+
 def touched(conn, run_condition) -> list[tuple]:
     """The (import, solver, instance, campaign) keys of the cells holding runs that match."""
     return conn.execute(select(R.c.import_id, R.c.solver_id, R.c.instance_id, R.c.campaign_id)

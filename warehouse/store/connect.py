@@ -20,7 +20,7 @@ from pathlib import Path
 from collections.abc import Callable
 
 from ..errors import StorageError
-from .revision import SCHEMA_REVISION
+from .revision import SCHEMA_REVISION, SQLITE_CURRENT_FROM
 
 TYPE_CHECKING = False  # (typing.TYPE_CHECKING without importing typing)
 if TYPE_CHECKING:
@@ -291,7 +291,7 @@ def open_warehouse(location: str | None = None) -> Warehouse:
     if rev is None:
         wh.close()
         raise StorageError(f"{wh.display} has no Blockyard schema; create one with: blockyard init -w {shown(location)}")
-    if rev != SCHEMA_REVISION:
+    if rev != SCHEMA_REVISION and not (wh.is_sqlite and SQLITE_CURRENT_FROM <= rev < SCHEMA_REVISION):
         wh.close()
         if rev < SCHEMA_REVISION:
             raise StorageError(

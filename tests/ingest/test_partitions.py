@@ -1,0 +1,102 @@
+"""PostgreSQL: runs partitioned by campaign (revision 0010) and the loads' binary COPY.
+
+A load of a new campaign fills a table of its own with no index and attaches it at the end;
+a load into a campaign with runs goes through its partition's run key. What a user sees must be
+the same either way, and the same as on SQLite: the runs stored exactly, repeated runs named,
+stored ones skipped, a failed load leaving nothing (not even its table). The binary format is
+checked against the server itself: PostgreSQL reads the bytes back into the values we meant
+(PostgreSQL documentation, COPY, Binary Format).
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from conftest import ON_POSTGRES
+from warehouse.errors import InputError
+from warehouse.store.pgcopy import binary_rows, framed
+
+from .kit import csv_text, load_json, query, refusal, runs, write
+
+pytestmark = pytest.mark.skipif(not ON_POSTGRES, reason="PostgreSQL's partitions and COPY format")
+
+H = "solver,version,group,instance,seed,status,pallets\n"
+
+
+def partitions(location: str) -> list[str]:
+    return [r[0] for r in query(location, "SELECT c.relname FROM pg_inherits i JOIN pg_class c ON c.oid = i.inhrelid "
+                                          "WHERE i.inhparent = 'runs'::regclass ORDER BY 1")]
+
+
+def loose_tables(location: str) -> list[str]:
+    """Tables named like a campaign's partition that are not attached (a load's leftovers)."""
+    return [r[0] for r in query(location, "SELECT relname FROM pg_class WHERE relkind = 'r' AND relname LIKE 'runs_c%' "
+                                          "AND NOT relispartition AND relnamespace = current_schema()::regnamespace")]
+
+
+def test_each_campaign_gets_its_own_partition_with_the_run_key(cli, location, tmp_path):
+    load_json(cli, write(tmp_path / "a.csv", csv_text(runs(30))), campaign="night-1")
+    load_json(cli, write(tmp_path / "b.csv", csv_text(runs(20, start_seed=40))), campaign="night-2")
+    ids = dict(query(location, "SELECT name, id FROM campaigns"))
+    assert partitions(location) == sorted([f"runs_c{ids['night-1']}", f"runs_c{ids['night-2']}"])
+    assert loose_tables(location) == []
+    # the attached partition carries the parent's unique run key, built at the attach
+    names = [r[0] for r in query(location, "SELECT indexdef FROM pg_indexes WHERE tablename = :t",
+                                 t=f"runs_c{ids['night-1']}")]
+    assert any("UNIQUE" in d and "retraction_id IS NULL" in d for d in names), names
+    assert query(location, "SELECT campaign_id, count(*) FROM runs GROUP BY 1 ORDER BY 1") == \
+        [(ids["night-1"], 30), (ids["night-2"], 20)]
+
+
+def test_a_second_file_into_a_campaign_goes_through_its_run_key(cli, location, tmp_path):
+    load_json(cli, write(tmp_path / "a.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(1, 7))))
+    rep = load_json(cli, write(tmp_path / "b.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(4, 10))))
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (3, 3)
+    assert query(location, "SELECT seed, v1 FROM runs ORDER BY id") == [(k, float(k)) for k in range(1, 10)]
+    assert len(partitions(location)) == 1
+
+
+def test_a_refused_new_campaign_leaves_no_table(cli, location, tmp_path):
+    rs = runs(12)
+    line = refusal(cli, write(tmp_path / "twice.csv", csv_text(rs + [rs[3]])), campaign="fresh")
+    assert "lines 5 and 14 hold the same run" in line, line
+    assert partitions(location) == [] and loose_tables(location) == []
+    assert query(location, "SELECT count(*) FROM campaigns") == [(0,)]
+
+
+def test_a_dry_run_of_a_new_campaign_leaves_no_table(cli, location, tmp_path):
+    f = write(tmp_path / "a.csv", csv_text(runs(10)))
+    assert cli("load", str(f), "--campaign", "dry", "--dry-run").code == 0
+    assert partitions(location) == [] and loose_tables(location) == []
+
+
+def test_the_binary_format_reads_back_as_the_values_meant(location):
+    """Whole numbers of each width, NULLs in several patterns, and doubles that text would round."""
+    ints8 = np.array([1, -2, 2**62, 0, 7], dtype=np.int64)
+    ints4 = np.array([5, -(2**31), 2**31 - 1, 0, 3], dtype=np.int64)
+    ints2 = np.array([1, -1, 32767, 0, 2], dtype=np.int64)
+    floats = np.array([0.1, 1 / 3, -1e308, np.nan, 2.5e-300])
+    host = np.array([4, 0, 9, 1, 2], dtype=np.int64)
+    cols = [(ints8, None), (ints4, None), (ints2, None), (floats, np.isnan(floats)),
+            (host, np.array([False, True, False, True, False]))]
+    payload = framed(binary_rows(cols, [">i8", ">i4", ">i2", ">f8", ">i4"]))
+    from warehouse.store.connect import open_warehouse
+
+    wh = open_warehouse(location)
+    try:
+        with wh.engine.begin() as conn:
+            conn.exec_driver_sql("CREATE TEMP TABLE b (a bigint, b integer, c smallint, d double precision, e integer)")
+            cur = conn.connection.driver_connection.cursor()
+            with cur.copy("COPY b FROM STDIN (FORMAT binary)") as cp:
+                cp.write(payload)
+            got = sorted(conn.exec_driver_sql("SELECT a, b, c, d, e FROM b").all())
+    finally:
+        wh.close()
+    want = sorted((int(a), int(b), int(c), None if np.isnan(d) else float(d), None if n else int(e))
+                  for a, b, c, d, e, n in zip(ints8, ints4, ints2, floats, host, cols[4][1]))
+    assert got == want  # (exact: 1/3 and 2.5e-300 come back bit for bit)
+
+
+def test_a_whole_number_too_wide_for_its_column_is_refused_before_the_server():
+    with pytest.raises(InputError, match="does not fit the warehouse's 32-bit column"):
+        binary_rows([(np.array([2**31]), None)], [">i4"])

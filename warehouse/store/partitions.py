@@ -1,0 +1,54 @@
+"""PostgreSQL: the runs table is partitioned by campaign (revision 0010), one partition a campaign.
+
+A load of a campaign with no runs yet fills a table of its own with no index at all
+(`fresh`), then attaches it as the campaign's partition (`attach`): PostgreSQL builds the
+partition's indexes by sorting the finished table, which costs a fraction of keeping two
+B-trees up to date row by row (docs/performance.md). The table carries a CHECK on its campaign,
+so attaching it reads no row to prove the partition bound.
+
+A load into a campaign that holds runs already writes through the parent table into the
+campaign's partition, under its unique run key, as before; `ensure` makes that partition first
+when the campaign has none (empty, attached at once).
+
+Making and attaching a table are the owner's rights: both go through two functions revision
+0010 made, which run as the schema's owner for anyone who may insert runs, so a team member
+with the documented grants (docs/reliability.md) loads as before. Attaching takes SHARE UPDATE
+EXCLUSIVE on the parent, which readers never wait for; the load holds the parent's SHARE ROW
+EXCLUSIVE already (store.connect.hold_runs_for_load). SQLite keeps one runs table: nothing
+here applies to it.
+"""
+from __future__ import annotations
+
+
+def partitioned(conn) -> bool:
+    """Whether runs is a partitioned table here (PostgreSQL at revision 0010 or later)."""
+    if conn.dialect.name == "sqlite":
+        return False
+    return conn.exec_driver_sql("SELECT relkind FROM pg_class WHERE oid = 'runs'::regclass").scalar() == "p"
+
+
+def fresh(conn, campaign_id: int) -> str | None:
+    """A table for a campaign with no partition yet: shaped like runs, with no index, not attached
+    (None: the campaign has its partition)."""
+    return conn.exec_driver_sql(f"SELECT blockyard_open_partition({int(campaign_id)}, false)").scalar()
+
+
+def ensure(conn, campaign_id: int) -> None:
+    """The campaign's partition, made empty and attached when it has none yet."""
+    conn.exec_driver_sql(f"SELECT blockyard_open_partition({int(campaign_id)}, true)")
+
+
+def attach(conn, campaign_id: int) -> None:
+    """Make the filled table the campaign's partition: its indexes are built here, by sorting."""
+    conn.exec_driver_sql(f"SELECT blockyard_attach_partition({int(campaign_id)})")
+
+
+def same_columns(conn, name: str) -> None:
+    """Give the unattached table each value column runs gained since it was made (a metric new in
+    this load; only the owner can add one to runs, and the owner owns this table too)."""
+    missing = conn.exec_driver_sql(
+        "SELECT a.attname FROM pg_attribute a WHERE a.attrelid = 'runs'::regclass AND a.attnum > 0 "
+        "AND NOT a.attisdropped AND a.attname NOT IN (SELECT b.attname FROM pg_attribute b "
+        f"WHERE b.attrelid = '{name}'::regclass AND b.attnum > 0 AND NOT b.attisdropped)").scalars().all()
+    for col in missing:
+        conn.exec_driver_sql(f'ALTER TABLE {name} ADD COLUMN "{col}" double precision')
