@@ -4,6 +4,7 @@ modules a process imported is a fact a test can hold; how long it took is the be
 (benchmarks/treatments.py prints the ratios against `python -c pass`)."""
 from __future__ import annotations
 
+import io
 import json
 import os
 import subprocess
@@ -107,6 +108,58 @@ def test_a_cold_blocktest_imports_no_statsmodels(cli, tmp_path, location):
     soft = kept.get("software") or kept.get("analysis", {}).get("software")
     if soft is not None:
         assert soft["statsmodels"] == version("statsmodels")
+
+
+BLOCKTESTS = r'''
+import io, json, sys
+import warehouse.analyses.blocktest
+from warehouse.front.cli import run
+seen = []
+for argv in json.loads(sys.argv[1]):
+    out, err = io.StringIO(), io.StringIO()
+    code = run(argv, out=out, err=err)
+    assert code == 0, (argv, err.getvalue())
+    seen.append({"argv": argv, "modules": sorted(m for m in ("scipy.stats", "scipy.optimize", "statsmodels")
+                                                  if m in sys.modules)})
+print(json.dumps(seen))
+'''
+
+
+def _load_with_failures(tmp_path, location) -> None:
+    """Four builds on six groups of two instances; builds after the first fail both runs on a few
+    instances, so that the failure part has instances to compare (Cochran's Q, McNemar)."""
+    from warehouse.front.cli import run
+
+    rows = ["solver,version,family,group,instance,seed,status,pallets"]
+    for k, v in enumerate(("1.0", "2.0", "2.1", "2.2")):
+        for g in range(6):
+            for i in range(2):
+                for s in (1, 2):
+                    failed = k > 0 and (k + g + i) % 5 == 0
+                    rows.append(f"stk,{v},f1,g{g},g{g}-i{i},{s},{'failed' if failed else 'ok'},"
+                                f"{30 + 3 * g + 0.4 * k * (1 + g % 3) + 0.1 * s + 0.3 * i}")
+    path = tmp_path / "runs.csv"
+    path.write_text("\n".join(rows) + "\n")
+    assert run(["-w", location, "load", str(path), "--campaign", "c1"], out=io.StringIO(), err=io.StringIO()) == 0
+
+
+def test_a_cold_blocktest_imports_neither_scipy_stats_nor_scipy_optimize(tmp_path, location):
+    # scipy.stats and the scipy.optimize it brings were about 0.45 s of a cold blocktest's start,
+    # for its residual checks alone (issue 19; docs/performance.md): analyze/lean.py holds them now.
+    # Each blocktest below runs in one fresh interpreter after the one before; --pairs comes last
+    # and does import scipy.stats (Tukey's studentized range), which shows the probe can tell.
+    _load_with_failures(tmp_path, location)
+    w = ["-w", location, "blocktest", "--metric", "pallets"]
+    runs = [w, w + ["--transform", "boxcox", "--json"], w + ["--transform", "rank"], w + ["--transform", "log"],
+            w + ["--design", "incomplete"], w + ["--failures", "worst"], w + ["--failures", "penalize:100"],
+            w + ["--slice", "version=1.0,2.2"], w + ["--pairs", "tukey"]]
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "BLOCKYARD_RESIDENT": "off"}
+    p = subprocess.run([sys.executable, "-c", BLOCKTESTS, json.dumps(runs)], check=False, capture_output=True, text=True,
+                       cwd=ROOT, env=env, timeout=300)
+    assert p.returncode == 0, p.stderr
+    seen = json.loads(p.stdout.strip().splitlines()[-1])
+    assert [s["modules"] for s in seen[:-1]] == [[]] * (len(runs) - 1)
+    assert "scipy.stats" in seen[-1]["modules"]
 
 
 def test_a_slow_cold_command_at_a_terminal_mentions_the_resident_once(tmp_path, monkeypatch):

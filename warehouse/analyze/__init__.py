@@ -7,6 +7,8 @@ and ``table()`` (tidy pandas DataFrames).
 
 Modules
 -------
+lean      the tests and tails a blocktest needs, with numpy and scipy.special only (Shapiro-Wilk,
+          Fligner-Killeen, Brown-Forsythe, midranks, Brent's bounded minimum): no scipy.stats import
 tidy      what they share: the observation table's checks, the result type, the F test
 anova     randomized complete block ANOVA with diagnostics, transforms and relative efficiency
 ranks     Friedman (with Iman-Davenport) and Quade rank tests
@@ -22,4 +24,4 @@ Submodules are imported on demand so that ``import warehouse.analyze`` stays che
 """
 from __future__ import annotations
 
-__all__ = ["tidy", "anova", "ranks", "designs", "baseline", "pairs", "failures", "censored", "planning"]
+__all__ = ["lean", "tidy", "anova", "ranks", "designs", "baseline", "pairs", "failures", "censored", "planning"]

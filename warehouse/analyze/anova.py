@@ -8,7 +8,8 @@ the relative efficiency of blocking and the Box-Cox profile likelihood. The addi
 (:func:`_additive`) is the block model that the baseline and all-pairs comparisons use too.
 
 The sums of squares are computed from the textbook formulas with numpy; statsmodels is used by
-the tests as the reference.
+the tests as the reference. The residual checks, the ranks and the Box-Cox search come from
+:mod:`.lean` (numpy and scipy.special), so that a blocktest never imports scipy.stats.
 """
 from __future__ import annotations
 
@@ -17,8 +18,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import optimize, stats
 
+from warehouse.analyze.lean import average_ranks, bounded_minimum, brown_forsythe, fligner_killeen, shapiro_wilk
 from warehouse.analyze.ranks import FriedmanResult, QuadeResult, _friedman_core, _quade_core
 from warehouse.analyze.tidy import (
     _EPS,
@@ -105,8 +106,8 @@ def _diagnostics(Y: np.ndarray, fit: dict, treatments: list[str], blocks: list[s
     if fit["perfect"]:
         return diag
     flat = resid.ravel()
-    sw = stats.shapiro(flat)
-    diag["shapiro"] = {"statistic": float(sw.statistic), "p": float(sw.pvalue)}
+    w, p = shapiro_wilk(flat)
+    diag["shapiro"] = {"statistic": _none_if_nan(w), "p": _none_if_nan(p)}
     if a == 2:
         # each block's two residuals are r and -r: the spreads are equal by construction, and the
         # tests would always say so (p = 1); no p is better than one that cannot fail
@@ -125,10 +126,10 @@ def _diagnostics(Y: np.ndarray, fit: dict, treatments: list[str], blocks: list[s
 
 def _spread_tests(diag: dict, groups: list) -> None:
     """Fligner-Killeen and Brown-Forsythe across treatments, into `diag`."""
-    fk = stats.fligner(*groups)
-    diag["fligner"] = {"statistic": _none_if_nan(fk.statistic), "p": _none_if_nan(fk.pvalue)}
-    bf = stats.levene(*groups, center="median")
-    diag["brown_forsythe"] = {"statistic": _none_if_nan(bf.statistic), "p": _none_if_nan(bf.pvalue)}
+    stat, p = fligner_killeen(*groups)
+    diag["fligner"] = {"statistic": _none_if_nan(stat), "p": _none_if_nan(p)}
+    stat, p = brown_forsythe(*groups)
+    diag["brown_forsythe"] = {"statistic": _none_if_nan(stat), "p": _none_if_nan(p)}
 
 
 def _passes(diag: dict, level: float = CHECK_LEVEL) -> bool | None:
@@ -183,15 +184,15 @@ def boxcox_loglik(lmb: float, Y: np.ndarray) -> float:
 
 
 def _boxcox_lambda(Y: np.ndarray) -> float:
+    """The lambda in BOXCOX_BOUNDS that maximizes :func:`boxcox_loglik`: the best of a 61-point grid,
+    then Brent's bounded search between its neighbours (:func:`.lean.bounded_minimum`)."""
     lo, hi = BOXCOX_BOUNDS
     grid = np.linspace(lo, hi, 61)
     ll = np.array([boxcox_loglik(g, Y) for g in grid])
     k = int(np.nanargmax(ll))
     a_, b_ = grid[max(k - 1, 0)], grid[min(k + 1, len(grid) - 1)]
-    res = optimize.minimize_scalar(lambda x: -boxcox_loglik(x, Y), bounds=(a_, b_), method="bounded",
-                                   options={"xatol": 1e-6})
-    best = float(res.x) if -res.fun >= ll[k] else float(grid[k])
-    return best
+    x, least = bounded_minimum(lambda x: -boxcox_loglik(x, Y), a_, b_, xatol=1e-6)
+    return float(x) if -least >= ll[k] else float(grid[k])
 
 
 def _transform(Y: np.ndarray, name: str) -> tuple[np.ndarray, dict]:
@@ -199,7 +200,7 @@ def _transform(Y: np.ndarray, name: str) -> tuple[np.ndarray, dict]:
     if name == "none":
         return Y.copy(), info
     if name == "rank":
-        return stats.rankdata(Y.ravel()).reshape(Y.shape), info
+        return average_ranks(Y).reshape(Y.shape), info
     Yp, shift = _positive(Y)
     info["shift"] = shift
     if name == "log":

@@ -48,8 +48,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
+from warehouse.analyze.lean import binom_cdf, chi2_sf
 from warehouse.analyze.tidy import _fmt_p, _Result
 from warehouse.errors import DesignError, InputError
 
@@ -222,7 +222,7 @@ def cochran_q(solved) -> SolvedTest:
     if separating < FEW_SEPARATING or separating * k < FEW_SEPARATING_PAIRS:
         note = (f"only {separating} instances separate the treatments: the chi-square reference of Cochran's Q "
                 "is rough")
-    return SolvedTest("cochran-q", float(q), k - 1, float(stats.chi2.sf(q, k - 1)), n, separating, note)
+    return SolvedTest("cochran-q", float(q), k - 1, float(chi2_sf(q, k - 1)), n, separating, note)
 
 
 def mcnemar(first, second, exact: bool | None = None, correction: bool = True) -> SolvedTest:
@@ -266,14 +266,14 @@ def mcnemar_counts(n10: int, n01: int, subjects: int | None = None, exact: bool 
     if exact is None:
         exact = d < EXACT_BELOW
     if exact:
-        p = 1.0 if d == 0 else min(1.0, 2.0 * float(stats.binom.cdf(min(n10, n01), d, 0.5)))
+        p = 1.0 if d == 0 else min(1.0, 2.0 * float(binom_cdf(min(n10, n01), d, 0.5)))
         return SolvedTest("mcnemar-exact", float(min(n10, n01)), None, p, subjects, d)
     if d == 0:
         return SolvedTest("mcnemar-chi2", None, 1, None, subjects, 0,
                           "no instance is solved by one and not the other: there is nothing to compare")
     diff = abs(n10 - n01) - (1.0 if correction else 0.0)
     chi2 = max(diff, 0.0) ** 2 / d
-    return SolvedTest("mcnemar-chi2", float(chi2), 1, float(stats.chi2.sf(chi2, 1)), subjects, d)
+    return SolvedTest("mcnemar-chi2", float(chi2), 1, float(chi2_sf(chi2, 1)), subjects, d)
 
 
 def _holm(ps: list[float | None]) -> list[float | None]:

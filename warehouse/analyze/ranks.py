@@ -11,8 +11,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
+from warehouse.analyze.lean import average_ranks, chi2_sf, f_sf
 from warehouse.analyze.tidy import _EPS, FEW_BLOCKS, _complete, _Result
 
 #: what is said instead of an infinite F when every block ranks the treatments alike
@@ -70,7 +70,7 @@ class QuadeResult(_Result):
 
 def _within_ranks(Y: np.ndarray) -> np.ndarray:
     """Midranks of the treatments inside each block (column)."""
-    return stats.rankdata(Y, axis=0)
+    return average_ranks(Y, axis=0)
 
 
 def _friedman_core(Y: np.ndarray, treatments: list[str]) -> FriedmanResult:
@@ -87,7 +87,7 @@ def _friedman_core(Y: np.ndarray, treatments: list[str]) -> FriedmanResult:
     else:
         # Conover's form of the statistic, which is the tie-corrected chi-square.
         stat = float((a - 1) * ((rank_sums - b * (a + 1) / 2.0) ** 2).sum() / (A1 - C1))
-        p = float(stats.chi2.sf(stat, a - 1))
+        p = float(chi2_sf(stat, a - 1))
         w = stat / (b * (a - 1))
         rest = b * (a - 1) - stat
         if rest <= _EPS * b * a:
@@ -96,7 +96,7 @@ def _friedman_core(Y: np.ndarray, treatments: list[str]) -> FriedmanResult:
             warnings.append(IDENTICAL_RANKS.format(test="Iman-Davenport F"))
         else:
             F = (b - 1) * stat / rest
-            p_f = float(stats.f.sf(F, df1, df2))
+            p_f = float(f_sf(F, df1, df2))
     if b < FEW_BLOCKS:
         warnings.append(f"only {b} blocks: the Friedman test has little power")
     mr = pd.DataFrame({"treatment": treatments, "mean_rank": rank_sums / b, "rank_sum": rank_sums})
@@ -135,7 +135,7 @@ def friedman(obs: pd.DataFrame) -> FriedmanResult:
 def _quade_core(Y: np.ndarray, treatments: list[str]) -> QuadeResult:
     a, b = Y.shape
     R = _within_ranks(Y)
-    Q = stats.rankdata(Y.max(axis=0) - Y.min(axis=0))
+    Q = average_ranks(Y.max(axis=0) - Y.min(axis=0))
     S = Q[None, :] * (R - (a + 1) / 2.0)
     A2 = float((S ** 2).sum())
     Sj = S.sum(axis=1)
@@ -151,7 +151,7 @@ def _quade_core(Y: np.ndarray, treatments: list[str]) -> QuadeResult:
                         "defined (read it as the strongest agreement the blocks can show, not as a number)")
     else:
         F = (b - 1) * B / (A2 - B)
-        p = float(stats.f.sf(F, df1, df2))
+        p = float(f_sf(F, df1, df2))
     if b < FEW_BLOCKS:
         warnings.append(f"only {b} blocks: the Quade test has little power")
     tab = pd.DataFrame({"treatment": treatments, "weighted_rank_sum": Sj, "mean_rank": R.mean(axis=1)})

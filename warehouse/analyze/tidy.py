@@ -16,8 +16,8 @@ from dataclasses import fields
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
+from warehouse.analyze.lean import f_sf
 from warehouse.errors import DesignError, InputError
 
 #: p-value below which a diagnostic check counts as failed (common practice).
@@ -219,7 +219,7 @@ def _f_test(ms_num: float, ms_den: float, df1: float, df2: float, scale: float) 
     if ms_den <= tiny:
         return float("nan"), float("nan")
     f = ms_num / ms_den
-    return float(f), float(stats.f.sf(f, df1, df2))
+    return float(f), float(f_sf(f, df1, df2))
 
 
 def _design_warnings(a: int, b: int, df_e: int) -> list[str]:
