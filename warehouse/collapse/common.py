@@ -179,18 +179,28 @@ def _sources(conn, table, where, dims: Dims) -> tuple[dict, dict, dict, dict]:
     host_name = {int(h): dims.hosts.get(int(h), "(unknown)") for h in seen["host_id"].dropna().unique()}
     when = _import_periods(conn, seen["import_id"].dropna().unique().tolist())
     hosts, campaigns, sources, periods = {}, {}, {}, {}
-    for s, g in seen.groupby("solver_id"):
-        t = dims.treatment(int(s))
-        by = g.groupby(["campaign_id", "host_id"], dropna=False)["runs"].sum()
-        where_from = [(dims.campaigns[int(c)], "(unknown)" if pd.isna(h) else host_name[int(h)], int(n))
-                      for (c, h), n in by.items()]
-        sources[t] = sorted(where_from)
+    if seen.empty:
+        return hosts, campaigns, sources, periods
+    # one grouping for every treatment at once (a grouping per treatment cost 0.1 s at 170); two
+    # solvers under one label count together, as the collapse groups them
+    label = {int(s): dims.treatment(int(s)) for s in seen["solver_id"].unique()}
+    seen["treatment"] = seen["solver_id"].map(label)
+    by = seen.groupby(["treatment", "campaign_id", "host_id"], dropna=False, sort=False)["runs"].sum()
+    for (t, c, h), n in by.items():
+        sources.setdefault(t, []).append((dims.campaigns[int(c)], "(unknown)" if pd.isna(h) else host_name[int(h)],
+                                          int(n)))
+    for t, where_from in sources.items():
+        where_from.sort()
         hosts[t] = sorted({h for _, h, _ in where_from})
         campaigns[t] = sorted({c for c, _, _ in where_from})
-        spans = [when[int(i)] for i in g["import_id"].unique() if int(i) in when]
+    imports: dict[str, set] = {}
+    for t, i in seen[["treatment", "import_id"]].drop_duplicates().itertuples(index=False):
+        imports.setdefault(t, set()).add(int(i))
+    for t, ids in imports.items():
+        spans = [when[i] for i in ids if i in when]
         firsts = [a for a, _ in spans if a is not None]
         lasts = [b for _, b in spans if b is not None]
-        periods[t] = (min(firsts) if firsts else None, max(lasts) if lasts else None, int(g["import_id"].nunique()))
+        periods[t] = (min(firsts) if firsts else None, max(lasts) if lasts else None, len(ids))
     return hosts, campaigns, sources, periods
 
 
@@ -219,21 +229,26 @@ def _with_values(treatments: list[str], obs: pd.DataFrame, notes: list[str], met
 def rows_frame(result, columns: list[str]) -> pd.DataFrame:
     """A query result as a frame, column by column (much quicker than row objects one by one).
 
-    Numbers come back as the driver gives them (PostgreSQL sums of integers are Decimals), so
-    each column is made numeric where it can be.
+    The rows go into one two-dimensional array of objects in a single numpy call, and each column
+    is made numeric from there (`zip(*rows)` took four times as long on 200,000 rows). Numbers
+    come back as the driver gives them (PostgreSQL sums of integers are Decimals), so each column
+    is made numeric where every value it holds is a number; text stays text.
     """
     rows = result.cursor.fetchall() if getattr(result, "cursor", None) is not None else result.all()
     result.close()
     if not rows:
         return pd.DataFrame({c: [] for c in columns})
-    frame = pd.DataFrame(dict(zip(columns, (np.asarray(col) if not isinstance(col[0], (str, bytes)) else col
-                                            for col in zip(*rows)))))
-    for c in frame.columns:
-        if frame[c].dtype == object:
-            conv = pd.to_numeric(frame[c], errors="coerce")
-            if conv.notna().sum() == frame[c].notna().sum():
-                frame[c] = conv
-    return frame
+    grid = np.empty((len(rows), len(columns)), dtype=object)
+    grid[:] = [tuple(r) for r in rows] if not isinstance(rows[0], tuple) else rows
+    out = {}
+    for i, c in enumerate(columns):
+        col = grid[:, i]
+        if isinstance(rows[0][i], (str, bytes)):
+            out[c] = col.tolist()
+            continue
+        conv = pd.to_numeric(col, errors="coerce")
+        out[c] = conv if int(pd.notna(conv).sum()) == int(pd.notna(col).sum()) else col
+    return pd.DataFrame(out)
 
 
 def _instances(conn, ids: list[int]) -> pd.DataFrame:

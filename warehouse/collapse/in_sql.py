@@ -33,52 +33,52 @@ def collapse_in_sql(conn, sl: Slice, dims: Dims, metric: str, slot: int, sense: 
     rows = _rows_from_blocks(conn, sl, dims, slot)
     if rows is None:
         try:
-            rows = conn.execute(_cells_statement(where)).all()
+            rows = _columns(conn.execute(_cells_statement(where)), ROWS)
         except DBAPIError:  # an integer sum past 64 bits, say: the pandas way has no such limit
             conn.rollback()
             return None
-    if not rows:
+    if rows is None:
         raise DesignError(f"no runs in slice '{brief(sl.text, 200) or '(everything)'}'; see blockyard inventory for what is stored")
-    label = {int(sid): dims.treatment(int(sid)) for sid in {r.solver_id for r in rows}}
-    if len(set(label.values())) != len(label):
+    solvers, s_code = np.unique(rows["solver_id"], return_inverse=True)
+    groups, g_code = np.unique(rows["group_id"], return_inverse=True)
+    labels = np.array([dims.treatment(int(s)) for s in solvers], dtype=object)
+    if len(set(labels)) != len(labels):
         return None  # two solvers under one label: the pandas way groups them
-    block = {int(g): dims.block(int(g)) for g in {r.group_id for r in rows}}
+    blocks = np.array([dims.block(int(g)) for g in groups], dtype=object)
+    t_of, b_of = labels[s_code], blocks[g_code]
     conflicts = _hash_conflicts(conn, where, dims)
     notes: list[str] = []
-    lost = sum(int(r.lost) for r in rows)
+    lost = int(rows["lost"].sum())
     if lost:
         notes.append(f"{lost} cells (treatment x instance) had no successful run and are missing")
-    fingerprint = _fingerprint_of([(label[int(r.solver_id)], block[int(r.group_id)], r.n, r.n_ok, r.n_fail, r.id_sum,
-                                    r.w_ids, r.cells, r.inst) for r in rows], st, metric, sl)
-    got = [r for r in rows if r.value is not None]
+    fingerprint = _fingerprint_of(list(zip(t_of.tolist(), b_of.tolist(), *(rows[k].tolist() for k in (
+        "n", "n_ok", "n_fail", "id_sum", "w_ids", "cells", "inst")))), st, metric, sl)
+    got = ~np.isnan(rows["value"])
     obs = pd.DataFrame({
-        "treatment": [label[int(r.solver_id)] for r in got], "block": [block[int(r.group_id)] for r in got],
-        "value": np.array([float(r.value) for r in got], dtype=float),
-        "instances": np.array([int(r.instances) for r in got], dtype=np.int64),
-        "runs": np.array([int(r.runs) for r in got], dtype=np.int64),
-        "failed": np.array([int(r.failed) for r in got], dtype=np.int64),
-        "ok": np.array([int(r.ok) for r in got], dtype=np.int64)})
+        "treatment": t_of[got].tolist(), "block": b_of[got].tolist(), "value": rows["value"][got],
+        "instances": rows["instances"][got], "runs": rows["runs"][got], "failed": rows["failed"][got],
+        "ok": rows["ok"][got]})
     obs = obs.sort_values(["treatment", "block"], kind="stable").reset_index(drop=True)
     per_block = obs.groupby("block")["instances"].first()  # every treatment of a block has its common instances
-    not_common = int(rows[0].valid_instances) - int(per_block.sum())
+    not_common = int(rows["valid_instances"][0]) - int(per_block.sum())
     if not_common:
         notes.append(f"{not_common} instances left out because not every treatment in their block has a value on them")
-    treatments = _with_values(sorted(set(label.values()), key=_treatment_key), obs, notes, metric)
-    obs, dropped = _holes(obs, sorted(set(block.values())), treatments, st)
+    treatments = _with_values(sorted(labels.tolist(), key=_treatment_key), obs, notes, metric)
+    obs, dropped = _holes(obs, sorted(set(blocks.tolist())), treatments, st)
     kept_blocks = sorted(obs["block"].unique())
     runs_used = int(obs["ok"].sum())
     instances_used = int(per_block.reindex(kept_blocks).sum()) if kept_blocks else 0
     obs = obs.drop(columns="ok")
-    fail_runs = sum(int(r.n_fail) for r in rows)
+    fail_runs = int(rows["n_fail"].sum())
     if fail_runs:
         notes.insert(0, f"{fail_runs} failed runs dropped")
     hosts, campaigns, sources, periods = _sources(conn, C, where, dims)
     return Collapsed(
         slice_text=sl.text, metric=metric, sense=sense, unit=unit, settings=st, obs=obs, _cells=None,
         treatments=treatments,
-        blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=sum(int(r.n) for r in rows), runs_used=runs_used,
+        blocks=kept_blocks, dropped_blocks=dropped, runs_in_slice=int(rows["n"].sum()), runs_used=runs_used,
         instances_used=instances_used, notes=notes, hosts=hosts, campaigns=campaigns, sources=sources, periods=periods,
-        fingerprint=fingerprint, max_run_id=max(int(r.id_max) for r in rows), hash_conflicts=conflicts)
+        fingerprint=fingerprint, max_run_id=int(rows["id_max"].max()), hash_conflicts=conflicts)
 
 
 def _cells_statement(where):
@@ -124,9 +124,9 @@ def _cells_statement(where):
     return query
 
 
-def _rows_from_blocks(conn, sl: Slice, dims: Dims, slot: int) -> list | None:
-    """The rows of the collapse statement read from the block summaries (schema 0006), or None
-    when they cannot give them exactly and the cells must be summed.
+def _rows_from_blocks(conn, sl: Slice, dims: Dims, slot: int) -> dict | None:
+    """The rows of the collapse statement read from the block summaries (schema 0006), as
+    `_columns` gives them, or None when they cannot give them exactly and the cells must be summed.
 
     They can when the slice takes whole campaigns, treatments and blocks, no treatment's block
     came from two imports (a cell split between imports sums across them), and in every block
@@ -134,31 +134,59 @@ def _rows_from_blocks(conn, sl: Slice, dims: Dims, slot: int) -> list | None:
     solver of that import has one on: then the instances every treatment shares are all of them,
     and each block row is the observation as it stands.
     """
-    from types import SimpleNamespace
-
     from ..select.resolve import blocks_can_answer
 
     if not blocks_can_answer(sl):
         return None
     B = S.block_stats
-    got = conn.execute(select(B).where(condition(sl, dims, conn, table=B), B.c.slot == slot)).all()
-    if not got:
+    names = ["solver_id", "group_id", "import_id", "n", "n_ok", "n_fail", "id_sum", "w_ids", "cells", "inst", "id_max",
+             "lost", "vcells", "vsum", "v_n", "v_fail", "v_ok", "group_valued"]
+    got = _columns(conn.execute(select(*(B.c[k] for k in names)).where(condition(sl, dims, conn, table=B),
+                                                                       B.c.slot == slot)),
+                   {k: (float if k == "vsum" else int) for k in names})
+    if got is None:
         return None
-    seen: set[tuple[int, int]] = set()
-    source: dict[int, tuple[int, int]] = {}  # group -> (import, instances valued there)
-    for r in got:
-        key = (int(r.solver_id), int(r.group_id))
-        if key in seen:
-            return None
-        seen.add(key)
-        if r.vcells:
-            if int(r.vcells) != int(r.group_valued):
-                return None
-            if source.setdefault(int(r.group_id), (int(r.import_id), int(r.group_valued)))[0] != int(r.import_id):
-                return None
-    valid = sum(k for _, k in source.values())
-    return [SimpleNamespace(
-        solver_id=r.solver_id, group_id=r.group_id, n=int(r.n), n_ok=int(r.n_ok), n_fail=int(r.n_fail),
-        id_sum=int(r.id_sum), w_ids=int(r.w_ids), cells=int(r.cells), inst=int(r.inst), id_max=int(r.id_max),
-        lost=int(r.lost), value=(float(r.vsum) / int(r.vcells)) if r.vcells else None, instances=int(r.vcells),
-        runs=int(r.v_n), failed=int(r.v_fail), ok=int(r.v_ok), valid_instances=valid) for r in got]
+    key = got["solver_id"] * (int(got["group_id"].max()) + 1) + got["group_id"]
+    if len(np.unique(key)) != len(key):
+        return None
+    valued = got["vcells"] > 0
+    if (got["vcells"][valued] != got["group_valued"][valued]).any():
+        return None
+    per_group = pd.DataFrame({"group": got["group_id"][valued], "import": got["import_id"][valued],
+                              "valued": got["group_valued"][valued]}).drop_duplicates()
+    if per_group["group"].duplicated().any():  # the valued treatments of a block came from two imports
+        return None
+    out = {k: got[k] for k in ("solver_id", "group_id", "n", "n_ok", "n_fail", "id_sum", "w_ids", "cells", "inst",
+                               "id_max", "lost")}
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out["value"] = np.where(valued, got["vsum"] / np.where(valued, got["vcells"], 1), np.nan)
+    out.update(instances=got["vcells"], runs=got["v_n"], failed=got["v_fail"], ok=got["v_ok"],
+               valid_instances=np.full(len(key), int(per_group["valued"].sum()), dtype=np.int64))
+    return out
+
+
+#: the collapse statement's columns and their kinds
+ROWS = {"solver_id": int, "group_id": int, "n": int, "n_ok": int, "n_fail": int, "id_sum": int, "w_ids": int,
+        "cells": int, "inst": int, "id_max": int, "lost": int, "value": float, "instances": int, "runs": int,
+        "failed": int, "ok": int, "valid_instances": int}
+
+
+def _columns(result, kinds: dict) -> dict | None:
+    """A result's rows as one numpy array per column (None when there are none): whole numbers
+    exactly as int64 (PostgreSQL's sums come as Decimals; a sum over no row, NULL, as 0), the
+    rest as float64 with NaN for NULL. One numpy call takes the rows apart, not a loop over them."""
+    rows = result.cursor.fetchall() if getattr(result, "cursor", None) is not None else [tuple(r) for r in result]
+    result.close()
+    if not rows:
+        return None
+    grid = np.empty((len(rows), len(kinds)), dtype=object)
+    grid[:] = rows
+    out = {}
+    for i, (k, kind) in enumerate(kinds.items()):
+        col = grid[:, i]
+        empty = col == None  # noqa: E711 (element-wise)
+        if kind is int:
+            out[k] = np.where(empty, 0, col).astype(np.int64) if empty.any() else col.astype(np.int64)
+        else:
+            out[k] = np.where(empty, np.nan, col).astype(np.float64)
+    return out

@@ -82,10 +82,14 @@ def cell_counts(conn, sl: Slice, metric: str | None, from_runs: bool = False) ->
     got = rows_frame(conn.execute(query), columns=["solver_id", "instance_id", "runs", "failed"])
     if got.empty:
         return pd.DataFrame({c: [] for c in ("treatment", "instance", "runs", "failed")})
-    label = {int(s): dims.treatment(int(s)) for s in got["solver_id"].unique()}
-    order = {t: i for i, t in enumerate(sorted(set(label.values()), key=_treatment_key))}
-    out = pd.DataFrame({"treatment": got["solver_id"].map(lambda s: label[int(s)]),
-                        "instance": got["instance_id"].astype(np.int64),
-                        "runs": got["runs"].astype(np.int64), "failed": got["failed"].astype(np.int64)})
-    # in natural version order, so that the failures part lists the treatments as the analysis does
-    return out.iloc[out["treatment"].map(order).argsort(kind="stable")].reset_index(drop=True)
+    # each solver's label and place in natural version order looked up once, then spread by code
+    # (so that the failures part lists the treatments as the analysis does)
+    solvers, code = np.unique(got["solver_id"].to_numpy(dtype=np.int64), return_inverse=True)
+    labels = np.array([dims.treatment(int(s)) for s in solvers], dtype=object)
+    order = {t: i for i, t in enumerate(sorted(set(labels), key=_treatment_key))}
+    rank = np.array([order[t] for t in labels], dtype=np.int64)[code]
+    keep = np.argsort(rank, kind="stable")
+    return pd.DataFrame({"treatment": labels[code][keep].tolist(),
+                         "instance": got["instance_id"].to_numpy(dtype=np.int64)[keep],
+                         "runs": got["runs"].to_numpy(dtype=np.int64)[keep],
+                         "failed": got["failed"].to_numpy(dtype=np.int64)[keep]})
