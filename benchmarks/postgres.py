@@ -38,7 +38,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from common import PY, ROOT, timed  # noqa: E402
+from common import PY, timed  # noqa: E402
 
 SERVER_ENV = "BLOCKYARD_BENCH_PG"
 DEFAULT_SERVER = "postgresql://postgres@127.0.0.1/postgres"

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import argparse
 import shutil
-import sqlite3
 import statistics
 import sys
 import tempfile
@@ -140,7 +139,7 @@ def main() -> None:
         mem[label] = peak_rss_mib([PY, "-m", "warehouse", "load", str(f), "--campaign", "bulk", "-w", str(db)])
     for s in ("", "-wal", "-shm"):
         Path(str(work / "mem.db") + s).unlink(missing_ok=True)
-    print(f"\n2. peak memory of a load")
+    print("\n2. peak memory of a load")
     print(f"   {small:,} runs            {mem['one night']:6d} MiB")
     print(f"   {small * nights:,} runs           {mem['all nights']:6d} MiB   ratio {mem['all nights'] / mem['one night']:4.2f} "
           f"(flat is 1.0; target under 1024 MiB)")
@@ -187,7 +186,7 @@ def main() -> None:
     n10 = best(lambda: timed([PY, "-c", NAIVE_ANALYSIS, last.stem, *map(str, files)])[0], min(a.repeat, 2))
     s, l = times[("blocktest", "small")], times[("blocktest", "large")]
     rs, rl = times[("blocktest", "small", "resident")], times[("blocktest", "large", "resident")]
-    print(f"\n4. blocktest against a pandas + statsmodels script re-reading the CSV files (whole processes)")
+    print("\n4. blocktest against a pandas + statsmodels script re-reading the CSV files (whole processes)")
     print(f"   {small:,} runs:  script {n1:6.2f} s   blockyard cold {s:6.2f} s   ratio {s / n1:5.3f};"
           f"   with the resident {rs:6.2f} s   ratio {rs / n1:5.3f} (target <= 0.5)")
     print(f"   {small * nights:,} runs: script {n10:6.2f} s   blockyard cold {l:6.2f} s   ratio {l / n10:5.3f};"
@@ -197,7 +196,7 @@ def main() -> None:
     print(f"   import floor: python -c 'import pandas, scipy.stats, scipy.optimize, sqlalchemy' {floor:5.2f} s, "
           f"{floor / n1:5.3f} / {floor / n10:5.3f} of the script before a row is read")
     warm = {label: warm_blocktest(db, slice_, a.repeat) for label, db in (("small", small_db), ("large", large_db))}
-    print(f"   in a running shell (the libraries already imported; the same command, timed inside one process):")
+    print("   in a running shell (the libraries already imported; the same command, timed inside one process):")
     print(f"   {small:,} runs:  {warm['small']:6.2f} s   ratio {warm['small'] / n1:5.3f}")
     print(f"   {small * nights:,} runs: {warm['large']:6.2f} s   ratio {warm['large'] / n10:5.3f}")
 

@@ -448,7 +448,7 @@ def test_plan_splits_alpha_over_comparisons(cli):
 
 
 def test_plan_takes_sigma_from_a_stored_analysis(blocked, cli):
-    from statsmodels.stats.power import FTestAnovaPower, TTestPower
+    from statsmodels.stats.power import TTestPower
 
     bt = cli("blocktest", "--metric", "pallets", "--json").json()
     ms = bt["residual_ms"]

@@ -143,6 +143,10 @@ def test_the_cell_summaries_and_the_runs_count_the_same_failures(failing, wh):
         runs = run_blocktest(conn, parse(""), "pallets", Collapse(), quick=False).to_dict()["failures"]
         seeds = run_versus(conn, parse("seed<=2"), "pallets", Collapse(), "stacker@1.4").to_dict()["failures"]
     assert quick == runs
+    with wh.engine.connect() as conn:  # the quick one took the counts form: every treatment ran every instance
+        from warehouse.collapse.observations import failure_counts
+        counts = failure_counts(conn, parse(""), "pallets")
+    assert counts is not None and len(counts["failing"]) and len(counts["failing"]) < len(counts["instances"]) * 3
     cells, _ = by_hand([r for r in failing if r["seed"] <= 2])  # a seed term: the runs are read
     assert {r["treatment"]: r["failed"] for r in seeds["per_treatment"]} == \
         cells.groupby("treatment")["failed"].sum().to_dict()

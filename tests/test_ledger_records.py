@@ -9,7 +9,6 @@ import random
 
 import numpy as np
 import pandas as pd
-import pytest
 from sqlalchemy import select
 
 from warehouse.ledger.kept import canon, clean, digest, records, software

@@ -23,6 +23,7 @@ from warehouse.analyze.failures import (
     EXACT_BELOW,
     cochran_q,
     compare_solved,
+    compare_solved_counts,
     failure_rates,
     mcnemar,
     mcnemar_counts,
@@ -266,3 +267,42 @@ def test_log_scale_differences_become_ratios_of_geometric_means():
     assert pairs.to_dict()["original_scale"]["shift"] == 0.0
     with pytest.raises(InputError, match="mean ranks"):
         ratios_from_log(conover_friedman(obs))
+
+
+# --- the counts form (what the database's cell summaries give) against the full table ----------
+
+def _counts_of(cells: pd.DataFrame, names: list[str]) -> dict:
+    """The arguments of compare_solved_counts, counted from a full table of cells in pandas."""
+    per = cells.groupby("treatment")[["runs", "failed"]].sum().reindex(names)
+    failing = cells[cells["failed"] > 0].reset_index(drop=True)
+    return {"treatments": names, "instances": sorted(cells["instance"].unique()), "runs": per["runs"].tolist(),
+            "failed": per["failed"].tolist(), "failing": failing}
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_the_counts_form_gives_what_the_full_table_gives(seed):
+    # invented cells (for the check only): every treatment on every instance, failures scattered,
+    # sometimes none, sometimes a treatment failing everywhere; both forms must agree to the last
+    # digit, with and without a baseline, and for two treatments (McNemar)
+    rng = np.random.default_rng(seed)
+    k = [2, 3, 5, 8][seed % 4]
+    names = [f"s@{i + 1}" for i in range(k)]
+    n_inst = int(rng.integers(1, 60))
+    rows = []
+    for t_i, t in enumerate(names):
+        rate = [0.0, 0.05, 0.3, 1.0][(seed + t_i) % 4] if seed % 5 else 0.0
+        for inst in rng.permutation(n_inst) * 7 + 3:
+            runs = int(rng.integers(1, 6))
+            rows.append((t, int(inst), runs, int(rng.binomial(runs, rate))))
+    cells = pd.DataFrame(rows, columns=["treatment", "instance", "runs", "failed"])
+    for baseline in (None, names[-1]):
+        for share in (0.5, 1.0):
+            full = compare_solved(cells, baseline=baseline, treatments=names, share=share).to_dict()
+            counted = compare_solved_counts(**_counts_of(cells, names), baseline=baseline, share=share).to_dict()
+            assert json.dumps(counted, sort_keys=True) == json.dumps(full, sort_keys=True)
+
+
+def test_the_counts_form_refuses_a_failing_cell_outside_its_counts():
+    cells = pd.DataFrame({"treatment": ["s@1"], "instance": [99], "runs": [2], "failed": [1]})
+    with pytest.raises(InputError, match="not among the counts"):
+        compare_solved_counts(["s@1", "s@2"], [1, 2], [4, 4], [1, 0], cells)

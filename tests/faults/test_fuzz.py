@@ -20,7 +20,7 @@ import pytest
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
-from conftest import ON_POSTGRES, run_counts
+from conftest import run_counts
 
 from . import fresh_warehouse, in_process, one_line, raw_engine, runs_csv, sql, table_counts
 
@@ -634,7 +634,7 @@ def test_names_that_look_like_sql_load_slice_and_report_as_plain_names(cli, loca
     doc = bt.json()
     assert sorted(doc["treatment_names"]) == sorted([f"{EVIL_SOLVER}@1", "plain@1"])
     assert doc["blocks"] == 4
-    vs = cli("versus", f"plain@1", "--slice", f'solver="{EVIL_SOLVER}",plain', "--metric", EVIL_METRIC, "--json")
+    vs = cli("versus", "plain@1", "--slice", f'solver="{EVIL_SOLVER}",plain', "--metric", EVIL_METRIC, "--json")
     assert vs.code == 0, vs
     assert [c["treatment"] for c in vs.json()["comparisons"]] == [f"{EVIL_SOLVER}@1"]
     kept = cli("keep", EVIL_SOLVER + " wins", "--tag", EVIL_INSTANCE, "--json")

@@ -118,14 +118,17 @@ def censored_runtimes(conn, sl: Slice, metric: str | None, cutoff: float, refere
 def failure_part(conn, sl: Slice, c: Collapsed, baseline: str | None = None, quick: bool = True):
     """Failure rates per treatment and the test of whether solving depends on the treatment, on the
     instances every treatment of the slice ran (a treatment whose runs all failed included: the
-    collapse leaves it out of the values, not out of this). One small query over the cell
-    summaries (the runs themselves when not `quick`); the collapse's own per-instance table holds
+    collapse leaves it out of the values, not out of this). Counted by the database from the
+    cell summaries where every treatment ran every instance (`failure_counts`), else from the
+    full table of cells (the runs themselves when not `quick`); the collapse's own per-instance table holds
     only the instances with values, so it cannot serve here. Returns the FailuresResult, its
     cautions already worded for the analysis."""
-    from ..analyze.failures import compare_solved
-    from ..collapse.observations import cell_counts
+    from ..analyze.failures import compare_solved, compare_solved_counts
+    from ..collapse.observations import cell_counts, failure_counts
 
-    res = compare_solved(cell_counts(conn, sl, c.metric, from_runs=not quick), baseline)
+    counts = failure_counts(conn, sl, c.metric) if quick else None
+    res = (compare_solved_counts(**counts, baseline=baseline) if counts is not None
+           else compare_solved(cell_counts(conn, sl, c.metric, from_runs=not quick), baseline))
     if c.settings.get("failures") == "drop" and res.test.p is not None and res.test.p < ALPHA:
         # the values above are those of successful runs: the treatment that fails more is judged
         # on its easier runs

@@ -319,6 +319,47 @@ def compare_solved(cells, baseline: str | None = None, treatments: list[str] | N
     on = df[df["instance"].isin(subjects)]
     rates = failure_rates(on, names) if len(on) else pd.DataFrame({"treatment": names, "runs": 0, "failed": 0,
                                                                      "failed_share": None})
+    return _judged(names, wide, left_out, rates, baseline, share)
+
+
+def compare_solved_counts(treatments: list[str], instances, runs, failed, failing, baseline: str | None = None,
+                          share: float = SOLVED_SHARE) -> FailuresResult:
+    """`compare_solved` from counts, for a slice in which every treatment ran every instance:
+    what the database's cell summaries give without sending one row per cell.
+
+    `treatments` in the order of the rows; `instances` the ids of the instances (each one run by
+    every treatment); `runs` and `failed` the treatments' runs and failed runs on them (in the
+    order of `treatments`); `failing` the cells with a failed run, with the columns treatment,
+    instance, runs and failed. Every other cell had no failed run, so it is solved. The result is
+    the one `compare_solved` gives on the full table of cells (tests/analyze/test_failures.py
+    holds the two side by side)."""
+    if not 0 < share <= 1:
+        raise InputError(f"share {share!r}: give the share of runs that must succeed, above 0 and at most 1")
+    names = list(treatments)
+    if baseline is not None and baseline not in names:
+        raise DesignError(f"baseline {baseline} has no runs among the cells; treatments there: {', '.join(names)}")
+    inst = np.unique(np.asarray(instances, dtype=np.int64))  # in order, as the full table's rows
+    solved = np.ones((len(inst), len(names)), dtype=bool)
+    f = _cells(failing)
+    if len(f):
+        row = np.searchsorted(inst, f["instance"].to_numpy(dtype=np.int64))
+        col = pd.Index(names).get_indexer(f["treatment"])
+        if not len(inst) or (col < 0).any() or (row >= len(inst)).any() \
+                or (inst[np.minimum(row, len(inst) - 1)] != f["instance"].to_numpy()).any():
+            raise InputError("failing cells name an instance or treatment not among the counts")
+        ok = (f["runs"] - f["failed"]).to_numpy() >= share * f["runs"].to_numpy()
+        solved[row, col] = ok
+    wide = pd.DataFrame(solved, index=pd.Index(inst, name="instance"), columns=pd.Index(names, name="treatment"))
+    r = np.asarray(runs, dtype=np.int64)
+    fl = np.asarray(failed, dtype=np.int64)
+    rates = pd.DataFrame({"treatment": names, "runs": r, "failed": fl,
+                          "failed_share": [int(a) / int(b) if b else None for a, b in zip(fl, r)]})
+    return _judged(names, wide, 0, rates, baseline, share)
+
+
+def _judged(names: list[str], wide: pd.DataFrame, left_out: int, rates: pd.DataFrame, baseline: str | None,
+            share: float) -> FailuresResult:
+    """The failures result from the solved table (subjects x treatments) and the rates on it."""
     per = []
     for r in rates.itertuples(index=False):
         unsolved = int((~wide[r.treatment]).sum()) if len(wide) else 0

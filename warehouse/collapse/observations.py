@@ -25,7 +25,7 @@ from .settings import Collapse
 from ..store import schema as S
 
 # what the layers above import from here (the result type and the settings' reading live in common.py)
-__all__ = ["Collapsed", "cell_counts", "collapse", "parse_settings", "rows_frame"]
+__all__ = ["Collapsed", "cell_counts", "collapse", "failure_counts", "parse_settings", "rows_frame"]
 
 
 def collapse(conn, sl: Slice, metric: str | None, settings: Collapse, cells: bool = True,
@@ -93,3 +93,44 @@ def cell_counts(conn, sl: Slice, metric: str | None, from_runs: bool = False) ->
                          "instance": got["instance_id"].to_numpy(dtype=np.int64)[keep],
                          "runs": got["runs"].to_numpy(dtype=np.int64)[keep],
                          "failed": got["failed"].to_numpy(dtype=np.int64)[keep]})
+
+
+def failure_counts(conn, sl: Slice, metric: str | None) -> dict | None:
+    """What the failures part needs, counted by the database, when every treatment of slice `sl`
+    ran every instance of it: the treatments in natural version order, the instances, each
+    treatment's runs and failed runs, and only the cells with a failed run (a few per cent of
+    them, where `cell_counts` sends every cell). The arguments of
+    `analyze.failures.compare_solved_counts`; None when the slice is not like that (some instance
+    not run by every treatment, two solvers under one label, a slice the cell summaries cannot
+    answer): `cell_counts` then gives the full table."""
+    if not cells_can_answer(sl):
+        return None
+    dims = Dims.load(conn)
+    metric, slot, _, _ = _metric(dims, metric)
+    C = S.cell_stats
+    where = (condition(sl, dims, conn, table=C), C.c.slot == slot, C.c.n > 0)
+    per_solver = conn.execute(select(C.c.solver_id, _whole(func.sum(C.c.n)), _whole(func.sum(C.c.n_fail)))
+                              .where(*where).group_by(C.c.solver_id)).all()
+    if not per_solver:
+        return None
+    label = {int(s): dims.treatment(int(s)) for s, _, _ in per_solver}
+    if len(set(label.values())) != len(label):
+        return None
+    k = len(label)
+    per_instance = conn.execute(select(C.c.instance_id, func.count(func.distinct(C.c.solver_id)))
+                                .where(*where).group_by(C.c.instance_id)).all()
+    if any(int(n) != k for _, n in per_instance):
+        return None  # an instance some treatment did not run: the full table says which are left out
+    failing = rows_frame(conn.execute(select(C.c.solver_id, C.c.instance_id, _whole(func.sum(C.c.n)),
+                                             _whole(func.sum(C.c.n_fail)))
+                                      .where(*where).group_by(C.c.solver_id, C.c.instance_id)
+                                      .having(func.sum(C.c.n_fail) > 0)),
+                         columns=["solver_id", "instance", "runs", "failed"])
+    order = sorted(per_solver, key=lambda r: _treatment_key(label[int(r[0])]))
+    return {"treatments": [label[int(r[0])] for r in order],
+            "instances": np.array([int(i) for i, _ in per_instance], dtype=np.int64),
+            "runs": [int(r[1]) for r in order], "failed": [int(r[2]) for r in order],
+            "failing": pd.DataFrame({"treatment": [label[int(s)] for s in failing["solver_id"]],
+                                     "instance": failing["instance"].to_numpy(dtype=np.int64),
+                                     "runs": failing["runs"].to_numpy(dtype=np.int64),
+                                     "failed": failing["failed"].to_numpy(dtype=np.int64)})}

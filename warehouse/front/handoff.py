@@ -26,6 +26,10 @@ import struct
 import sys
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # for the annotations only: socket is imported where a resident answers
+    import socket
 
 # commands that read the warehouse (or write only the ledger) and print: the ones worth forwarding
 FORWARDED = frozenset({"peek", "blocktest", "versus", "plan", "recall", "recheck", "inventory", "keep"})
