@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import select
 
-from warehouse.ledger.kept import canon, clean, digest, records, software
+from warehouse.ledger.kept import canon, canon_records, clean, digest, records, software
 
 
 def slow_clean(obj):
@@ -45,6 +45,22 @@ def test_records_equal_clean_of_to_dict():
     assert canon(records(df)) == canon(clean(df.to_dict("records")))
     other = df.assign(o=pd.Series([np.float64(1.0), "x", None], dtype=object))  # pandas' own boxing then
     assert canon(records(other)) == canon(clean(other.to_dict("records")))
+
+
+def test_canon_records_writes_the_text_json_dumps_writes():
+    """The column-wise text against the standard library's json.dumps of the records (the
+    reference: Python documentation, json.dumps with sort_keys and compact separators)."""
+    df = pd.DataFrame({"treatment": pd.Series(["a\"b", None, "caf\u00e9 %s"], dtype="str"),
+                       "block": ["f/g1", "f/g2", "ünï/🧱"], "value": [1.25, math.nan, -0.0],
+                       "big": [1e308, -math.inf, 1e-320], "instances": [2, 3, 4],
+                       "runs": np.array([1, 2, -3], dtype=np.int32), "flag": [True, False, True],
+                       "100%": np.array([7, 8, 9], dtype=np.uint8)})
+    assert canon_records(df) == canon(records(df))
+    assert canon_records(df.iloc[:0]) == canon(records(df.iloc[:0])) == "[]"
+    assert canon_records(df[["value"]]) == canon(records(df[["value"]]))
+    other = df.assign(o=pd.Series([np.float64(1.0), "x", None], dtype=object))  # the general way
+    assert canon_records(other) == canon(records(other))
+    assert json.loads(canon_records(df))[2]["block"] == "ünï/🧱"
 
 
 def test_software_names_the_installed_versions_without_importing_them():

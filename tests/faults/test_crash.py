@@ -45,12 +45,12 @@ def sqlite_writer_active(path) -> bool:
 
 
 def server_writer_active(location) -> bool:
-    """PostgreSQL documentation, pg_locks: a granted lock on this schema's runs table in SHARE ROW
+    """PostgreSQL documentation, pg_locks: a granted lock on this schema's runs table in ROW
     EXCLUSIVE mode is held by a load for its whole transaction (it takes it first)."""
     return sql(location, """
         SELECT count(*) FROM pg_locks l JOIN pg_class c ON c.oid = l.relation
         JOIN pg_namespace n ON n.oid = c.relnamespace
-        WHERE c.relname = 'runs' AND n.nspname = :schema AND l.mode = 'ShareRowExclusiveLock' AND l.granted
+        WHERE c.relname = 'runs' AND n.nspname = :schema AND l.mode = 'RowExclusiveLock' AND l.granted
     """, schema=schema_of(location))[0][0] > 0
 
 

@@ -89,6 +89,23 @@ class BlocktestResult(Shown):
         return render_blocktest(self)
 
 
+# imported by a helper thread while the collapse's SQL runs (prefetch)
+_ANALYSIS_MODULES = ("warehouse.analyze.anova", "warehouse.analyze.designs", "warehouse.collapse.cautions")
+
+
+def prefetch(modules) -> None:
+    """Start importing these modules in a helper thread (a cold command: scipy.special and the
+    analysis modules load while the collapse waits on the database, which lets go of Python's
+    lock meanwhile); whoever imports one of them next waits for the helper to finish it."""
+    import sys
+    import threading
+    from importlib import import_module
+
+    todo = [m for m in modules if m not in sys.modules]
+    if todo:
+        threading.Thread(target=lambda: [import_module(m) for m in todo], name="blockyard-imports", daemon=True).start()
+
+
 def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, transform: str = "none",
                   design: str = "auto", pairs: bool | str = False, quick: bool = True,
                   cutoff: float | None = None) -> BlocktestResult:
@@ -96,11 +113,6 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
     and leave out the per-instance table (the generalized design needs it; re-checks of analyses
     kept by Blockyard 0.1 need the pandas collapse for their fingerprint). With `cutoff`, the
     runs' times are also read as censored at it (see `censored_runtimes`)."""
-    from ..analyze.anova import rcbd_anova
-    from ..analyze.designs import generalized_anova, incomplete_anova
-    from ..analyze.tidy import refuse_overflow
-    from ..collapse.cautions import design_cautions, host_caution, imputed_failures, pooling_cautions, pseudo_replication
-
     if transform not in ("none", "log", "boxcox", "rank"):
         raise InputError(f"--transform {transform}: choose none, log, boxcox or rank")
     if design not in ("auto", "complete", "incomplete", "generalized"):
@@ -110,7 +122,13 @@ def run_blocktest(conn, sl: Slice, metric: str | None, settings: Collapse, trans
         settings = Collapse(settings.replicates, settings.instances, settings.failures, "keep")
     cutoff = read_cutoff(cutoff)
     # not quick: a recheck, which reads the runs themselves rather than the summaries
+    prefetch(_ANALYSIS_MODULES)
     c = collapse(conn, sl, metric, settings, cells=design == "generalized" or not quick, from_runs=not quick)
+    from ..analyze.anova import rcbd_anova
+    from ..analyze.designs import generalized_anova, incomplete_anova
+    from ..analyze.tidy import refuse_overflow
+    from ..collapse.cautions import design_cautions, host_caution, imputed_failures, pooling_cautions, pseudo_replication
+
     if len(c.treatments) < 2:
         raise DesignError(f"the slice holds one treatment ({', '.join(c.treatments)}); a blocked comparison needs two or more")
     if c.obs.empty:

@@ -18,7 +18,8 @@ def is_time_metric(name: str, unit: str) -> bool:
 def host_caution(c: Collapsed, baseline: str | None = None) -> list[str]:
     if not is_time_metric(c.metric, c.unit):
         return []
-    sets = {t: tuple(h) for t, h in c.hosts.items() if t in c.treatments}
+    # in the treatments' order (the hosts come in whatever order the database returned them)
+    sets = {t: tuple(c.hosts[t]) for t in c.treatments if t in c.hosts}
     if len(set(sets.values())) <= 1:
         return []
     if baseline and baseline in sets:

@@ -39,7 +39,7 @@ from ..errors import InputError, StorageError
 from ..store import partitions
 from ..store import schema as S
 from ..store.bulk import BULK_MIN_ROWS, BulkJournal
-from ..store.connect import Warehouse, hold_runs_for_load
+from ..store.connect import Warehouse, hold_runs_for_load, take_run_ids
 from . import early, reload, runkey
 from .cellsums import Summing, run_statements
 from .checks import FileLoad, Rows, checked
@@ -111,6 +111,7 @@ def _load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | 
                           message=reload.duplicate_message(earlier))
     replaces = reload.replaced(wh, shown, earlier)
     block = BLOCK_BYTES
+    deadlocks = 0
     try:
         while True:
             try:
@@ -119,6 +120,14 @@ def _load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | 
                 break
             except LongRecord as exc:  # nothing was stored: read it all again in a larger block
                 block = block_for(info, exc.block)
+            except Exception as exc:
+                # a server: two loads of other campaigns each waited for the other (one adding a
+                # metric's column while the other waited to add a name) and the server rolled this
+                # one back; nothing was stored, so it starts again (PostgreSQL documentation,
+                # "Deadlocks": the transaction is retried)
+                if _sqlstate(exc) != "40P01" or deadlocks >= DEADLOCK_RETRIES:
+                    raise
+                deadlocks += 1
     except OperationalError as exc:
         raise StorageError(f"cannot write to warehouse {wh.display}: {_db_reason(exc)}; nothing from {shown} was stored") from None
     except IntegrityError as exc:
@@ -131,12 +140,16 @@ def _load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | 
         if not _is_driver_error(exc):
             raise
         raise StorageError(f"cannot write to warehouse {wh.display}: {_db_reason(exc)}; nothing from {shown} was stored") from None
+    if deadlocks:
+        report.warnings.append(f"the server rolled this load back {deadlocks} time{'s' if deadlocks > 1 else ''} to "
+                               "end a deadlock with another load, and it was started again from the file")
     if again and not earlier:
         report.warnings.append("--again: these bytes were not loaded before; loaded as any new file")
-    # No ANALYZE after a load: statistics sampled from the first rows of an index (analysis_limit)
-    # told the planner a campaign holds a thousand runs and sent date slices through the campaign
-    # index instead of their id ranges, and full statistics cost a pass over every index on each
-    # nightly load. The planner's own estimates serve every slice the benchmarks time.
+    # No ANALYZE of a SQLite warehouse after a load: statistics sampled from the first rows of an
+    # index (analysis_limit) told the planner a campaign holds a thousand runs and sent date
+    # slices through the campaign index instead of their id ranges, and full statistics cost a
+    # pass over every index on each nightly load. The planner's own estimates serve every slice
+    # the benchmarks time. (A server's summaries are analyzed after a large load: _write.)
     return report
 
 
@@ -155,7 +168,7 @@ def _load(wh: Warehouse, info: SourceInfo, p: Path, campaign: str, layout: Layou
     report = FileReport(file=info.name, status="loaded", campaign=campaign, replaces=replaces)
     fl = FileLoad(info, layout, skip_bad, block)
     fl.replaces = replaces
-    total = max(info.lines - (1 if info.delimited else 0), 1)
+    total = max(_records_at_most(info), 1)
     with wh.engine.connect() as conn:  # the metrics known already (they are not guessed at)
         fl.known_metrics = {r[0] for r in conn.execute(select(S.metrics.c.name))}
     # The reading starts now, in a helper thread where it can, while the write transaction opens
@@ -204,6 +217,7 @@ class _Import:
     next_id: int
     first_id: int
     partition: str | None = None  # PostgreSQL: the campaign's new partition, attached at the end
+    id_end: int | None = None  # PostgreSQL: one past the block of run ids the load took
     writer: Writer | None = None
     read: int = 0
     loaded: int = 0
@@ -221,15 +235,21 @@ def _write(wh: Warehouse, p: Path, campaign: str, layout: Layout, fl: FileLoad, 
     with wh.write() as conn, ForeignKeysOff(conn, wh.is_sqlite), BulkJournal(conn, writes_sqlite, bulk_wanted, total):
         with conn.begin() as trans:
             imp = _open_import(conn, wh, p, campaign, layout, fl, allow_bulk and not dry_run, total)
-            for raw, rows, n_read in chunks:
-                imp.read += n_read
-                if not report.preview:
-                    report.preview = rows.preview()
-                if len(rows) == 0:
-                    continue
-                _write_chunk(imp, wh, layout, fl, raw, rows, summing, report)
-                if progress:
-                    progress(min(imp.read, total), total)
+            try:
+                for raw, rows, n_read in chunks:
+                    imp.read += n_read
+                    if not report.preview:
+                        report.preview = rows.preview()
+                    if len(rows) == 0:
+                        continue
+                    _write_chunk(imp, wh, layout, fl, raw, rows, summing, report)
+                    if progress:
+                        progress(min(imp.read, total), total)
+                if imp.writer is not None:
+                    imp.writer.wait()  # the last chunk is in (a server: sent by a helper thread)
+            finally:
+                if imp.writer is not None:
+                    imp.writer.close()
             _refuse_empty(fl, imp.read)
             # the helper merges the cell sums and checks the run hashes while this thread checks the numbering
             if wh.is_sqlite and not imp.skipped:
@@ -275,6 +295,10 @@ def _write(wh: Warehouse, p: Path, campaign: str, layout: Layout, fl: FileLoad, 
                 target = Path(rejects) if rejects else p.with_name(p.name + ".rejects.csv")
                 write_rejects(target, fl.rejects, shown, fl.header)
                 report.rejects_file = str(target)
+    if not wh.is_sqlite and loaded:
+        from ..store import cells
+
+        cells.refresh_statistics(wh.engine, imp.import_id)
     parts = [f"{loaded} {'run' if loaded == 1 else 'runs'} loaded into campaign {campaign}"]
     if fl.replaces is not None:
         parts.append(f"in place of import {fl.replaces} (wholly retracted)")
@@ -290,7 +314,7 @@ def _open_import(conn, wh: Warehouse, p: Path, campaign: str, layout: Layout, fl
                  total: int) -> _Import:
     """The import's row, the names known already, and the way its runs are kept once per campaign."""
     if wh.dialect == "postgresql":
-        hold_runs_for_load(conn)
+        hold_runs_for_load(conn, campaign)
     cid = campaign_id(conn, campaign)
     fl.chain = reload.replaced_chain(conn, fl.replaces)
     import_id = conn.execute(insert(S.imports).values(
@@ -299,7 +323,10 @@ def _open_import(conn, wh: Warehouse, p: Path, campaign: str, layout: Layout, fl
         rows_read=0, rows_loaded=0, rows_rejected=0, rows_skipped=0,
         loaded_at=int(time.time()), tool_version=__version__)).inserted_primary_key[0]
     dims = Dimensions(conn)
-    next_id = (conn.execute(select(func.max(S.runs.c.id))).scalar() or 0) + 1
+    if wh.is_sqlite:  # one writer at a time: the ids go on from the largest
+        next_id = (conn.execute(select(func.max(S.runs.c.id))).scalar() or 0) + 1
+    else:  # loads of other campaigns write meanwhile: a block of ids for every record the file may hold
+        next_id = take_run_ids(conn, total)
     fresh = None
     if partitions.partitioned(conn):
         if quick_allowed:
@@ -307,7 +334,10 @@ def _open_import(conn, wh: Warehouse, p: Path, campaign: str, layout: Layout, fl
         else:
             partitions.ensure(conn, cid)
     key = runkey.RunKey(conn, wh.is_sqlite, cid, fl.chain, quick_allowed, total, fresh=fresh is not None)
-    return _Import(conn, cid, import_id, dims, key, next_id, next_id, partition=fresh)
+    imp = _Import(conn, cid, import_id, dims, key, next_id, next_id, partition=fresh,
+                  id_end=None if wh.is_sqlite else next_id + total)
+    dims.before_sql = lambda: imp.writer.wait() if imp.writer is not None else None
+    return imp
 
 
 def _write_chunk(imp: _Import, wh: Warehouse, layout: Layout, fl: FileLoad, raw, rows: Rows, summing: Summing,
@@ -316,10 +346,15 @@ def _write_chunk(imp: _Import, wh: Warehouse, layout: Layout, fl: FileLoad, raw,
     metric_slots = imp.dims.metric_slots(rows.metrics, layout, fl.name, report.metrics)
     slots = sorted(metric_slots.values())
     if imp.writer is None or imp.writer.slots != slots:
+        if imp.writer is not None:
+            imp.writer.wait()
         imp.writer = Writer(imp.conn, wh.dialect, slots, imp.campaign_id, imp.import_id, numbered=imp.key.quick,
                             chain=fl.chain, into=imp.partition)
     got: ChunkIds = imp.dims.resolve(rows.keys, fl.warnings)
     m = len(rows)
+    if imp.id_end is not None and imp.next_id + m > imp.id_end:  # (a server: never seen; the ids taken ran out)
+        raise StorageError(f"{fl.name}: more records than the first pass counted ({imp.id_end - imp.first_id}); "
+                           "nothing from it was stored")
     ids = np.arange(imp.next_id, imp.next_id + m, dtype=np.int64)
     imp.next_id += m
     imp.key.check(got.solver, got.instance, rows.seed, rows.replicate, summing)
@@ -395,6 +430,26 @@ def _write_summaries(imp: _Import, wh: Warehouse, summing: Summing) -> None:
         cells.copy_binary(conn, summaries.copy_payload(imp.campaign_id, imp.import_id))
     group_of = {iid: key[0] for key, iid in imp.dims.instances.items()}
     blocks.write(conn, blocks.from_sums(summaries, imp.campaign_id, imp.import_id, group_of))
+
+
+DEADLOCK_RETRIES = 3
+
+
+def _records_at_most(info: SourceInfo) -> int:
+    """The most records the file can hold: its lines (less the header), or a Parquet file's row
+    count from its footer (the progress bar's total; on a server, the run ids the load takes)."""
+    if info.fmt != "parquet":
+        return info.lines - (1 if info.delimited else 0)
+    import pyarrow.parquet as pq
+
+    try:
+        return pq.ParquetFile(str(info.path)).metadata.num_rows
+    except Exception:  # a damaged file: the reader says so in its own words
+        return 0
+
+
+def _sqlstate(exc: BaseException) -> str | None:
+    return getattr(getattr(exc, "orig", exc), "sqlstate", None)
 
 
 def _is_driver_error(exc: BaseException) -> bool:

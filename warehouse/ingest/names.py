@@ -16,7 +16,16 @@ from sqlalchemy import insert, select
 from ..errors import InputError, StorageError
 from ..store import schema as S
 from ..store import value_columns
+from ..store.connect import NAMES_LOCK_CLASS
 from .layout import NAME_LIMIT, Layout, control_message, has_control
+
+
+# The names lock (PostgreSQL): held by a load that adds a name, until it commits
+NAMES_LOCK = f"SELECT pg_advisory_xact_lock({NAMES_LOCK_CLASS}, hashtext(current_schema()))"
+
+
+class _NamesLockNeeded(Exception):
+    """Internal: a load about to add a name does not hold the names lock yet."""
 
 
 @dataclass
@@ -36,6 +45,19 @@ class Dimensions:
 
     def __init__(self, conn):
         self.conn = conn
+        # a server: loads of different campaigns run side by side, and one that must add a name
+        # first takes the names lock (held until it commits) and reads the names again
+        self.server = conn.dialect.name != "sqlite"
+        self.locked = not self.server
+        self.named: dict[tuple, int] = {}  # (family, group, instance, hash) as the file names them -> id
+        self.columns: set[int] | None = None  # the value columns the runs table has (read when needed)
+        # called before this class uses the connection again once the load has begun writing
+        # (a server's runs writer may be sending a chunk from its helper thread: write.Sender)
+        self.before_sql = lambda: None
+        self._read()
+
+    def _read(self) -> None:
+        conn = self.conn
         self.solvers = {(r.name, r.version, r.build, r.params): r.id for r in conn.execute(select(S.solvers))}
         self.families = {r.name: r.id for r in conn.execute(select(S.families))}
         self.groups = {(r.family_id, r.name): r.id for r in conn.execute(select(S.groups))}
@@ -44,12 +66,26 @@ class Dimensions:
         for r in conn.execute(select(S.instances.c.id, S.instances.c.group_id, S.instances.c.name, S.instances.c.content_hash)):
             self.instances[(r.group_id, r.name, r.content_hash)] = r.id
             self.hashes.setdefault((r.group_id, r.name), set()).add(r.content_hash)
-        self.named: dict[tuple, int] = {}  # (family, group, instance, hash) as the file names them -> id
         self.hosts = {r.name: r.id for r in conn.execute(select(S.hosts))}
         self.metrics = {r.name: (r.id, r.slot, r.sense, r.unit) for r in conn.execute(select(S.metrics))}
-        self.columns: set[int] | None = None  # the value columns the runs table has (read when needed)
+
+    def _lock(self) -> None:
+        """A server, before this load adds its first name: the names lock, then the names again
+        (another load may have added some since they were read). Held until the load commits, so
+        nobody else adds names meanwhile; loads that bring no new name never take it."""
+        self.before_sql()
+        self.conn.exec_driver_sql(NAMES_LOCK)
+        self.locked = True
+        self._read()
+        self.columns = None
+
+    def _may_add(self) -> None:
+        if not self.locked:
+            raise _NamesLockNeeded()
+        self.before_sql()
 
     def _add(self, table, **values) -> int:
+        self._may_add()
         if self.conn.dialect.name == "sqlite":  # the driver's own cursor: a tenth of the time per row
             cur = self.conn.connection.driver_connection.cursor()
             cur.execute(f"INSERT INTO {table.name} ({', '.join(values)}) VALUES ({', '.join('?' * len(values))})",
@@ -61,6 +97,7 @@ class Dimensions:
         """A server: many new rows in two round trips (their ids from the table's sequence, then
         one COPY), not one INSERT each: on a first load of 600 instances and 85 solvers the
         single-row inserts were a third of a second of round trips (docs/performance.md)."""
+        self._may_add()
         seq = self.conn.exec_driver_sql(f"SELECT pg_get_serial_sequence('{table.name}', 'id')").scalar()
         ids = [r[0] for r in self.conn.exec_driver_sql(
             f"SELECT nextval('{seq}') FROM generate_series(1, {len(rows)})")]
@@ -135,10 +172,11 @@ class Dimensions:
     def _add_instances(self, rows: list[tuple[int, str, str]]) -> list[int]:
         """New instances, many rows per statement on SQLite (a first load may bring tens of thousands).
 
-        The ids are ours to give: the load holds the write lock from BEGIN, so nobody else adds
-        instances meanwhile, and the next id is one past the largest.
+        The ids are ours to give on SQLite: the load holds the write lock from BEGIN, so nobody
+        else adds instances meanwhile, and the next id is one past the largest. A server gives
+        them from the table's sequence (`_add_server`).
         """
-        if self.conn.dialect.name != "sqlite":
+        if self.server:
             return self._add_server(S.instances, ("group_id", "name", "content_hash"), rows)
         raw = self.conn.connection.driver_connection
         first = (raw.execute("SELECT max(id) FROM instances").fetchone()[0] or 0) + 1
@@ -169,6 +207,11 @@ class Dimensions:
 
     def metric(self, name: str, sense: str | None, unit: str, shown: str) -> tuple[int, int, str]:
         found = self.metrics.get(name)
+        if found is None:
+            self.before_sql()
+        if found is None and not self.locked:
+            self._lock()
+            found = self.metrics.get(name)
         if found is not None:
             mid, slot, old_sense, _ = found
             if sense is not None and sense != old_sense:
@@ -197,6 +240,17 @@ class Dimensions:
 
     def resolve(self, keys: dict, warnings: list[str]) -> ChunkIds:
         """A chunk's ids from its distinct keys (`Rows.keys`: codes per row, the keys in code order)."""
+        if self.locked:
+            return self._resolve(keys, warnings)
+        said = len(warnings)
+        try:
+            return self._resolve(keys, warnings)
+        except _NamesLockNeeded:  # a name new to the warehouse: again, under the names lock
+            del warnings[said:]
+            self._lock()
+            return self._resolve(keys, warnings)
+
+    def _resolve(self, keys: dict, warnings: list[str]) -> ChunkIds:
         codes, distinct = keys["solver"]
         solver_of = np.asarray(self.solver_ids(distinct), dtype=np.int64)
         solver = solver_of[codes]

@@ -11,6 +11,7 @@ from __future__ import annotations
 import csv
 import os
 import sqlite3
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -30,6 +31,42 @@ _WHOLE_COLUMNS = frozenset({"id", "solver_id", "instance_id", "seed", "replicate
                             "host_id", "source_line"})
 RUN_COLS = ["id", "campaign_id", "import_id", "solver_id", "instance_id", "seed", "replicate",
             "status", "finished_at", "host_id", "source_line"]
+
+
+class Sender:
+    """PostgreSQL, a new campaign's partition: each chunk's COPY sent from a helper thread while
+    the load reads, checks and sums the next chunk (the server parses one chunk's rows while the
+    client works on the next; the helper waits on the socket, not on Python's lock). One chunk at a
+    time; the load calls `wait` before it uses the connection for anything else (a new name, the
+    summaries, the attach), so the connection is never used by two threads at once."""
+
+    def __init__(self, raw, statement: str):
+        self.raw, self.statement = raw, statement
+        self.thread: threading.Thread | None = None
+        self.error: BaseException | None = None
+
+    def send(self, payload) -> None:
+        self.wait()
+        self.thread = threading.Thread(target=self._run, args=(payload,), name="blockyard-copy", daemon=True)
+        self.thread.start()
+
+    def _run(self, payload) -> None:
+        try:
+            with self.raw.cursor() as cur, cur.copy(self.statement) as cp:
+                cp.write(payload)
+        except BaseException as exc:  # handed to the load's own thread (wait)
+            self.error = exc
+
+    def wait(self) -> None:
+        self.close()
+        if self.error is not None:
+            exc, self.error = self.error, None
+            raise exc
+
+    def close(self) -> None:
+        if self.thread is not None:
+            self.thread.join()
+            self.thread = None
 
 
 def _with_nulls(values: np.ndarray, present: np.ndarray) -> list:
@@ -91,6 +128,19 @@ class Writer:
 
                 same_columns(conn, into)
                 self.copy_runs = f"COPY {into} ({names}) FROM STDIN (FORMAT binary)"
+                self.sender = Sender(self.raw, self.copy_runs)
+
+    def wait(self) -> None:
+        """Before the connection is used for anything else: the chunk being sent is in (PostgreSQL,
+        a new partition; raises what its COPY raised)."""
+        if self.dialect != "sqlite" and self.into is not None:
+            self.sender.wait()
+
+    def close(self) -> None:
+        """On the way out of a refused load: the chunk being sent has finished, whatever it did
+        (the load's own error is the one to report)."""
+        if self.dialect != "sqlite" and self.into is not None:
+            self.sender.close()
 
     def _marks(self, same: dict[str, str]) -> str:
         """One row's VALUES group: the import's two ids and the chunk's constants as literals."""
@@ -111,11 +161,10 @@ class Writer:
             vals = rows.metrics[metric_of_slot[s]]
             data.append((vals, np.isnan(vals)))
         payload = framed(binary_rows(data, self.types))
-        cur = self.raw.cursor()
-        if self.into is not None:  # nothing to refuse a row: no savepoint
-            with cur.copy(self.copy_runs) as cp:
-                cp.write(payload)
+        if self.into is not None:  # nothing to refuse a row: no savepoint, and no answer to wait for
+            self.sender.send(payload)
             return
+        cur = self.raw.cursor()
         if self.direct:
             import psycopg
 

@@ -212,16 +212,34 @@ LOAD_IDLE_SECONDS = 60
 LOAD_IDLE_ENV = "BLOCKYARD_LOAD_IDLE_SECONDS"  # another limit, in seconds (the tests use a short one)
 
 
-def hold_runs_for_load(conn) -> None:
-    """PostgreSQL, at the start of a load's transaction: the runs table's write lock (loads and
-    retractions take it in turn; readers never wait for it), and the limit on how long the
-    transaction may sit idle (`LOAD_IDLE_SECONDS`)."""
+# PostgreSQL advisory locks (two-key form: a class of ours, then a hash of what is locked; each
+# schema is a warehouse of its own, so the schema is in every key)
+RUN_IDS_LOCK_CLASS = 7205514  # for an instant, while a load takes its block of run ids (revision 0011)
+CAMPAIGN_LOCK_CLASS = 7205515  # a load's campaign, until it commits: two loads of one campaign take turns
+NAMES_LOCK_CLASS = 7205516  # a load adding a name, until it commits (ingest/names.Dimensions)
+
+
+def hold_runs_for_load(conn, campaign: str) -> None:
+    """PostgreSQL, at the start of a load's transaction: the limit on how long the transaction may
+    sit idle (`LOAD_IDLE_SECONDS`), the runs table's ROW EXCLUSIVE lock (the one every writer of
+    runs takes: loads of other campaigns go on side by side, a retraction and its undo wait for
+    the load and the load for them), and the campaign's own lock, so that two loads of one
+    campaign take turns (its run key and its new partition are the campaign's alone). A load
+    that must add a name (a solver, instance, host or metric new to the warehouse) also takes
+    the names lock when it first needs it (ingest/names.Dimensions)."""
     try:
         idle = max(1, int(os.environ.get(LOAD_IDLE_ENV, LOAD_IDLE_SECONDS)))
     except ValueError:
         idle = LOAD_IDLE_SECONDS
     conn.exec_driver_sql(f"SET LOCAL idle_in_transaction_session_timeout = '{idle}s'")
-    conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
+    conn.exec_driver_sql("LOCK TABLE runs IN ROW EXCLUSIVE MODE")
+    conn.exec_driver_sql(f"SELECT pg_advisory_xact_lock({CAMPAIGN_LOCK_CLASS}, hashtext(current_schema() || '/' || %s))",
+                         (campaign,))
+
+
+def take_run_ids(conn, n: int) -> int:
+    """PostgreSQL: the first of `n` run ids no other load is given (revision 0011)."""
+    return int(conn.exec_driver_sql(f"SELECT blockyard_take_run_ids({max(1, int(n))})").scalar())
 
 
 def _make(location: str) -> Warehouse:

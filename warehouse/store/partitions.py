@@ -13,9 +13,9 @@ when the campaign has none (empty, attached at once).
 Making and attaching a table are the owner's rights: both go through two functions revision
 0010 made, which run as the schema's owner for anyone who may insert runs, so a team member
 with the documented grants (docs/reliability.md) loads as before. Attaching takes SHARE UPDATE
-EXCLUSIVE on the parent, which readers never wait for; the load holds the parent's SHARE ROW
-EXCLUSIVE already (store.connect.hold_runs_for_load). SQLite keeps one runs table: nothing
-here applies to it.
+EXCLUSIVE on the parent, which neither readers nor the loads of other campaigns (ROW
+EXCLUSIVE, store.connect.hold_runs_for_load) wait for; two attaches take turns, for the moment
+between the one's attach and its commit. SQLite keeps one runs table: nothing here applies to it.
 """
 from __future__ import annotations
 

@@ -193,8 +193,8 @@ runs = Table(
           postgresql_where=text("retraction_id IS NULL")).ddl_if(dialect="postgresql"),
     # PostgreSQL partitions runs by campaign (revision 0010, store/partitions.py): a key on a
     # partitioned table must hold the partition column, so there an index on id stands
-    # for the primary key (every id comes from the one load holding the runs table's lock): a
-    # block-range index, as a load writes its ids in rising order
+    # for the primary key (every load takes a block of ids of its own from runs_id_seq,
+    # revision 0011): a block-range index, as a load writes its ids in rising order
     Index("ix_runs_id", "id", postgresql_using="brin", postgresql_with={"pages_per_range": 16}).ddl_if(dialect="postgresql"),
     # no index on finished_at: the imports' time ranges (revision 0004) narrow a date slice to id ranges
     # withdrawn runs are few: a partial index finds them without costing the loads anything
