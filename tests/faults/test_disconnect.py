@@ -199,3 +199,36 @@ def test_a_load_the_server_rolls_back_for_a_deadlock_starts_again(location, tmp_
     assert report["rows_loaded"] == 2_000
     assert any("deadlock" in w for w in report["warnings"]), report
     assert sql(location, "SELECT count(*) FROM runs")[0][0] == 2_000
+
+
+def test_a_retraction_waits_for_a_load_running(location, tmp_path):
+    """A retraction takes runs' SHARE ROW EXCLUSIVE lock, which a load's ROW EXCLUSIVE holds off
+    (PostgreSQL documentation, "Explicit Locking", table of conflicting lock modes): it waits
+    while a load of another campaign is stopped in its transaction and completes after it."""
+    known = runs_csv(tmp_path / "known.csv", 2_000, seed=15)
+    assert blockyard("load", known, "--campaign", "earlier", "-w", location).code == 0
+    big = runs_csv(tmp_path / "big.csv", 150_000, seed=16)
+    proc, pid = holding_load(location, big, "later", clean_env(BLOCKYARD_LOAD_IDLE_SECONDS="600"))
+    retraction = None
+    try:
+        stop_between_statements(proc, pid, location)
+        retraction = subprocess.Popen(command("retract", "--slice", "campaign=earlier", "--reason", "bad rack",
+                                              "-w", location),
+                                      stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=clean_env())
+        for _ in range(200):
+            rows = sql(location, "SELECT count(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock' "
+                                 "AND wait_event = 'relation' AND datname = current_database()")
+            if rows[0][0]:
+                break
+            assert retraction.poll() is None, "the retraction did not wait for the load"
+            time.sleep(0.05)
+        else:
+            pytest.fail("the retraction never waited")
+    finally:
+        proc.send_signal(signal.SIGCONT)
+    _, err = proc.communicate(timeout=240)
+    assert proc.returncode == 0, err
+    _, err = retraction.communicate(timeout=240)
+    assert retraction.returncode == 0, err
+    assert sql(location, "SELECT count(*) FROM runs WHERE retraction_id IS NOT NULL")[0][0] == 2_000
+    assert sql(location, "SELECT count(*) FROM runs WHERE retraction_id IS NULL")[0][0] == 150_000

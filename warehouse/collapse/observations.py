@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import BigInteger, case, cast, func, select
+from sqlalchemy import BigInteger, Integer, case, cast, func, select
 
 from ..select.resolve import Dims, cells_can_answer, condition
 from ..select.slices import Slice
@@ -57,6 +57,15 @@ def _whole(total):
     which the driver hands over as one Decimal object a row (the conversion of a whole-data
     slice's cells was most of its failures part there). A count of runs stays far below 2**63."""
     return cast(total, BigInteger)
+
+
+def _cell_sum(column):
+    """The sum of a count kept per cell (runs, failed runs): each cell's count is cast to a 32-bit
+    integer first (one solver on one instance and host in one import: far below 2**31), which
+    PostgreSQL sums into a bigint with an 8-byte state where a bigint column keeps a numeric
+    one; the grouping of a 510,000-run whole-data slice's cells by solver and instance spilled
+    to disk at the default work_mem that way (EXPLAIN ANALYZE 49 ms, 34 ms with the cast)."""
+    return _whole(func.sum(cast(column, Integer)))
 
 
 def cell_counts(conn, sl: Slice, metric: str | None, from_runs: bool = False) -> pd.DataFrame:
@@ -109,7 +118,7 @@ def failure_counts(conn, sl: Slice, metric: str | None) -> dict | None:
     metric, slot, _, _ = _metric(dims, metric)
     C = S.cell_stats
     where = (condition(sl, dims, conn, table=C), C.c.slot == slot, C.c.n > 0)
-    per_solver = conn.execute(select(C.c.solver_id, _whole(func.sum(C.c.n)), _whole(func.sum(C.c.n_fail)))
+    per_solver = conn.execute(select(C.c.solver_id, _cell_sum(C.c.n), _cell_sum(C.c.n_fail))
                               .where(*where).group_by(C.c.solver_id)).all()
     if not per_solver:
         return None
@@ -121,10 +130,10 @@ def failure_counts(conn, sl: Slice, metric: str | None) -> dict | None:
                                 .where(*where).group_by(C.c.instance_id)).all()
     if any(int(n) != k for _, n in per_instance):
         return None  # an instance some treatment did not run: the full table says which are left out
-    failing = rows_frame(conn.execute(select(C.c.solver_id, C.c.instance_id, _whole(func.sum(C.c.n)),
-                                             _whole(func.sum(C.c.n_fail)))
+    failing = rows_frame(conn.execute(select(C.c.solver_id, C.c.instance_id, _cell_sum(C.c.n),
+                                             _cell_sum(C.c.n_fail))
                                       .where(*where).group_by(C.c.solver_id, C.c.instance_id)
-                                      .having(func.sum(C.c.n_fail) > 0)),
+                                      .having(func.sum(cast(C.c.n_fail, Integer)) > 0)),
                          columns=["solver_id", "instance", "runs", "failed"])
     order = sorted(per_solver, key=lambda r: _treatment_key(label[int(r[0])]))
     return {"treatments": [label[int(r[0])] for r in order],

@@ -32,6 +32,8 @@ def retract(wh: Warehouse, sl: Slice, reason: str, who: str | None = None, now: 
     now = time.time() if now is None else now
     with wh.write() as conn:
         with conn.begin():
+            if wh.dialect == "postgresql":  # loads and retractions take turns (a load's keys stay as it proved them)
+                conn.exec_driver_sql("LOCK TABLE runs IN SHARE ROW EXCLUSIVE MODE")
             dims = Dims.load(conn)
             # live runs only, whatever the slice says about retracted runs: a run belongs to one
             # retraction, so that the counts add up and an undo brings back what its retraction took
