@@ -81,6 +81,18 @@ def stop_between_statements(proc, pid: int, location) -> None:
     pytest.fail("never caught the load between two statements")
 
 
+def waits_for_lock(location, proc, event: str, what: str, tries: int = 200) -> None:
+    """Until some session of the database waits for a lock of this kind (pg_stat_activity's
+    wait_event: 'advisory' or 'relation'); `proc` must still be running meanwhile."""
+    for _ in range(tries):
+        if sql(location, "SELECT count(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock' "
+                         "AND wait_event = :e AND datname = current_database()", e=event)[0][0]:
+            return
+        assert proc.poll() is None, f"{what} ended without waiting"
+        time.sleep(0.05)
+    pytest.fail(f"{what} never waited")
+
+
 def test_a_killed_load_lets_the_next_load_through(location, tmp_path):
     big = runs_csv(tmp_path / "big.csv", 150_000, seed=5)
     proc, pid = holding_load(location, big, "killed", clean_env())
@@ -147,16 +159,7 @@ def test_a_second_load_of_one_campaign_waits_for_the_first(location, tmp_path):
         more = runs_csv(tmp_path / "more.csv", 2_000, first_seed=1000, seed=11)
         second = subprocess.Popen(command("load", more, "--campaign", "same", "-w", location),
                                   stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=clean_env())
-        waited = False
-        for _ in range(200):
-            rows = sql(location, "SELECT count(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock' "
-                                 "AND wait_event = 'advisory' AND datname = current_database()")
-            if rows[0][0]:
-                waited = True
-                break
-            assert second.poll() is None, "the second load of the campaign did not wait for the first"
-            time.sleep(0.05)
-        assert waited
+        waits_for_lock(location, second, "advisory", "the second load of the campaign")
     finally:
         proc.send_signal(signal.SIGCONT)
     _, err = proc.communicate(timeout=240)
@@ -181,14 +184,7 @@ def test_a_load_the_server_rolls_back_for_a_deadlock_starts_again(location, tmp_
             other.exec_driver_sql("LOCK TABLE runs IN ROW EXCLUSIVE MODE")
             proc = subprocess.Popen(command("load", first, "--campaign", "first", "-w", location, "--json"),
                                     stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=clean_env())
-            for _ in range(400):  # the load waits to add a column
-                if sql(location, "SELECT count(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock' "
-                                 "AND wait_event = 'relation' AND datname = current_database()")[0][0]:
-                    break
-                assert proc.poll() is None, proc.communicate()
-                time.sleep(0.05)
-            else:
-                pytest.fail("the load never waited for the other session")
+            waits_for_lock(location, proc, "relation", "the load adding a metric's column", tries=400)
             other.exec_driver_sql(f"SELECT pg_advisory_xact_lock({NAMES_LOCK_CLASS}, hashtext(current_schema()))")
             other.exec_driver_sql("ROLLBACK")
         out, err = proc.communicate(timeout=120)
@@ -215,15 +211,7 @@ def test_a_retraction_waits_for_a_load_running(location, tmp_path):
         retraction = subprocess.Popen(command("retract", "--slice", "campaign=earlier", "--reason", "bad rack",
                                               "-w", location),
                                       stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=clean_env())
-        for _ in range(200):
-            rows = sql(location, "SELECT count(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock' "
-                                 "AND wait_event = 'relation' AND datname = current_database()")
-            if rows[0][0]:
-                break
-            assert retraction.poll() is None, "the retraction did not wait for the load"
-            time.sleep(0.05)
-        else:
-            pytest.fail("the retraction never waited")
+        waits_for_lock(location, retraction, "relation", "the retraction")
     finally:
         proc.send_signal(signal.SIGCONT)
     _, err = proc.communicate(timeout=240)

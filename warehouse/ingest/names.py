@@ -207,11 +207,12 @@ class Dimensions:
 
     def metric(self, name: str, sense: str | None, unit: str, shown: str) -> tuple[int, int, str]:
         found = self.metrics.get(name)
-        if found is None:
-            self.before_sql()
-        if found is None and not self.locked:
-            self._lock()
-            found = self.metrics.get(name)
+        if found is None:  # the connection is wanted: under the names lock on a server
+            if self.locked:
+                self.before_sql()
+            else:
+                self._lock()
+                found = self.metrics.get(name)
         if found is not None:
             mid, slot, old_sense, _ = found
             if sense is not None and sense != old_sense:

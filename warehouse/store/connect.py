@@ -214,7 +214,7 @@ LOAD_IDLE_ENV = "BLOCKYARD_LOAD_IDLE_SECONDS"  # another limit, in seconds (the 
 
 # PostgreSQL advisory locks (two-key form: a class of ours, then a hash of what is locked; each
 # schema is a warehouse of its own, so the schema is in every key)
-RUN_IDS_LOCK_CLASS = 7205514  # for an instant, while a load takes its block of run ids (revision 0011)
+RUN_IDS_LOCK_CLASS = 7205514  # for an instant, while a load takes its block of run ids (written into revision 0011's function)
 CAMPAIGN_LOCK_CLASS = 7205515  # a load's campaign, until it commits: two loads of one campaign take turns
 NAMES_LOCK_CLASS = 7205516  # a load adding a name, until it commits (ingest/names.Dimensions)
 
