@@ -31,10 +31,11 @@ def test_migrations_build_the_schema_module(wh):
         others = [d for d in others if d[0] != "add_index"]
     else:
         # and on PostgreSQL the references a load writes, which the module declares for SQLite
-        # alone (revision 0009), for the same reason
+        # alone (revisions 0009 and 0012), for the same reason
         fks = sorted((d[1].parent.name, d[1].column_keys[0]) for d in others if d[0] == "add_fk")
-        assert fks == sorted((t, f"{c}_id") for t in ("cell_stats", "runs")
-                             for c in ("campaign", "host", "import", "instance", "solver"))
+        assert fks == sorted([(t, f"{c}_id") for t in ("cell_stats", "runs")
+                              for c in ("campaign", "host", "import", "instance", "solver")]
+                             + [("block_stats", f"{c}_id") for c in ("campaign", "group", "import", "solver")])
         others = [d for d in others if d[0] != "add_fk"]
     assert others == []
 

@@ -160,3 +160,16 @@ def test_a_run_naming_a_solver_that_is_not_there_is_found(two_campaigns, cli, wh
     code, checks, _ = verify(cli)
     assert code == 3
     assert any("1 runs name a solver id that is not in the warehouse" in f for f in checks["imports"]["found"])
+
+
+@pytest.mark.skipif(not ON_POSTGRES, reason="SQLite's foreign keys refuse such a row (revision 0012)")
+def test_a_block_summary_naming_a_group_that_is_not_there_is_found(two_campaigns, cli, wh):
+    # nor on the block summaries' ids (revision 0012): verify names the stray row, and the blocks
+    # check finds a summary no cell makes
+    sql(wh, "UPDATE block_stats SET group_id = 999999 WHERE (import_id, slot, solver_id, group_id) = "
+            "(SELECT import_id, slot, solver_id, group_id FROM block_stats ORDER BY 1, 2, 3, 4 LIMIT 1)")
+    code, checks, _ = verify(cli)
+    assert code == 3
+    assert any("1 block summaries name a group id that is not in the warehouse" in f
+               for f in checks["imports"]["found"])
+    assert any("not made from any cell" in f for f in checks["blocks"]["found"])

@@ -44,6 +44,10 @@ def test_each_campaign_gets_its_own_partition_with_the_run_key(cli, location, tm
     names = [r[0] for r in query(location, "SELECT indexdef FROM pg_indexes WHERE tablename = :t",
                                  t=f"runs_c{ids['night-1']}")]
     assert any("UNIQUE" in d and "retraction_id IS NULL" in d for d in names), names
+    # and the retracted runs' index the table was made with (revision 0012), taken by the attach
+    # as the partition's own: one such index, not a second one built beside it
+    assert sum("WHERE (retraction_id IS NOT NULL)" in d for d in names) == 1, names
+    assert len(names) == 3, names  # the run key, the block-range index on id, the retracted runs
     assert query(location, "SELECT campaign_id, count(*) FROM runs GROUP BY 1 ORDER BY 1") == \
         [(ids["night-1"], 30), (ids["night-2"], 20)]
 
@@ -100,3 +104,16 @@ def test_the_binary_format_reads_back_as_the_values_meant(location):
 def test_a_whole_number_too_wide_for_its_column_is_refused_before_the_server():
     with pytest.raises(InputError, match="does not fit the warehouse's 32-bit column"):
         binary_rows([(np.array([2**31]), None)], [">i4"])
+
+
+def test_a_large_first_load_leaves_the_summaries_analyzed(cli, location, tmp_path):
+    # the planner's statistics of the columns the slices filter and join on, made after the load
+    # (store/cells.refresh_statistics; PostgreSQL documentation, "Populating a Database": run
+    # ANALYZE after loading much data); the sums are left to autovacuum
+    load_json(cli, write(tmp_path / "a.csv", csv_text(runs(40))), campaign="night-1")
+    seen = {(t, c) for t, c in query(location, "SELECT tablename, attname FROM pg_stats WHERE schemaname = "
+                                               "current_schema() AND tablename IN ('cell_stats', 'block_stats')")}
+    assert {("cell_stats", "campaign_id"), ("cell_stats", "instance_id"), ("cell_stats", "slot"),
+            ("block_stats", "group_id"), ("block_stats", "solver_id")} <= seen
+    assert ("cell_stats", "sum_ok") not in seen
+    assert query(location, "SELECT reltuples > 0 FROM pg_class WHERE oid = 'cell_stats'::regclass") == [(True,)]

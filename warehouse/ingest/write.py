@@ -36,24 +36,39 @@ RUN_COLS = ["id", "campaign_id", "import_id", "solver_id", "instance_id", "seed"
 class Sender:
     """PostgreSQL, a new campaign's partition: each chunk's COPY sent from a helper thread while
     the load reads, checks and sums the next chunk (the server parses one chunk's rows while the
-    client works on the next; the helper waits on the socket, not on Python's lock). One chunk at a
-    time; the load calls `wait` before it uses the connection for anything else (a new name, the
-    summaries, the attach), so the connection is never used by two threads at once."""
+    client works on the next; the helper waits on the socket, not on Python's lock), and at the
+    end the attach, while the load finishes the summaries' rows. One statement at a time; the
+    load calls `wait` before it uses the connection for anything else (a new name, the
+    summaries), so the connection is never used by two threads at once."""
 
-    def __init__(self, raw, statement: str):
+    def __init__(self, raw, statement: str = ""):
         self.raw, self.statement = raw, statement
         self.thread: threading.Thread | None = None
         self.error: BaseException | None = None
 
     def send(self, payload) -> None:
+        self._start(self._copy, payload)
+
+    def execute(self, sql: str) -> None:
+        """One statement, sent from the helper thread (the attach at a load's end)."""
+        self._start(self._execute, sql)
+
+    def _start(self, work, arg) -> None:
         self.wait()
-        self.thread = threading.Thread(target=self._run, args=(payload,), name="blockyard-copy", daemon=True)
+        self.thread = threading.Thread(target=self._run, args=(work, arg), name="blockyard-copy", daemon=True)
         self.thread.start()
 
-    def _run(self, payload) -> None:
+    def _copy(self, payload) -> None:
+        with self.raw.cursor() as cur, cur.copy(self.statement) as cp:
+            cp.write(payload)
+
+    def _execute(self, sql: str) -> None:
+        with self.raw.cursor() as cur:
+            cur.execute(sql)
+
+    def _run(self, work, arg) -> None:
         try:
-            with self.raw.cursor() as cur, cur.copy(self.statement) as cp:
-                cp.write(payload)
+            work(arg)
         except BaseException as exc:  # handed to the load's own thread (wait)
             self.error = exc
 

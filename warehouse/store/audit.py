@@ -165,16 +165,21 @@ def imports(conn) -> Check:
     strays = conn.execute(select(func.count()).select_from(R).where(~R.c.import_id.in_(select(I.c.id)))).scalar()
     if strays:
         chk.add(f"{strays} runs belong to no import")
-    # the names a run and a cell point at: PostgreSQL holds no reference constraint on them
-    # (revision 0009: a load writes ids it took from these tables itself), so they are checked here
-    for table in (R, C):
-        for col, parent, what in (("campaign_id", S.campaigns, "campaign"), ("solver_id", S.solvers, "solver"),
-                                  ("instance_id", S.instances, "instance"), ("host_id", S.hosts, "host")):
+    # the names a run, a cell and a block summary point at: PostgreSQL holds no reference
+    # constraint on them (revisions 0009 and 0012: a load writes ids it took from these tables
+    # itself), so they are checked here
+    names = (("campaign_id", S.campaigns, "campaign"), ("solver_id", S.solvers, "solver"),
+             ("instance_id", S.instances, "instance"), ("host_id", S.hosts, "host"),
+             ("group_id", S.groups, "group"), ("import_id", I, "import"))
+    for table, rows in ((R, "runs"), (C, "cell summaries"), (S.block_stats, "block summaries")):
+        for col, parent, what in names:
+            if col not in table.c or (table is R and col == "import_id"):  # (runs: counted above)
+                continue
             lost = conn.execute(select(func.count()).select_from(table).where(
                 table.c[col].is_not(None), ~table.c[col].in_(select(parent.c.id)))).scalar()
             if lost:
-                rows = "runs" if table is R else "cell summaries"
-                chk.add(f"{lost} {rows} name a {what} id that is not in the warehouse ({what}s)")
+                chk.add(f"{lost} {rows} name a{'n' if what == 'import' else ''} {what} id that is not in the "
+                        f"warehouse ({what}s)")
     # a run whose id lies in another import's range is read with that import by a date slice (an
     # import's range is a few rows; each is a range lookup on the runs' primary key)
     crossed = conn.execute(select(func.count()).select_from(

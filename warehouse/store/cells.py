@@ -85,8 +85,10 @@ def refresh_statistics(engine, import_id: int) -> None:
             known = conn.exec_driver_sql("SELECT reltuples FROM pg_class WHERE oid = 'cell_stats'::regclass").scalar()
             added = conn.execute(select(func.count()).select_from(C).where(C.c.import_id == import_id)).scalar()
             if known is None or known < 0 or added > 0.1 * known:
-                conn.exec_driver_sql("ANALYZE cell_stats")
-                conn.exec_driver_sql("ANALYZE block_stats")
+                # the columns the slices filter, join and group on: the sums and counts are only
+                # read, and their statistics were two thirds of the ANALYZE (80 -> 30 ms)
+                conn.exec_driver_sql("ANALYZE cell_stats (campaign_id, import_id, solver_id, instance_id, host_id, slot)")
+                conn.exec_driver_sql("ANALYZE block_stats (campaign_id, import_id, slot, solver_id, group_id)")
     except Exception:  # (statistics only: the load itself is stored)
         pass
 

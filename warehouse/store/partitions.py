@@ -40,7 +40,12 @@ def ensure(conn, campaign_id: int) -> None:
 
 def attach(conn, campaign_id: int) -> None:
     """Make the filled table the campaign's partition: its indexes are built here, by sorting."""
-    conn.exec_driver_sql(f"SELECT blockyard_attach_partition({int(campaign_id)})")
+    conn.exec_driver_sql(attach_sql(campaign_id))
+
+
+def attach_sql(campaign_id: int) -> str:
+    """The attach's statement (a load sends it from a helper thread: ingest/write.Sender)."""
+    return f"SELECT blockyard_attach_partition({int(campaign_id)})"
 
 
 def same_columns(conn, name: str) -> None:

@@ -277,11 +277,11 @@ cell_stats = Table(
 block_stats = Table(
     "block_stats",
     metadata,
-    Column("campaign_id", Integer, ForeignKey("campaigns.id"), nullable=False),
-    Column("import_id", Integer, ForeignKey("imports.id"), nullable=False),
+    Column("campaign_id", Integer, nullable=False),
+    Column("import_id", Integer, nullable=False),
     Column("slot", SmallInteger, nullable=False),
-    Column("solver_id", Integer, ForeignKey("solvers.id"), nullable=False),
-    Column("group_id", Integer, ForeignKey("groups.id"), nullable=False),
+    Column("solver_id", Integer, nullable=False),
+    Column("group_id", Integer, nullable=False),
     Column("n", BigInteger, nullable=False),
     Column("n_ok", BigInteger, nullable=False),
     Column("n_fail", BigInteger, nullable=False),
@@ -299,4 +299,8 @@ block_stats = Table(
     Column("group_valued", BigInteger, nullable=False),
     Index("ix_blocks_campaign", "campaign_id", "slot", "solver_id"),
     Index("ix_blocks_import", "import_id"),
+    # declared for SQLite alone (revision 0012), as the runs' and cells' (_loaded_keys)
+    *[ForeignKeyConstraint([f"{col}_id"], [f"{table}.id"]).ddl_if(dialect="sqlite")
+      for col, table in (("campaign", "campaigns"), ("import", "imports"), ("solver", "solvers"),
+                         ("group", "groups"))],
 )
