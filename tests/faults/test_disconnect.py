@@ -28,14 +28,17 @@ pytestmark = pytest.mark.skipif(not ON_POSTGRES, reason="PostgreSQL: a server se
 POLL = 0.02
 
 
+HOLDER = """
+    SELECT l.pid FROM pg_locks l JOIN pg_class c ON c.oid = l.relation
+    JOIN pg_namespace n ON n.oid = c.relnamespace
+    WHERE c.relname = 'runs' AND n.nspname = :schema AND l.mode = 'RowExclusiveLock' AND l.granted
+    LIMIT 1"""
+
+
 def lock_holder(location) -> int | None:
     """The server process holding this schema's runs table for writing (pg_locks: ROW EXCLUSIVE,
     the lock INSERT and UPDATE take; readers take ACCESS SHARE), or None."""
-    rows = sql(location, """
-        SELECT l.pid FROM pg_locks l JOIN pg_class c ON c.oid = l.relation
-        JOIN pg_namespace n ON n.oid = c.relnamespace
-        WHERE c.relname = 'runs' AND n.nspname = :schema AND l.mode = 'RowExclusiveLock' AND l.granted
-    """, schema=schema_of(location))
+    rows = sql(location, HOLDER, schema=schema_of(location))
     return int(rows[0][0]) if rows else None
 
 
@@ -45,12 +48,22 @@ def session_state(pid: int, location) -> str | None:
 
 
 def holding_load(location, path, campaign, env) -> tuple[subprocess.Popen, int]:
-    proc = subprocess.Popen(command("load", path, "--campaign", campaign, "-w", location),
-                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env)
-    pid = None
-    while proc.poll() is None and pid is None:
-        pid = lock_holder(location)
-        time.sleep(POLL)
+    # one connection, open before the load starts, asks until the load holds the lock: a new
+    # connection for each question took longer than a fast load holds it (on a busy machine)
+    from sqlalchemy import text
+
+    engine = raw_engine(location)
+    try:
+        with engine.connect() as watch:
+            watch = watch.execution_options(isolation_level="AUTOCOMMIT")
+            proc = subprocess.Popen(command("load", path, "--campaign", campaign, "-w", location),
+                                    stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env)
+            pid = None
+            while proc.poll() is None and pid is None:
+                pid = watch.execute(text(HOLDER), {"schema": schema_of(location)}).scalar()
+                time.sleep(0.005)
+    finally:
+        engine.dispose()
     assert proc.poll() is None and pid is not None, "the load ended before it held the lock: use a larger file"
     return proc, pid
 

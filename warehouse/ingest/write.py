@@ -21,7 +21,7 @@ from sqlalchemy import literal, select
 
 from ..errors import InputError
 from ..store import schema as S
-from ..store.pgcopy import binary_rows, framed
+from ..store.pgcopy import Buffers, payload as copy_payload
 from . import values as V
 from .cellsums import constant_columns
 from .checks import FileLoad, Rows
@@ -134,6 +134,7 @@ class Writer:
             self.staged = False
             self.copy_runs = f"COPY runs ({names}) FROM STDIN (FORMAT binary)"
             self.types = [_PG_TYPES.get(c, ">f8") for c in RUN_COLS] + [">f8"] * len(slots)
+            self.buffers = Buffers()
             # `into`: the campaign's new partition, not attached yet and with no index (the load
             # proved its runs new: runkey.RunKey, fresh); a metric new in this chunk may have
             # added a value column to runs since it was made
@@ -175,7 +176,7 @@ class Writer:
         for s in self.slots:
             vals = rows.metrics[metric_of_slot[s]]
             data.append((vals, np.isnan(vals)))
-        payload = framed(binary_rows(data, self.types))
+        payload = copy_payload(data, self.types, self.buffers)
         if self.into is not None:  # nothing to refuse a row: no savepoint, and no answer to wait for
             self.sender.send(payload)
             return
