@@ -205,11 +205,12 @@ class CellSums:
             out.extend(self._slot_rows(slot, campaign_id, import_id))
         return out
 
-    def copy_payload(self, campaign_id: int, import_id: int) -> bytes:
+    def copy_payload(self, campaign_id: int, import_id: int) -> bytes | memoryview:
         """The cell rows in PostgreSQL's binary COPY format, in `COPY_TYPES` order: numpy writes
         them, with no Python object per value (a tuple per row was half a second at 100,000
-        cells), and the sums go over exactly."""
-        from ..store.pgcopy import binary_rows, framed
+        cells), and the sums go over exactly. Every slot's rows, one column at a time, go into
+        one payload written in place (store/pgcopy.payload)."""
+        from ..store.pgcopy import payload
 
         out = []
         for slot in sorted(self.parts):
@@ -227,8 +228,15 @@ class CellSums:
             }
             for name in INTS:
                 columns[name] = (s[name], None)
-            out.append(binary_rows([columns[c] for c in COLUMNS], [COPY_TYPES[c] for c in COLUMNS]))
-        return framed(b"".join(out)) if out else b""
+            out.append([columns[c] for c in COLUMNS])
+        if not out:
+            return b""
+        joined = [(np.concatenate([part[j][0] for part in out]),
+                   None if all(part[j][1] is None for part in out) else
+                   np.concatenate([np.zeros(len(part[j][0]), dtype=bool) if part[j][1] is None else part[j][1]
+                                   for part in out]))
+                  for j in range(len(COLUMNS))]
+        return payload(joined, [COPY_TYPES[c] for c in COLUMNS])
 
     def _slot_rows(self, slot: int, campaign_id: int, import_id: int) -> list[tuple]:
         self._merge(slot)
