@@ -34,8 +34,8 @@ class Buffers:
     """Two buffers a load's writer fills in turn: the one chunk's payload is sent from a helper
     thread while the next is built (ingest/write.Sender, which starts a send only once the one
     before has ended, so a buffer is never refilled while it is sent). Fresh memory for each
-    chunk's payload was zeroed by the kernel page by page: a tenth of a 510,000-run load's
-    processor time on the client was that zeroing (perf, docs/performance.md)."""
+    chunk's payload was zeroed by the kernel page by page: about a twelfth of a 510,000-run
+    load's samples in the client (perf, docs/performance.md)."""
 
     def __init__(self):
         self._held = [np.empty(0, dtype=np.uint8), np.empty(0, dtype=np.uint8)]
