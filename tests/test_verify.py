@@ -173,3 +173,20 @@ def test_a_block_summary_naming_a_group_that_is_not_there_is_found(two_campaigns
     assert any("1 block summaries name a group id that is not in the warehouse" in f
                for f in checks["imports"]["found"])
     assert any("not made from any cell" in f for f in checks["blocks"]["found"])
+
+
+def test_a_run_put_in_twice_by_hand_is_found(two_campaigns, cli, wh):
+    # No index holds the whole runs table to one live run per key (a load proves its runs new;
+    # on PostgreSQL a campaign's partition gets its key when a later load needs one, revision
+    # 0013), so a copy of a stored run put in with a database client is named by verify.
+    sql(wh, "INSERT INTO runs (id, campaign_id, import_id, solver_id, instance_id, seed, replicate, status, "
+            "source_line, v1) SELECT id + 100000, campaign_id, import_id, solver_id, instance_id, seed, replicate, "
+            "status, source_line, v1 FROM runs WHERE id = (SELECT min(id) FROM runs WHERE campaign_id = 2)")
+    code, checks, _ = verify(cli)
+    assert code == 3
+    assert any(f.startswith("campaign 2: 1 run key is held by more than one live run") for f in checks["imports"]["found"]), \
+        checks["imports"]["found"]
+    # a retracted copy holds no key: retracting the whole campaign leaves nothing to name
+    assert cli("retract", "--slice", "campaign=c2", "--reason", "a copy put in by hand").code == 0
+    _, checks, _ = verify(cli)
+    assert not any("held by more than one live run" in f for f in checks["imports"]["found"])

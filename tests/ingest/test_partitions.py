@@ -34,30 +34,83 @@ def loose_tables(location: str) -> list[str]:
                                           "AND NOT relispartition AND relnamespace = current_schema()::regnamespace")]
 
 
-def test_each_campaign_gets_its_own_partition_with_the_run_key(cli, location, tmp_path):
+def indexes(location: str, table: str) -> list[str]:
+    return sorted(r[0] for r in query(location, "SELECT indexdef FROM pg_indexes WHERE tablename = :t", t=table))
+
+
+def test_each_campaign_gets_its_own_partition_and_no_run_key_until_a_load_needs_one(cli, location, tmp_path):
     load_json(cli, write(tmp_path / "a.csv", csv_text(runs(30))), campaign="night-1")
     load_json(cli, write(tmp_path / "b.csv", csv_text(runs(20, start_seed=40))), campaign="night-2")
     ids = dict(query(location, "SELECT name, id FROM campaigns"))
     assert partitions(location) == sorted([f"runs_c{ids['night-1']}", f"runs_c{ids['night-2']}"])
     assert loose_tables(location) == []
-    # the attached partition carries the parent's unique run key, built at the attach
-    names = [r[0] for r in query(location, "SELECT indexdef FROM pg_indexes WHERE tablename = :t",
-                                 t=f"runs_c{ids['night-1']}")]
-    assert any("UNIQUE" in d and "retraction_id IS NULL" in d for d in names), names
-    # and the retracted runs' index the table was made with (revision 0012), taken by the attach
-    # as the partition's own: one such index, not a second one built beside it
+    # a new campaign's load proved its runs new from the file's key hashes: the attach builds no
+    # run key (revision 0013), only the block-range index on id; and the retracted runs' index
+    # the table was made with (revision 0012) is taken by the attach as the partition's own,
+    # not built a second time beside it
+    names = indexes(location, f"runs_c{ids['night-1']}")
+    assert not any("UNIQUE" in d for d in names), names
     assert sum("WHERE (retraction_id IS NOT NULL)" in d for d in names) == 1, names
-    assert len(names) == 3, names  # the run key, the block-range index on id, the retracted runs
+    assert sum("USING brin" in d for d in names) == 1 and len(names) == 2, names
     assert query(location, "SELECT campaign_id, count(*) FROM runs GROUP BY 1 ORDER BY 1") == \
         [(ids["night-1"], 30), (ids["night-2"], 20)]
+    # the parent holds no key either: each campaign's partition keeps its own
+    assert not any("UNIQUE" in d for d in indexes(location, "runs"))
 
 
-def test_a_second_file_into_a_campaign_goes_through_its_run_key(cli, location, tmp_path):
+def test_a_second_file_into_a_campaign_makes_its_run_key_and_goes_through_it(cli, location, tmp_path):
     load_json(cli, write(tmp_path / "a.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(1, 7))))
+    (part,) = partitions(location)
+    assert not any("UNIQUE" in d for d in indexes(location, part))
     rep = load_json(cli, write(tmp_path / "b.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(4, 10))))
     assert (rep["rows_loaded"], rep["rows_skipped"]) == (3, 3)
     assert query(location, "SELECT seed, v1 FROM runs ORDER BY id") == [(k, float(k)) for k in range(1, 10)]
-    assert len(partitions(location)) == 1
+    assert partitions(location) == [part]
+    keys = [d for d in indexes(location, part) if "UNIQUE" in d]
+    assert len(keys) == 1 and "(solver_id, instance_id, seed, replicate) WHERE (retraction_id IS NULL)" in keys[0], keys
+    # kept: a third file meets the same key (made once), and its taken runs are skipped again
+    rep = load_json(cli, write(tmp_path / "c.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(8, 12))))
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (2, 2)
+    assert [d for d in indexes(location, part) if "UNIQUE" in d] == keys
+
+
+def test_a_campaign_key_made_while_another_campaign_loads_waits_for_nothing(cli, location, tmp_path):
+    """Making a partition's key locks that partition alone: a load of another campaign, holding
+    its transaction open, does not hold it up (the loads' lock on runs is the parent's alone)."""
+    import threading
+
+    from warehouse.store.connect import open_warehouse
+
+    load_json(cli, write(tmp_path / "a.csv", csv_text(runs(10))), campaign="mine")
+    load_json(cli, write(tmp_path / "o.csv", csv_text(runs(10, start_seed=100))), campaign="other")
+    wh = open_warehouse(location)
+    other = dict(query(location, "SELECT name, id FROM campaigns"))["other"]
+    started, done = threading.Event(), threading.Event()
+
+    def hold():  # another campaign's load, stopped half-way: its rows written, not committed
+        from warehouse.store.connect import hold_runs_for_load
+
+        with wh.engine.connect() as conn, conn.begin():
+            hold_runs_for_load(conn, "other")
+            conn.exec_driver_sql(f"UPDATE runs SET status = status WHERE campaign_id = {int(other)}")
+            started.set()
+            done.wait(30)
+
+    t = threading.Thread(target=hold)
+    t.start()
+    try:
+        assert started.wait(30)
+        rep = load_json(cli, write(tmp_path / "b.csv", csv_text(runs(15))), campaign="mine")
+        assert rep["rows_loaded"] == 5 and rep["rows_skipped"] == 10, rep
+        # done while the other load still held its transaction (had it waited, it would have
+        # finished only once the holder gave up, 30 s on)
+        assert t.is_alive() and not done.is_set()
+        mine = dict(query(location, "SELECT name, id FROM campaigns"))["mine"]
+        assert any("UNIQUE" in d for d in indexes(location, f"runs_c{mine}"))
+    finally:
+        done.set()
+        t.join()
+        wh.close()
 
 
 def test_a_refused_new_campaign_leaves_no_table(cli, location, tmp_path):

@@ -4,7 +4,9 @@ A SQLite load proves its runs new from the cell summaries (none of its cells hol
 campaign) and a hash of its own run keys (none twice); when a proof fails it starts over with a
 unique index on the campaign's keys for the length of the load. What the user sees is the same
 as with a permanent key: repeated runs in a file are named, stored ones are skipped, retracted
-ones still hold their key. PostgreSQL keeps its unique index; the same behaviour holds there.
+ones still hold their key. PostgreSQL holds no key on the whole table either (revision 0013):
+a campaign's partition gets its own unique index on the live runs when a load into the
+campaign, once it holds runs, needs it; the same behaviour holds there.
 """
 from __future__ import annotations
 
@@ -22,10 +24,7 @@ H = "solver,version,group,instance,seed,status,pallets\n"
 
 def test_sqlite_keeps_no_run_key_and_a_load_leaves_none_behind(cli, location, tmp_path):
     before = indexes(location)
-    if ON_POSTGRES:
-        assert "ux_runs_key" in before
-    else:
-        assert "ux_runs_key" not in before
+    assert "ux_runs_key" not in before  # (PostgreSQL: none on the parent since revision 0013)
     load_json(cli, write(tmp_path / "a.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(1, 7))))
     # a second file into the same campaign over stored cells: the exact way, with its own key
     rep = load_json(cli, write(tmp_path / "b.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(4, 10))))
@@ -127,24 +126,19 @@ def test_values_one_chunk_holds_alike_are_stored_as_bound_ones_would_be(cli, loc
 
 # --- a file loaded again into its own campaign (`load --again`, revision 0008) ------------------
 
-def test_the_run_key_holds_live_runs_only(cli, location):
-    # PostgreSQL: a partial unique index (its own pg_indexes text); SQLite holds none (0007).
-    # The schema module declares the same (alembic's comparison in test_store does not read a
-    # partial index's WHERE)
-    from sqlalchemy.dialects import postgresql
-    from sqlalchemy.schema import CreateIndex
-
-    from warehouse.store import schema as S
-
-    (key,) = [i for i in S.runs.indexes if i.name == "ux_runs_key"]
-    assert str(CreateIndex(key).compile(dialect=postgresql.dialect())).endswith(" WHERE retraction_id IS NULL")
+def test_the_run_key_holds_live_runs_only(cli, location, tmp_path):
+    # PostgreSQL: the campaign partition's unique index is partial, made by the second load into
+    # the campaign (its own pg_indexes text); SQLite holds none (0007) and a load leaves none
+    load_json(cli, write(tmp_path / "a.csv", H + "s,1,g1,a,1,ok,10\n"), campaign="nov")
+    load_json(cli, write(tmp_path / "b.csv", H + "s,1,g1,a,2,ok,20\n"), campaign="nov")
     if not ON_POSTGRES:
-        assert "ux_runs_key" not in indexes(location)
+        assert not [i for i in indexes(location) if "key" in i]
         return
-    (ddl,), = query(location, "SELECT indexdef FROM pg_indexes WHERE indexname = 'ux_runs_key' "
-                              "AND schemaname = current_schema()")
-    assert ddl.startswith("CREATE UNIQUE INDEX ux_runs_key ON ") and ddl.endswith(
-        "USING btree (campaign_id, solver_id, instance_id, seed, replicate) WHERE (retraction_id IS NULL)"), ddl
+    (cid,), = query(location, "SELECT id FROM campaigns WHERE name = 'nov'")
+    (ddl,), = query(location, "SELECT indexdef FROM pg_indexes WHERE indexname = :n AND schemaname = current_schema()",
+                    n=f"runs_c{cid}_key")
+    assert ddl.startswith(f"CREATE UNIQUE INDEX runs_c{cid}_key ON ") and ddl.endswith(
+        "USING btree (solver_id, instance_id, seed, replicate) WHERE (retraction_id IS NULL)"), ddl
 
 
 def _reloaded(cli, tmp_path):

@@ -91,6 +91,7 @@ def _verify_args(p):
                    help="after saying what differs, make the cell and block summaries again from the live runs "
                         "(never touches runs, imports or the ledger)")
     p.epilog = ("Checks: the database file's integrity (SQLite), each import's runs against its count and id range, "
+                "one live run per key in a campaign, "
                 "the cell and block summaries against the live runs, every stored analysis against its digest. "
                 "Exit status 0 when all holds, 3 when something does not.")
     add_json(p)

@@ -328,9 +328,10 @@ def _open_import(conn, wh: Warehouse, p: Path, campaign: str, layout: Layout, fl
     fresh = None
     if partitions.partitioned(conn):
         if quick_allowed:
-            fresh = partitions.fresh(conn, cid)  # a new campaign's: filled with no index, attached at the end
-        else:
+            fresh = partitions.fresh(conn, cid)  # a new campaign's: filled with no key, attached at the end
+        if fresh is None:  # a campaign with runs: through its partition's run key, made now if it has none
             partitions.ensure(conn, cid)
+            partitions.keyed(conn, cid)
     key = runkey.RunKey(conn, wh.is_sqlite, cid, fl.chain, quick_allowed, total, fresh=fresh is not None)
     imp = _Import(conn, cid, import_id, dims, key, next_id, next_id, partition=fresh,
                   id_end=None if wh.is_sqlite else next_id + total)

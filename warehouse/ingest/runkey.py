@@ -1,10 +1,12 @@
 """A run appears once per campaign: how a load keeps that, on either database.
 
-PostgreSQL keeps a unique index on the live run keys, and the runs writer moves each chunk in
-past the keys taken (write.py); a load of a campaign with no runs yet writes a partition of its
-own with no index, and proves its runs new the quick way below (store/partitions.py). SQLite
-holds no index on the run key (revision 0007): a load proves its runs new instead, and lets
-SQLite number the rows as they come:
+Neither database keeps a key on the whole runs table. On PostgreSQL a load of a campaign with
+no runs yet writes a partition of its own with no key, and proves its runs new the quick way
+below (store/partitions.py); a load into a campaign that holds runs goes through the campaign
+partition's own unique key on its live runs, made by the first such load and kept (revision
+0013), and the runs writer moves each chunk in past the keys taken (write.py). SQLite holds
+no index on the run key (revision 0007): a load proves its runs new instead, and lets SQLite
+number the rows as they come:
 
 - quick: none of the file's cells (solver, instance) already holds runs of the campaign, live
   or retracted (`StoredCells`, read from the cell summaries), and no key hash appears twice in
@@ -37,14 +39,14 @@ class StartOver(Exception):
 class RunKey:
     """One load's way of keeping each run once per campaign: quick (the two proofs) or exact
     (the key index, and the retracted keys) on SQLite. On PostgreSQL, quick for a campaign that
-    holds no runs yet (its partition is filled with no index); otherwise nothing to do here, as
-    the unique index refuses a taken key as the runs are moved in."""
+    holds no runs yet (its partition is filled with no key); otherwise nothing to do here, as
+    the campaign partition's unique key refuses a taken key as the runs are moved in."""
 
     def __init__(self, conn, sqlite: bool, campaign_id: int, chain: tuple[int, ...], quick_allowed: bool, total: int,
                  fresh: bool = False):
         self.conn, self.campaign_id = conn, campaign_id
         # fresh (PostgreSQL): the campaign holds no runs and this load fills a partition of its own
-        # with no index (store/partitions.py); the hashes prove the file names each run once
+        # with no key (store/partitions.py); the hashes prove the file names each run once
         self.quick = (sqlite and quick_allowed and total <= QUICK_MAX_RUNS) or fresh
         self.exact = sqlite and not self.quick  # with the campaign's key index for the transaction
         if self.exact:

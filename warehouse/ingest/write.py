@@ -280,9 +280,10 @@ _PG_TYPES = {"id": ">i8", "campaign_id": ">i4", "import_id": ">i4", "solver_id":
              "source_line": ">i4"}
 def _move_sql(conn, names: str, campaign_id: int, chain: tuple[int, ...]) -> tuple[str, bool]:
     """PostgreSQL: the statement that moves the staged rows into runs, past every run whose key
-    is taken, and whether retracted runs of the campaign hold keys. The unique run key holds the live runs (ON CONFLICT names it, WHERE and all, so
-    that the partial index is the one inferred); the campaign's retracted runs outside the chain
-    a reload replaces hold theirs through an anti-join. Most campaigns hold no such run (the
+    is taken, and whether retracted runs of the campaign hold keys. The campaign partition's
+    unique run key holds the live runs (store/partitions.keyed; ON CONFLICT names no key, as
+    the partition's is its only unique index and the parent has none to name); the campaign's
+    retracted runs outside the chain a reload replaces hold theirs through an anti-join. Most campaigns hold no such run (the
     runs table is locked for the load, so that stays true while it writes): then the join is
     left out, and each chunk's insert reads nothing but the key index."""
     other = f" AND r.import_id NOT IN ({', '.join(str(int(i)) for i in chain)})" if chain else ""
@@ -294,8 +295,7 @@ def _move_sql(conn, names: str, campaign_id: int, chain: tuple[int, ...]) -> tup
         where = (" WHERE NOT EXISTS (SELECT 1 FROM runs r WHERE " + retracted + " AND r.solver_id = s.solver_id "
                  "AND r.instance_id = s.instance_id AND r.seed = s.seed AND r.replicate = s.replicate)")
     return (f"INSERT INTO runs ({names}) SELECT {names} FROM blockyard_stage s{where} ORDER BY id "
-            "ON CONFLICT (campaign_id, solver_id, instance_id, seed, replicate) WHERE retraction_id IS NULL "
-            "DO NOTHING"), held
+            "ON CONFLICT DO NOTHING"), held
 
 
 @dataclass

@@ -224,7 +224,10 @@ def hold_runs_for_load(conn, campaign: str) -> None:
     sit idle (`LOAD_IDLE_SECONDS`), the runs table's ROW EXCLUSIVE lock (the one every writer of
     runs takes: loads of other campaigns go on side by side, a retraction and its undo wait for
     the load and the load for them), and the campaign's own lock, so that two loads of one
-    campaign take turns (its run key and its new partition are the campaign's alone). A load
+    campaign take turns (its run key and its new partition are the campaign's alone). The lock
+    is the parent table's alone (ONLY): the load's writes lock its own campaign's partition as
+    they reach it, so that making the partition's run key (store/partitions.keyed) waits for
+    no load of another campaign. A load
     that must add a name (a solver, instance, host or metric new to the warehouse) also takes
     the names lock when it first needs it (ingest/names.Dimensions)."""
     try:
@@ -232,7 +235,7 @@ def hold_runs_for_load(conn, campaign: str) -> None:
     except ValueError:
         idle = LOAD_IDLE_SECONDS
     conn.exec_driver_sql(f"SET LOCAL idle_in_transaction_session_timeout = '{idle}s'")
-    conn.exec_driver_sql("LOCK TABLE runs IN ROW EXCLUSIVE MODE")
+    conn.exec_driver_sql("LOCK TABLE ONLY runs IN ROW EXCLUSIVE MODE")
     conn.exec_driver_sql(f"SELECT pg_advisory_xact_lock({CAMPAIGN_LOCK_CLASS}, hashtext(current_schema() || '/' || %s))",
                          (campaign,))
 

@@ -1,21 +1,25 @@
 """PostgreSQL: the runs table is partitioned by campaign (revision 0010), one partition a campaign.
 
-A load of a campaign with no runs yet fills a table of its own with no index at all
-(`fresh`), then attaches it as the campaign's partition (`attach`): PostgreSQL builds the
-partition's indexes by sorting the finished table, which costs a fraction of keeping two
-B-trees up to date row by row (docs/performance.md). The table carries a CHECK on its campaign,
-so attaching it reads no row to prove the partition bound.
+A load of a campaign with no runs yet fills a table of its own (`fresh`), with no index but
+the retracted runs' (which such a load leaves empty, revision 0012), then attaches it as the
+campaign's partition (`attach`): PostgreSQL builds the block-range index on id by reading the
+finished table once, a fraction of keeping an index up to date row by row (docs/performance.md).
+The table carries a CHECK on its campaign, so attaching it reads no row to prove the partition
+bound. It holds no run key: the load proved its runs new from the file's key hashes
+(ingest/runkey.py).
 
 A load into a campaign that holds runs already writes through the parent table into the
-campaign's partition, under its unique run key, as before; `ensure` makes that partition first
-when the campaign has none (empty, attached at once).
+campaign's partition, under the partition's own unique run key (`keyed`: made by sorting for
+the first such load, and kept; revision 0013); `ensure` makes that partition first when the
+campaign has none (empty, attached at once).
 
-Making and attaching a table are the owner's rights: both go through two functions revision
-0010 made, which run as the schema's owner for anyone who may insert runs, so a team member
-with the documented grants (docs/reliability.md) loads as before. Attaching takes SHARE UPDATE
-EXCLUSIVE on the parent, which neither readers nor the loads of other campaigns (ROW
-EXCLUSIVE, store.connect.hold_runs_for_load) wait for; two attaches take turns, for the moment
-between the one's attach and its commit. SQLite keeps one runs table: nothing here applies to it.
+Making, attaching and indexing a table are the owner's rights: they go through three functions
+(revisions 0010 and 0013), which run as the schema's owner for anyone who may insert runs, so a
+team member with the documented grants (docs/reliability.md) loads as before. Attaching takes
+SHARE UPDATE EXCLUSIVE on the parent, which neither readers nor the loads of other campaigns
+(ROW EXCLUSIVE on the parent alone, store.connect.hold_runs_for_load) wait for; two attaches
+take turns, for the moment between the one's attach and its commit. SQLite keeps one runs
+table: nothing here applies to it.
 """
 from __future__ import annotations
 
@@ -36,6 +40,15 @@ def fresh(conn, campaign_id: int) -> str | None:
 def ensure(conn, campaign_id: int) -> None:
     """The campaign's partition, made empty and attached when it has none yet."""
     conn.exec_driver_sql(f"SELECT blockyard_open_partition({int(campaign_id)}, true)")
+
+
+def keyed(conn, campaign_id: int) -> bool:
+    """The campaign partition's unique key on its live runs (solver, instance, seed, replicate),
+    built now by sorting when the partition has none yet (True: it was built). The load holds
+    the campaign's lock, so no other load of the campaign writes meanwhile; building it locks
+    out the partition's other writers (a retraction, which waits for loads anyway), not readers
+    and not loads of other campaigns."""
+    return bool(conn.exec_driver_sql(f"SELECT blockyard_key_partition({int(campaign_id)})").scalar())
 
 
 def attach(conn, campaign_id: int) -> None:

@@ -181,16 +181,15 @@ runs = Table(
     Column("retraction_id", Integer, ForeignKey("retractions.id"), nullable=True),
     *[Column(name, Float, nullable=True) for name in VALUE_COLUMNS],
     *_loaded_keys(),
-    # PostgreSQL keeps the run key as a unique index (its loads stage rows and insert them past
-    # conflicts). SQLite holds none (revision 0007): building it was a fifth of a large load, and
-    # a load there proves its runs new from the cell summaries and a hash of its own keys instead,
-    # falling back to a unique index on the one campaign's keys for the length of the load
-    # (ingest/runkey.py: StoredCells, RunHashes, campaign_key).
+    # No run key on the table (live runs unique per campaign). A load proves its runs new from
+    # the cell summaries and a hash of its own keys (ingest/runkey.py: StoredCells, RunHashes).
+    # When a proof fails, or the campaign holds runs already on PostgreSQL, a unique index on
+    # the one campaign's live keys refuses each taken key: on SQLite made and dropped inside the
+    # load (revision 0007, campaign_key); on PostgreSQL the campaign partition's own key,
+    # made by the first load that needs it and kept (revision 0013, store/partitions.keyed).
     # Live runs only (revision 0008): a file reloaded into its own campaign (`load --again`)
     # goes in beside its retracted runs, under the same keys; the loads keep other retracted
     # runs' keys themselves.
-    Index("ux_runs_key", "campaign_id", "solver_id", "instance_id", "seed", "replicate", unique=True,
-          postgresql_where=text("retraction_id IS NULL")).ddl_if(dialect="postgresql"),
     # PostgreSQL partitions runs by campaign (revision 0010, store/partitions.py): a key on a
     # partitioned table must hold the partition column, so there an index on id stands
     # for the primary key (every load takes a block of ids of its own from runs_id_seq,
