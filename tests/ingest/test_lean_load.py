@@ -68,3 +68,47 @@ def test_refusals_skip_bad_and_dry_run_without_pandas(tmp_path, wh_location):
     code, out, err, tail = _run("load", good, "--campaign", "c", "-w", where, "--dry-run", "--json")
     assert code == 0 and tail == "pandas-imported=False", err
     assert json.loads(out)["imports"][0]["status"] == "checked"
+
+
+def test_a_load_keeps_its_arrays_off_huge_pages_and_gives_the_switches_back(tmp_path, wh):
+    """ingest/devices.SmallPages: during a load, Arrow allocates from the C library's allocator and
+    numpy asks for no huge pages; after it, a running process (shell, notebook) has its own
+    settings back. The switches are the libraries' own (numpy's `_set_madvise_hugepage`, whose
+    return value is the setting before; pyarrow's `set_memory_pool`)."""
+    import pyarrow as pa
+
+    from warehouse.ingest.load import load_file
+
+    try:
+        from numpy._core import multiarray
+    except ImportError:  # numpy 1.x
+        from numpy.core import multiarray
+    pa.set_memory_pool(pa.mimalloc_memory_pool())
+    multiarray._set_madvise_hugepage(True)
+    seen = []
+
+    def progress(done, total):
+        now = multiarray._set_madvise_hugepage(False)  # reads it (and leaves it as the load set it)
+        seen.append((pa.default_memory_pool().backend_name, now))
+
+    rep = load_file(wh, write(tmp_path / "a.csv", csv_text(runs(40))), "c", progress=progress)
+    assert rep.rows_loaded == 40 and seen
+    assert all(s == ("system", False) for s in seen), seen
+    assert pa.default_memory_pool().backend_name == "mimalloc"
+    assert multiarray._set_madvise_hugepage(True) is True
+
+
+def test_the_command_sets_both_switches_before_the_libraries_load(tmp_path, wh_location):
+    probe = ("import os, sys\nimport warehouse.front.cli as cli\ncli._leave = sys.exit\ntry:\n    cli.main()\n"
+             "finally:\n    import pyarrow as pa\n"
+             "    sys.stderr.write('\\n%s %s\\n' % (pa.default_memory_pool().backend_name, "
+             "os.environ.get('NUMPY_MADVISE_HUGEPAGE')))\n")
+    from faults import clean_env
+
+    subprocess.run([sys.executable, "-m", "warehouse", "init", "-w", wh_location], check=True, capture_output=True,
+                   env=clean_env(BLOCKYARD_RESIDENT="off"), timeout=300)
+    path = write(tmp_path / "a.csv", csv_text(ROWS))
+    p = subprocess.run([sys.executable, "-c", probe, "load", str(path), "--campaign", "c", "-w", wh_location],
+                       capture_output=True, text=True, env=clean_env(BLOCKYARD_RESIDENT="off"), timeout=300)
+    assert p.returncode == 0, p.stderr
+    assert p.stderr.rstrip().splitlines()[-1] == "system 0"

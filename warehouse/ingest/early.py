@@ -41,6 +41,11 @@ def _stamp(path: Path):
     return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
 
 
+# numpy's and pyarrow's own switches, read when each is imported (their documentation's
+# environment variables): no huge pages asked for large arrays, and the C library's allocator
+SMALL_PAGES_ENV = {"NUMPY_MADVISE_HUGEPAGE": "0", "ARROW_DEFAULT_MEMORY_POOL": "system"}
+
+
 def start_early(argv: list[str]) -> None:
     """For `blockyard load FILE...`: run the first pass over each named data file in a helper thread.
 
@@ -67,6 +72,10 @@ def start_early(argv: list[str]) -> None:
     # work by spinning, on the cores the load's own threads use: 1 to 2 % of a load's processor
     # time in `perf`). Set before numpy is imported.
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    # and the load's arrays on ordinary pages, from the start (ingest/devices.SmallPages: the
+    # kernel's zeroing of huge pages was a tenth of a PostgreSQL load's time)
+    for name, value in SMALL_PAGES_ENV.items():
+        os.environ.setdefault(name, value)
     todo: list[tuple[Path, str, object]] = []
     for tok in argv[command + 1:]:
         if tok.startswith("-"):

@@ -43,7 +43,7 @@ from ..store.connect import Warehouse, hold_runs_for_load, take_run_ids
 from . import early, reload, runkey
 from .cellsums import Summing, run_statements
 from .checks import FileLoad, Rows, checked
-from .devices import CollectorPaused, ForeignKeysOff, PandasNotForArrow, Prefetch
+from .devices import CollectorPaused, ForeignKeysOff, PandasNotForArrow, Prefetch, SmallPages
 from .layout import Layout
 from .names import ChunkIds, Dimensions, campaign_id, check_campaign
 from .scan import SourceInfo
@@ -91,7 +91,7 @@ def load_file(wh: Warehouse, path: str | Path, campaign: str, layout: Layout | N
 
     `again`: load bytes loaded before, when every earlier import of them is wholly retracted, as
     a new import that names the one it replaces (`load --again`)."""
-    with PandasNotForArrow(), CollectorPaused():
+    with PandasNotForArrow(), CollectorPaused(), SmallPages():
         return _load_file(wh, path, campaign, layout, skip_bad=skip_bad, dry_run=dry_run, rejects=rejects,
                           progress=progress, again=again)
 
