@@ -35,7 +35,8 @@ def loose_tables(location: str) -> list[str]:
 
 
 def indexes(location: str, table: str) -> list[str]:
-    return sorted(r[0] for r in query(location, "SELECT indexdef FROM pg_indexes WHERE tablename = :t", t=table))
+    return sorted(r[0] for r in query(location, "SELECT indexdef FROM pg_indexes WHERE tablename = :t "
+                                                "AND schemaname = current_schema()", t=table))
 
 
 def test_each_campaign_gets_its_own_partition_and_no_run_key_until_a_load_needs_one(cli, location, tmp_path):
@@ -170,3 +171,36 @@ def test_a_large_first_load_leaves_the_summaries_analyzed(cli, location, tmp_pat
             ("block_stats", "group_id"), ("block_stats", "solver_id")} <= seen
     assert ("cell_stats", "sum_ok") not in seen
     assert query(location, "SELECT reltuples > 0 FROM pg_class WHERE oid = 'cell_stats'::regclass") == [(True,)]
+
+
+def test_revision_0013_down_and_up_keeps_every_run_and_the_next_load_finds_the_stored_ones(cli, location, tmp_path):
+    """Down to 0012 the parent's run key is built again over every partition; back up, it goes,
+    and the campaign's next load makes the partition's own key and skips the runs stored."""
+    from alembic import command
+
+    from warehouse.store.connect import _alembic_config, open_warehouse
+
+    load_json(cli, write(tmp_path / "a.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(1, 7))))
+    load_json(cli, write(tmp_path / "b.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(4, 10))))
+    (part,) = partitions(location)
+    assert any("UNIQUE" in d for d in indexes(location, part))  # made by the second load
+    wh = open_warehouse(location)
+    try:
+        with wh.engine.connect() as conn, conn.begin():
+            command.downgrade(_alembic_config(conn), "0012")
+            # (read here: a warehouse at 0012 does not open for this Blockyard)
+            def defs(t):
+                return [r[0] for r in conn.exec_driver_sql(
+                    "SELECT indexdef FROM pg_indexes WHERE tablename = %s AND schemaname = current_schema()", (t,))]
+            assert any(d.startswith("CREATE UNIQUE INDEX ux_runs_key") for d in defs("runs"))
+            keys = [d for d in defs(part) if "UNIQUE" in d]
+            assert len(keys) == 1 and "campaign_id, solver_id" in keys[0], keys  # the parent's, not the campaign's own
+            assert conn.exec_driver_sql("SELECT to_regproc('blockyard_key_partition')").scalar() is None
+    finally:
+        wh.close()
+    assert cli("upgrade").code == 0
+    assert not any("UNIQUE" in d for d in indexes(location, "runs") + indexes(location, part))
+    rep = load_json(cli, write(tmp_path / "c.csv", H + "".join(f"s,1,g1,a,{k},ok,{k}\n" for k in range(8, 12))))
+    assert (rep["rows_loaded"], rep["rows_skipped"]) == (2, 2)
+    assert query(location, "SELECT seed FROM runs ORDER BY id") == [(k,) for k in range(1, 12)]
+    assert [d for d in indexes(location, part) if "UNIQUE" in d] != []
