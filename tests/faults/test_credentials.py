@@ -244,8 +244,12 @@ def test_a_team_member_with_the_documented_privileges_can_do_the_daily_work(loca
     grant_member(role, location)
     member = with_password(location, user=role)
     more = runs_csv(tmp_path / "more.csv", 1_000, instances=50, seed=23, version="1.7")
+    # a second file into the campaign: the load makes the campaign partition's run key through
+    # the owner's function (revision 0013), as the member
+    later = runs_csv(tmp_path / "later.csv", 1_000, instances=50, seed=24, version="1.7", first_seed=100)
     steps = [
         ("load", str(more), "--campaign", "more", "--json"),
+        ("load", str(later), "--campaign", "more", "--json"),
         ("inventory", "--json"),
         ("peek", "--metric", "pallets", "--json"),
         ("blocktest", "--metric", "pallets", "--json"),
@@ -262,7 +266,10 @@ def test_a_team_member_with_the_documented_privileges_can_do_the_daily_work(loca
         res = in_process(member, *argv)
         assert res.code == 0, (argv, res)
         never_shown(res)
-    assert sql(location, "SELECT count(*) FROM runs")[0][0] == 2_000
+    assert sql(location, "SELECT count(*) FROM runs")[0][0] == 3_000
+    keys = sql(location, "SELECT count(*) FROM pg_indexes WHERE schemaname = current_schema() "
+                         "AND indexdef LIKE 'CREATE UNIQUE INDEX runs_c%_key %'")[0][0]
+    assert keys == 1
 
 
 def test_creating_a_warehouse_takes_create_which_a_member_lacks(location, role, drop_made_schemas):
