@@ -283,9 +283,10 @@ def _move_sql(conn, names: str, campaign_id: int, chain: tuple[int, ...]) -> tup
     is taken, and whether retracted runs of the campaign hold keys. The campaign partition's
     unique run key holds the live runs (store/partitions.keyed; ON CONFLICT names no key, as
     the partition's is its only unique index and the parent has none to name); the campaign's
-    retracted runs outside the chain a reload replaces hold theirs through an anti-join. Most campaigns hold no such run (the
-    runs table is locked for the load, so that stays true while it writes): then the join is
-    left out, and each chunk's insert reads nothing but the key index."""
+    retracted runs outside the chain a reload replaces hold theirs through an anti-join. Most
+    campaigns hold no such run (the runs table is locked for the load, so that stays true while
+    it writes): then the join is left out, and each chunk's insert reads nothing but the key
+    index."""
     other = f" AND r.import_id NOT IN ({', '.join(str(int(i)) for i in chain)})" if chain else ""
     retracted = f"r.retraction_id IS NOT NULL AND r.campaign_id = {int(campaign_id)}{other}"
     held = conn.exec_driver_sql(f"SELECT 1 FROM runs r WHERE {retracted} LIMIT 1").first() is not None

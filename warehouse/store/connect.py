@@ -227,9 +227,9 @@ def hold_runs_for_load(conn, campaign: str) -> None:
     campaign take turns (its run key and its new partition are the campaign's alone). The lock
     is the parent table's alone (ONLY): the load's writes lock its own campaign's partition as
     they reach it, so that making the partition's run key (store/partitions.keyed) waits for
-    no load of another campaign. A load
-    that must add a name (a solver, instance, host or metric new to the warehouse) also takes
-    the names lock when it first needs it (ingest/names.Dimensions)."""
+    no load of another campaign. A load that must add a name (a solver, instance, host or
+    metric new to the warehouse) also takes the names lock when it first needs it
+    (ingest/names.Dimensions)."""
     try:
         idle = max(1, int(os.environ.get(LOAD_IDLE_ENV, LOAD_IDLE_SECONDS)))
     except ValueError:
