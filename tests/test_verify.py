@@ -184,9 +184,29 @@ def test_a_run_put_in_twice_by_hand_is_found(two_campaigns, cli, wh):
             "status, source_line, v1 FROM runs WHERE id = (SELECT min(id) FROM runs WHERE campaign_id = 2)")
     code, checks, _ = verify(cli)
     assert code == 3
-    assert any(f.startswith("campaign 2: 1 run key is held by more than one live run") for f in checks["imports"]["found"]), \
+    assert any(f.startswith("campaign c2: 1 run key is held by more than one live run") for f in checks["imports"]["found"]), \
         checks["imports"]["found"]
     # a retracted copy holds no key: retracting the whole campaign leaves nothing to name
     assert cli("retract", "--slice", "campaign=c2", "--reason", "a copy put in by hand").code == 0
     _, checks, _ = verify(cli)
     assert not any("held by more than one live run" in f for f in checks["imports"]["found"])
+
+
+def test_a_load_into_a_campaign_holding_a_run_twice_is_refused_in_one_line(two_campaigns, cli, wh, tmp_path):
+    # The campaign's key index cannot be made over two live runs with one key (PostgreSQL: the
+    # partition's own, revision 0013; SQLite: the load's exact-way index, revision 0007), so a
+    # file into that campaign whose cells meet the stored ones is refused, naming the campaign
+    # and the way to find the pair; nothing of it is stored.
+    from test_ledger import write_runs
+
+    sql(wh, "INSERT INTO runs (id, campaign_id, import_id, solver_id, instance_id, seed, replicate, status, "
+            "source_line, v1) SELECT id + 100000, campaign_id, import_id, solver_id, instance_id, seed, replicate, "
+            "status, source_line, v1 FROM runs WHERE id = (SELECT min(id) FROM runs WHERE campaign_id = 2)")
+    before = cli("inventory", "--json").out
+    more = write_runs(tmp_path / "more.csv", runs_of("3.0", "f1", -1.0, random.Random(9), seeds=(1, 7)))
+    r = cli("load", more, "--campaign", "c2")
+    assert r.code == 2, r
+    lines = r.err.strip().splitlines()
+    assert len(lines) == 1, r.err
+    assert "campaign c2 already holds two live runs under one key" in lines[0] and "blockyard verify" in lines[0], lines
+    assert cli("inventory", "--json").out == before

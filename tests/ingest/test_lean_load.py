@@ -83,19 +83,24 @@ def test_a_load_keeps_its_arrays_off_huge_pages_and_gives_the_switches_back(tmp_
         from numpy._core import multiarray
     except ImportError:  # numpy 1.x
         from numpy.core import multiarray
+    pool_was = pa.default_memory_pool()
     pa.set_memory_pool(pa.mimalloc_memory_pool())
-    multiarray._set_madvise_hugepage(True)
+    madvise_was = multiarray._set_madvise_hugepage(True)
     seen = []
 
     def progress(done, total):
         now = multiarray._set_madvise_hugepage(False)  # reads it (and leaves it as the load set it)
         seen.append((pa.default_memory_pool().backend_name, now))
 
-    rep = load_file(wh, write(tmp_path / "a.csv", csv_text(runs(40))), "c", progress=progress)
-    assert rep.rows_loaded == 40 and seen
-    assert all(s == ("system", False) for s in seen), seen
-    assert pa.default_memory_pool().backend_name == "mimalloc"
-    assert multiarray._set_madvise_hugepage(True) is True
+    try:
+        rep = load_file(wh, write(tmp_path / "a.csv", csv_text(runs(40))), "c", progress=progress)
+        assert rep.rows_loaded == 40 and seen
+        assert all(s == ("system", False) for s in seen), seen
+        assert pa.default_memory_pool().backend_name == "mimalloc"
+        assert multiarray._set_madvise_hugepage(True) is True
+    finally:  # this test process's own settings, as they were
+        pa.set_memory_pool(pool_was)
+        multiarray._set_madvise_hugepage(madvise_was)
 
 
 def test_the_command_sets_both_switches_before_the_libraries_load(tmp_path, wh_location):

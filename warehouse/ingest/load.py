@@ -326,13 +326,18 @@ def _open_import(conn, wh: Warehouse, p: Path, campaign: str, layout: Layout, fl
     else:  # loads of other campaigns write meanwhile: a block of ids for every record the file may hold
         next_id = take_run_ids(conn, total)
     fresh = None
-    if partitions.partitioned(conn):
-        if quick_allowed:
-            fresh = partitions.fresh(conn, cid)  # a new campaign's: filled with no key, attached at the end
-        if fresh is None:  # a campaign with runs: through its partition's run key, made now if it has none
-            partitions.ensure(conn, cid)
-            partitions.keyed(conn, cid)
-    key = runkey.RunKey(conn, wh.is_sqlite, cid, fl.chain, quick_allowed, total, fresh=fresh is not None)
+    try:
+        if partitions.partitioned(conn):
+            if quick_allowed:
+                fresh = partitions.fresh(conn, cid)  # a new campaign's: filled with no key, attached at the end
+            if fresh is None:  # a campaign with runs: through its partition's run key, made now if it has none
+                partitions.ensure(conn, cid)
+                partitions.keyed(conn, cid)
+        key = runkey.RunKey(conn, wh.is_sqlite, cid, fl.chain, quick_allowed, total, fresh=fresh is not None)
+    except IntegrityError:  # the campaign's key index could not be made: two live runs share a key
+        raise StorageError(f"campaign {campaign} already holds two live runs under one key (solver, instance, "
+                           "seed and replicate), put in outside Blockyard, so its runs cannot be kept once each; "
+                           f"nothing from {fl.name} was stored; blockyard verify names them") from None
     imp = _Import(conn, cid, import_id, dims, key, next_id, next_id, partition=fresh,
                   id_end=None if wh.is_sqlite else next_id + total)
     dims.before_sql = lambda: imp.writer.wait() if imp.writer is not None else None

@@ -186,11 +186,12 @@ def imports(conn) -> Check:
     # needs one: ingest/runkey.py, revisions 0007 and 0013), so a run put in by hand is found here
     key = [R.c.campaign_id, R.c.solver_id, R.c.instance_id, R.c.seed, R.c.replicate]
     twice = select(*key).where(R.c.retraction_id.is_(None)).group_by(*key).having(func.count() > 1).subquery()
+    named = {i: name for i, name in conn.execute(select(S.campaigns.c.id, S.campaigns.c.name))}
     shared = conn.execute(select(twice.c.campaign_id, func.count()).group_by(twice.c.campaign_id)
                           .order_by(twice.c.campaign_id)).all()
     for campaign_id, n in shared:
-        chk.add(f"campaign {campaign_id}: {n} run key{'s are' if n > 1 else ' is'} held by more than one live run "
-                "(a campaign holds one live run per solver, instance, seed and replicate)")
+        chk.add(f"campaign {named.get(campaign_id, f'id {campaign_id}')}: {n} run key{'s are' if n > 1 else ' is'} "
+                "held by more than one live run (a campaign holds one live run per solver, instance, seed and replicate)")
     # a run whose id lies in another import's range is read with that import by a date slice (an
     # import's range is a few rows; each is a range lookup on the runs' primary key)
     crossed = conn.execute(select(func.count()).select_from(

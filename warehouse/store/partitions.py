@@ -42,17 +42,17 @@ def ensure(conn, campaign_id: int) -> None:
     conn.exec_driver_sql(f"SELECT blockyard_open_partition({int(campaign_id)}, true)")
 
 
-def keyed(conn, campaign_id: int) -> bool:
+def keyed(conn, campaign_id: int) -> None:
     """The campaign partition's unique key on its live runs (solver, instance, seed, replicate),
-    built now by sorting when the partition has none yet (True: it was built). The load holds
+    built now by sorting when the partition has none yet. The load holds
     the campaign's lock, so no other load of the campaign writes meanwhile; building it locks
     out the partition's other writers (a retraction, which waits for loads anyway), not readers
     and not loads of other campaigns."""
-    return bool(conn.exec_driver_sql(f"SELECT blockyard_key_partition({int(campaign_id)})").scalar())
+    conn.exec_driver_sql(f"SELECT blockyard_key_partition({int(campaign_id)})")
 
 
 def attach(conn, campaign_id: int) -> None:
-    """Make the filled table the campaign's partition: its indexes are built here, by sorting."""
+    """Make the filled table the campaign's partition: its block-range index on id is built here."""
     conn.exec_driver_sql(attach_sql(campaign_id))
 
 
