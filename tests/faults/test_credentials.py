@@ -272,6 +272,37 @@ def test_a_team_member_with_the_documented_privileges_can_do_the_daily_work(loca
     assert keys == 1
 
 
+def test_a_members_grants_on_the_cell_summaries_outlive_the_upgrade_that_partitions_them(location, tmp_path, stocked,
+                                                                                          role):
+    """Revision 0014 replaces cell_stats by a table partitioned by campaign: the privileges others
+    held on the old table are given on the new one, so a member granted at 0013 loads a new
+    campaign and retracts (which deletes and rewrites cell summaries) after the upgrade, with no
+    grant run again."""
+    from alembic import command
+
+    from warehouse.store.connect import _alembic_config, open_warehouse
+
+    wh = open_warehouse(location)
+    try:
+        with wh.engine.connect() as conn, conn.begin():
+            command.downgrade(_alembic_config(conn), "0013")
+    finally:
+        wh.close()
+    grant_member(role, location)
+    assert in_process(location, "upgrade").code == 0
+    assert sql(location, "SELECT relkind FROM pg_class WHERE oid = 'cell_stats'::regclass") == [("p",)]
+    assert sql(location, "SELECT has_table_privilege(:r, 'cell_stats', 'DELETE'), "
+                         "has_table_privilege(:r, 'cell_stats', 'INSERT')", r=role) == [(True, True)]
+    member = with_password(location, user=role)
+    more = runs_csv(tmp_path / "more.csv", 500, instances=50, seed=31, version="1.7")
+    for argv in (("load", str(more), "--campaign", "more"),
+                 ("retract", "--slice", "campaign=more solver=packer", "--reason", "wrong build"),
+                 ("verify",)):
+        res = in_process(member, *argv)
+        assert res.code == 0, (argv, res)
+        never_shown(res)
+
+
 def test_creating_a_warehouse_takes_create_which_a_member_lacks(location, role, drop_made_schemas):
     empty = _fresh_schema(location)
     admin(f'GRANT USAGE ON SCHEMA "{schema_of(empty)}" TO {role}')

@@ -28,10 +28,24 @@ def partitions(location: str) -> list[str]:
                                           "WHERE i.inhparent = 'runs'::regclass ORDER BY 1")]
 
 
+def cell_partitions(location: str) -> list[str]:
+    return [r[0] for r in query(location, "SELECT c.relname FROM pg_inherits i JOIN pg_class c ON c.oid = i.inhrelid "
+                                          "WHERE i.inhparent = 'cell_stats'::regclass ORDER BY 1")]
+
+
 def loose_tables(location: str) -> list[str]:
-    """Tables named like a campaign's partition that are not attached (a load's leftovers)."""
-    return [r[0] for r in query(location, "SELECT relname FROM pg_class WHERE relkind = 'r' AND relname LIKE 'runs_c%' "
-                                          "AND NOT relispartition AND relnamespace = current_schema()::regnamespace")]
+    """Tables named like a campaign's partition of runs or cell_stats that are not attached (a
+    load's leftovers)."""
+    return [r[0] for r in query(location, "SELECT relname FROM pg_class WHERE relkind = 'r' AND (relname LIKE 'runs_c%' "
+                                          "OR relname LIKE 'cells_c%') AND NOT relispartition "
+                                          "AND relnamespace = current_schema()::regnamespace")]
+
+
+def attached_indexes(location: str, table: str) -> list[tuple[str, str]]:
+    """(the partition's index, the parent's index it is attached to)."""
+    return sorted(query(location, "SELECT c.relname, p.relname FROM pg_index x JOIN pg_class c ON c.oid = x.indexrelid "
+                                  "LEFT JOIN pg_inherits i ON i.inhrelid = c.oid LEFT JOIN pg_class p ON p.oid = i.inhparent "
+                                  "WHERE x.indrelid = CAST(:t AS regclass)", t=table))
 
 
 def indexes(location: str, table: str) -> list[str]:
@@ -57,6 +71,32 @@ def test_each_campaign_gets_its_own_partition_and_no_run_key_until_a_load_needs_
         [(ids["night-1"], 30), (ids["night-2"], 20)]
     # the parent holds no key either: each campaign's partition keeps its own
     assert not any("UNIQUE" in d for d in indexes(location, "runs"))
+
+
+def test_a_new_campaigns_cell_summaries_fill_a_table_of_their_own_indexed_once_full(cli, location, tmp_path):
+    """Revision 0014: cell_stats is partitioned by campaign; a new campaign's cell rows go into a
+    table with no index, whose three indexes are built once it is full and attached to the
+    parent's; a second file into the campaign writes through the parent into the same partition."""
+    load_json(cli, write(tmp_path / "a.csv", csv_text(runs(30))), campaign="night-1")
+    load_json(cli, write(tmp_path / "b.csv", csv_text(runs(20, start_seed=40))), campaign="night-2")
+    ids = dict(query(location, "SELECT name, id FROM campaigns"))
+    one, two = f"cells_c{ids['night-1']}", f"cells_c{ids['night-2']}"
+    assert cell_partitions(location) == sorted([one, two])
+    assert loose_tables(location) == []
+    assert query(location, "SELECT relkind FROM pg_class WHERE oid = 'cell_stats'::regclass") == [("p",)]
+    assert attached_indexes(location, one) == [(f"{one}_campaign", "ix_cells_campaign"),
+                                               (f"{one}_import", "ix_cells_import"),
+                                               (f"{one}_solver", "ix_cells_solver")]
+    by_campaign = query(location, "SELECT campaign_id, sum(n) FROM cell_stats WHERE slot = 1 GROUP BY 1 ORDER BY 1")
+    assert by_campaign == [(ids["night-1"], 30), (ids["night-2"], 20)]
+    assert query(location, f"SELECT DISTINCT campaign_id FROM {one}") == [(ids["night-1"],)]
+    # the next file into night-1: through the parent, into the same partition (no new table)
+    rep = load_json(cli, write(tmp_path / "c.csv", csv_text(runs(10, start_seed=90))), campaign="night-1")
+    assert rep["rows_loaded"] == 10
+    assert cell_partitions(location) == sorted([one, two]) and loose_tables(location) == []
+    assert query(location, f"SELECT count(DISTINCT import_id), sum(n) FROM {one} WHERE slot = 1") == [(2, 40)]
+    # and the stored summaries still agree with the runs
+    assert cli("verify").code == 0
 
 
 def test_a_second_file_into_a_campaign_makes_its_run_key_and_goes_through_it(cli, location, tmp_path):
@@ -118,14 +158,14 @@ def test_a_refused_new_campaign_leaves_no_table(cli, location, tmp_path):
     rs = runs(12)
     line = refusal(cli, write(tmp_path / "twice.csv", csv_text(rs + [rs[3]])), campaign="fresh")
     assert "lines 5 and 14 hold the same run" in line, line
-    assert partitions(location) == [] and loose_tables(location) == []
+    assert partitions(location) == [] and cell_partitions(location) == [] and loose_tables(location) == []
     assert query(location, "SELECT count(*) FROM campaigns") == [(0,)]
 
 
 def test_a_dry_run_of_a_new_campaign_leaves_no_table(cli, location, tmp_path):
     f = write(tmp_path / "a.csv", csv_text(runs(10)))
     assert cli("load", str(f), "--campaign", "dry", "--dry-run").code == 0
-    assert partitions(location) == [] and loose_tables(location) == []
+    assert partitions(location) == [] and cell_partitions(location) == [] and loose_tables(location) == []
 
 
 def test_the_binary_format_reads_back_as_the_values_meant(location):
@@ -164,13 +204,15 @@ def test_a_large_first_load_leaves_the_summaries_analyzed(cli, location, tmp_pat
     # the planner's statistics of the columns the slices filter and join on, made after the load
     # (store/cells.refresh_statistics; PostgreSQL documentation, "Populating a Database": run
     # ANALYZE after loading much data); the sums are left to autovacuum
+    # (revision 0014: the campaign's partition of cell_stats, the table a slice of it reads)
     load_json(cli, write(tmp_path / "a.csv", csv_text(runs(40))), campaign="night-1")
+    (part,) = cell_partitions(location)
     seen = {(t, c) for t, c in query(location, "SELECT tablename, attname FROM pg_stats WHERE schemaname = "
-                                               "current_schema() AND tablename IN ('cell_stats', 'block_stats')")}
-    assert {("cell_stats", "campaign_id"), ("cell_stats", "instance_id"), ("cell_stats", "slot"),
+                                               "current_schema() AND tablename IN (:p, 'block_stats')", p=part)}
+    assert {(part, "campaign_id"), (part, "instance_id"), (part, "slot"),
             ("block_stats", "group_id"), ("block_stats", "solver_id")} <= seen
-    assert ("cell_stats", "sum_ok") not in seen
-    assert query(location, "SELECT reltuples > 0 FROM pg_class WHERE oid = 'cell_stats'::regclass") == [(True,)]
+    assert (part, "sum_ok") not in seen
+    assert query(location, "SELECT reltuples > 0 FROM pg_class WHERE oid = CAST(:p AS regclass)", p=part) == [(True,)]
 
 
 def test_revision_0013_down_and_up_keeps_every_run_and_the_next_load_finds_the_stored_ones(cli, location, tmp_path):
@@ -204,3 +246,40 @@ def test_revision_0013_down_and_up_keeps_every_run_and_the_next_load_finds_the_s
     assert (rep["rows_loaded"], rep["rows_skipped"]) == (2, 2)
     assert query(location, "SELECT seed FROM runs ORDER BY id") == [(k,) for k in range(1, 12)]
     assert [d for d in indexes(location, part) if "UNIQUE" in d] != []
+
+
+def test_revision_0014_down_and_up_keeps_every_cell_row_and_the_loads_go_on(cli, location, tmp_path):
+    """Down to 0013 cell_stats is one table again with its three indexes; back up, each campaign
+    has its partition again holding the same rows, and the next loads of an old and a new
+    campaign are stored and agree with their runs."""
+    from alembic import command
+
+    from warehouse.store.connect import _alembic_config, open_warehouse
+
+    load_json(cli, write(tmp_path / "a.csv", csv_text(runs(30))), campaign="night-1")
+    load_json(cli, write(tmp_path / "b.csv", csv_text(runs(20, start_seed=40))), campaign="night-2")
+    everything = "SELECT * FROM cell_stats ORDER BY import_id, slot, solver_id, instance_id, host_id"
+    before = query(location, everything)
+    wh = open_warehouse(location)
+    try:
+        with wh.engine.connect() as conn, conn.begin():
+            command.downgrade(_alembic_config(conn), "0013")
+            # (read here: a warehouse at 0013 does not open for this Blockyard)
+            assert conn.exec_driver_sql("SELECT relkind FROM pg_class WHERE oid = 'cell_stats'::regclass").scalar() == "r"
+            assert [tuple(r) for r in conn.exec_driver_sql(everything)] == before
+            names = sorted(r[0] for r in conn.exec_driver_sql(
+                "SELECT indexname FROM pg_indexes WHERE tablename = 'cell_stats' AND schemaname = current_schema()"))
+            assert names == ["ix_cells_campaign", "ix_cells_import", "ix_cells_solver"]
+            assert conn.exec_driver_sql("SELECT to_regclass('cells_c1')").scalar() is None
+            assert conn.exec_driver_sql("SELECT to_regproc('blockyard_open_cells')").scalar() is None
+    finally:
+        wh.close()
+    assert cli("upgrade").code == 0
+    ids = dict(query(location, "SELECT name, id FROM campaigns"))
+    assert cell_partitions(location) == sorted(f"cells_c{i}" for i in ids.values())
+    assert query(location, everything) == before
+    load_json(cli, write(tmp_path / "c.csv", csv_text(runs(10, start_seed=90))), campaign="night-1")
+    load_json(cli, write(tmp_path / "d.csv", csv_text(runs(10))), campaign="night-3")
+    assert len(cell_partitions(location)) == 3 and loose_tables(location) == []
+    assert query(location, "SELECT sum(n) FROM cell_stats WHERE slot = 1") == [(70,)]
+    assert cli("verify").code == 0

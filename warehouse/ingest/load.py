@@ -217,6 +217,7 @@ class _Import:
     next_id: int
     first_id: int
     partition: str | None = None  # PostgreSQL: the campaign's new partition, attached at the end
+    cells: str | None = None  # PostgreSQL: the new campaign's table of cell summaries, attached at the end
     id_end: int | None = None  # PostgreSQL: one past the block of run ids the load took
     writer: Writer | None = None
     read: int = 0
@@ -325,20 +326,23 @@ def _open_import(conn, wh: Warehouse, p: Path, campaign: str, layout: Layout, fl
         next_id = (conn.execute(select(func.max(S.runs.c.id))).scalar() or 0) + 1
     else:  # loads of other campaigns write meanwhile: a block of ids for every record the file may hold
         next_id = take_run_ids(conn, total)
-    fresh = None
+    fresh = fresh_cells = None
     try:
         if partitions.partitioned(conn):
             if quick_allowed:
                 fresh = partitions.fresh(conn, cid)  # a new campaign's: filled with no key, attached at the end
             if fresh is None:  # a campaign with runs: through its partition's run key, made now if it has none
                 partitions.ensure(conn, cid)
+                partitions.ensure_cells(conn, cid)
                 partitions.keyed(conn, cid)
+            else:  # its cell summaries too: filled with no index, indexed and attached at the end
+                fresh_cells = partitions.fresh_cells(conn, cid)
         key = runkey.RunKey(conn, wh.is_sqlite, cid, fl.chain, quick_allowed, total, fresh=fresh is not None)
     except IntegrityError:  # the campaign's key index could not be made: two live runs share a key
         raise StorageError(f"campaign {campaign} already holds two live runs under one key (solver, instance, "
                            "seed and replicate), put in outside Blockyard, so its runs cannot be kept once each; "
                            f"nothing from {fl.name} was stored; blockyard verify names them") from None
-    imp = _Import(conn, cid, import_id, dims, key, next_id, next_id, partition=fresh,
+    imp = _Import(conn, cid, import_id, dims, key, next_id, next_id, partition=fresh, cells=fresh_cells,
                   id_end=None if wh.is_sqlite else next_id + total)
     dims.before_sql = lambda: imp.writer.wait() if imp.writer is not None else None
     return imp
@@ -417,6 +421,8 @@ def _write_summaries(imp: _Import, wh: Warehouse, summing: Summing) -> None:
         summing.result()
         if imp.partition is not None:  # (never seen: nothing refuses a run of a new campaign's table)
             partitions.attach(conn, imp.campaign_id)
+        if imp.cells is not None:
+            partitions.attach_cells(conn, imp.campaign_id)
         cells.from_runs(conn, imp.import_id, imp.first_id, imp.next_id - 1)
         blocks.rebuild(conn, [imp.import_id])
         return
@@ -451,7 +457,9 @@ def _write_summaries(imp: _Import, wh: Warehouse, summing: Summing) -> None:
                 attaching.close()
         if attaching is not None:
             attaching.wait()
-        cells.copy_binary(conn, payload)
+        cells.copy_binary(conn, payload, imp.cells or "cell_stats")
+        if imp.cells is not None:  # its three indexes built by sorting, then attached
+            partitions.attach_cells(conn, imp.campaign_id)
         blocks.write(conn, block_rows)
         return
     group_of = {iid: key[0] for key, iid in imp.dims.instances.items()}

@@ -61,11 +61,12 @@ def write_rows(conn, dialect: str, rows: list[tuple]) -> None:
                 cp.write_row(r)
 
 
-def copy_binary(conn, payload: bytes) -> None:
-    """A server: cell rows as one binary COPY payload, COLUMNS order (ingest/cellsums.CellSums.copy_payload)."""
+def copy_binary(conn, payload: bytes, table: str = "cell_stats") -> None:
+    """A server: cell rows as one binary COPY payload, COLUMNS order (ingest/cellsums.CellSums.copy_payload),
+    into cell_stats or a new campaign's table of its own (store/partitions.fresh_cells)."""
     if payload:
         cur = conn.connection.driver_connection.cursor()
-        with cur.copy(f"COPY cell_stats ({', '.join(COLUMNS)}) FROM STDIN (FORMAT binary)") as cp:
+        with cur.copy(f"COPY {table} ({', '.join(COLUMNS)}) FROM STDIN (FORMAT binary)") as cp:
             cp.write(payload)
 
 
@@ -82,15 +83,24 @@ def refresh_statistics(engine, import_id: int) -> None:
     try:
         with engine.connect() as conn:
             conn = conn.execution_options(isolation_level="AUTOCOMMIT")
-            known = conn.exec_driver_sql("SELECT reltuples FROM pg_class WHERE oid = 'cell_stats'::regclass").scalar()
+            table = _cells_of(conn, import_id)
+            known = conn.exec_driver_sql(f"SELECT reltuples FROM pg_class WHERE oid = '{table}'::regclass").scalar()
             added = conn.execute(select(func.count()).select_from(C).where(C.c.import_id == import_id)).scalar()
             if known is None or known < 0 or added > 0.1 * known:
                 # the columns the slices filter, join and group on: the sums and counts are only
                 # read, and their statistics were two thirds of the ANALYZE (80 -> 30 ms)
-                conn.exec_driver_sql("ANALYZE cell_stats (campaign_id, import_id, solver_id, instance_id, host_id, slot)")
+                conn.exec_driver_sql(f"ANALYZE {table} (campaign_id, import_id, solver_id, instance_id, host_id, slot)")
                 conn.exec_driver_sql("ANALYZE block_stats (campaign_id, import_id, slot, solver_id, group_id)")
     except Exception:  # (statistics only: the load itself is stored)
         pass
+
+
+def _cells_of(conn, import_id: int) -> str:
+    """The table holding an import's cell rows: its campaign's partition of cell_stats (revision
+    0014), whose statistics the planner reads for a slice of that campaign."""
+    name = conn.exec_driver_sql("SELECT c.relname FROM imports i JOIN pg_class c ON c.relname = 'cells_c' || i.campaign_id "
+                                f"AND c.relnamespace = current_schema()::regnamespace WHERE i.id = {int(import_id)}").scalar()
+    return name or "cell_stats"
 
 
 def touched(conn, run_condition) -> list[tuple]:

@@ -13,8 +13,13 @@ campaign's partition, under the partition's own unique run key (`keyed`: made by
 the first such load, and kept; revision 0013); `ensure` makes that partition first when the
 campaign has none (empty, attached at once).
 
-Making, attaching and indexing a table are the owner's rights: they go through three functions
-(revisions 0010 and 0013), which run as the schema's owner for anyone who may insert runs, so a
+The cell summaries are partitioned by campaign the same way (revision 0014): a new campaign's
+load fills a table of its own with no index (`fresh_cells`) and, once it is full, builds its three
+indexes by sorting and attaches it (`attach_cells`); a load into a campaign that holds runs
+writes through cell_stats into the campaign's partition (`ensure_cells` makes it when missing).
+
+Making, attaching and indexing a table are the owner's rights: they go through five functions
+(revisions 0010, 0013 and 0014), which run as the schema's owner for anyone who may insert runs, so a
 team member with the documented grants (docs/reliability.md) loads as before. Attaching takes
 SHARE UPDATE EXCLUSIVE on the parent, which neither readers nor the loads of other campaigns
 (ROW EXCLUSIVE on the parent alone, store.connect.hold_runs_for_load) wait for; two attaches
@@ -59,6 +64,23 @@ def attach(conn, campaign_id: int) -> None:
 def attach_sql(campaign_id: int) -> str:
     """The attach's statement (a load sends it from a helper thread: ingest/write.Sender)."""
     return f"SELECT blockyard_attach_partition({int(campaign_id)})"
+
+
+def fresh_cells(conn, campaign_id: int) -> str | None:
+    """A table for a new campaign's cell summaries: shaped like cell_stats, with no index, not
+    attached (None: the campaign has its partition of cell_stats; revision 0014)."""
+    return conn.exec_driver_sql(f"SELECT blockyard_open_cells({int(campaign_id)}, false)").scalar()
+
+
+def ensure_cells(conn, campaign_id: int) -> None:
+    """The campaign's partition of cell_stats, made empty and attached when it has none yet."""
+    conn.exec_driver_sql(f"SELECT blockyard_open_cells({int(campaign_id)}, true)")
+
+
+def attach_cells(conn, campaign_id: int) -> None:
+    """Make the filled cell table the campaign's partition of cell_stats: its three indexes are
+    built here by sorting, a third of what keeping them up to date row by row cost."""
+    conn.exec_driver_sql(f"SELECT blockyard_attach_cells({int(campaign_id)})")
 
 
 def same_columns(conn, name: str) -> None:
