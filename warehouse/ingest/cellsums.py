@@ -199,6 +199,11 @@ class CellSums:
         for slot in list(self.parts):
             self._merge(slot)
 
+    def count(self) -> int:
+        """How many cell rows the sums make (the slots' parts merged first)."""
+        self.merge_all()
+        return sum(len(parts[0][0]) for parts in self.parts.values())
+
     def rows(self, campaign_id: int, import_id: int) -> list[tuple]:
         out: list[tuple] = []
         for slot in sorted(self.parts):

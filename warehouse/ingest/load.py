@@ -218,6 +218,7 @@ class _Import:
     first_id: int
     partition: str | None = None  # PostgreSQL: the campaign's new partition, attached at the end
     cells: str | None = None  # PostgreSQL: the new campaign's table of cell summaries, attached at the end
+    cell_rows: int | None = None  # PostgreSQL: the cell rows written (None: not counted)
     id_end: int | None = None  # PostgreSQL: one past the block of run ids the load took
     writer: Writer | None = None
     read: int = 0
@@ -297,7 +298,7 @@ def _write(wh: Warehouse, p: Path, campaign: str, layout: Layout, fl: FileLoad, 
     if not wh.is_sqlite and loaded:
         from ..store import cells
 
-        cells.refresh_statistics(wh.engine, imp.import_id)
+        cells.refresh_statistics(wh.engine, imp.campaign_id, imp.import_id, imp.cell_rows)
     parts = [f"{loaded} {'run' if loaded == 1 else 'runs'} loaded into campaign {campaign}"]
     if fl.replaces is not None:
         parts.append(f"in place of import {fl.replaces} (wholly retracted)")
@@ -450,6 +451,7 @@ def _write_summaries(imp: _Import, wh: Warehouse, summing: Summing) -> None:
                 pass
             imp.key.proved(summing)
             payload = summaries.copy_payload(imp.campaign_id, imp.import_id)
+            imp.cell_rows = summaries.count()
             group_of = {iid: key[0] for key, iid in imp.dims.instances.items()}
             block_rows = blocks.from_sums(summaries, imp.campaign_id, imp.import_id, group_of)
         finally:

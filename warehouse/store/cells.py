@@ -70,22 +70,26 @@ def copy_binary(conn, payload: bytes, table: str = "cell_stats") -> None:
             cp.write(payload)
 
 
-def refresh_statistics(engine, import_id: int) -> None:
-    """A server, after a load has committed: ANALYZE the cell and block summaries when they have
-    no planner statistics yet or the load added more than a tenth of their rows (the share at
-    which autovacuum would analyze them, a minute or so later; PostgreSQL documentation,
-    "Populating a Database": run ANALYZE after loading much data). Without statistics the
-    planner took a one-family slice of a new 510,000-run warehouse for a handful of cells and
-    joined them to the instances in a nested loop: 0.21 s a statement instead of 0.02
-    (docs/performance.md). Outside the load's transaction, so that loads side by side never wait
-    on one another's ANALYZE; a team member who does not own the tables is skipped by the
-    server with a notice, and any failure here leaves the committed load as it is."""
+def refresh_statistics(engine, campaign_id: int, import_id: int, added: int | None = None) -> None:
+    """A server, after a load has committed: ANALYZE the campaign's cell summaries and the block
+    summaries when they have no planner statistics yet or the load added more than a tenth of
+    their rows (`added`, counted here when not given; the share at which autovacuum would
+    analyze them, a minute or so later; PostgreSQL documentation, "Populating a Database": run
+    ANALYZE after loading much data). Without statistics the planner took a one-family slice of
+    a new 510,000-run warehouse for a handful of cells and joined them to the instances in a
+    nested loop: 0.21 s a statement instead of 0.02, and 0.5 s a blocktest instead of 0.1
+    (docs/performance.md). The campaign's partition of cell_stats alone (revision 0014): a slice
+    of the campaign reads its statistics, and ANALYZE of the partitioned table would read every
+    campaign's. Outside the load's transaction, so that loads side by side never wait on one
+    another's ANALYZE; a team member who does not own the tables is skipped by the server with a
+    notice, and any failure here leaves the committed load as it is."""
     try:
         with engine.connect() as conn:
             conn = conn.execution_options(isolation_level="AUTOCOMMIT")
-            table = _cells_of(conn, import_id)
-            known = conn.exec_driver_sql(f"SELECT reltuples FROM pg_class WHERE oid = '{table}'::regclass").scalar()
-            added = conn.execute(select(func.count()).select_from(C).where(C.c.import_id == import_id)).scalar()
+            table = f"cells_c{int(campaign_id)}"
+            known = conn.exec_driver_sql(f"SELECT reltuples FROM pg_class WHERE oid = to_regclass('{table}')").scalar()
+            if added is None:
+                added = conn.execute(select(func.count()).select_from(C).where(C.c.import_id == import_id)).scalar()
             if known is None or known < 0 or added > 0.1 * known:
                 # the columns the slices filter, join and group on: the sums and counts are only
                 # read, and their statistics were two thirds of the ANALYZE (80 -> 30 ms)
@@ -93,14 +97,6 @@ def refresh_statistics(engine, import_id: int) -> None:
                 conn.exec_driver_sql("ANALYZE block_stats (campaign_id, import_id, slot, solver_id, group_id)")
     except Exception:  # (statistics only: the load itself is stored)
         pass
-
-
-def _cells_of(conn, import_id: int) -> str:
-    """The table holding an import's cell rows: its campaign's partition of cell_stats (revision
-    0014), whose statistics the planner reads for a slice of that campaign."""
-    name = conn.exec_driver_sql("SELECT c.relname FROM imports i JOIN pg_class c ON c.relname = 'cells_c' || i.campaign_id "
-                                f"AND c.relnamespace = current_schema()::regnamespace WHERE i.id = {int(import_id)}").scalar()
-    return name or "cell_stats"
 
 
 def touched(conn, run_condition) -> list[tuple]:
