@@ -437,10 +437,10 @@ def _write_summaries(imp: _Import, wh: Warehouse, summing: Summing) -> None:
         from ..store import cells
         from .write import Sender
 
-        # A new campaign's table becomes its partition now, its indexes built by sorting, while
-        # this thread waits for the run hashes' verdict and makes the summaries' rows (-0.1 s of
-        # a 510,000-run load). A run found twice in the file fails the run key's build as well
-        # as the verdict: the verdict's StartOver is the one raised, after the attach's end.
+        # A new campaign's runs table becomes its partition now (the block-range index on id
+        # built by reading it, the retractions reference checked) while this thread waits for
+        # the run hashes' verdict and makes the summaries' rows (-0.1 s of a 510,000-run load).
+        # Should both fail, the verdict's StartOver is the one raised, after the attach's end.
         attaching = None
         if imp.partition is not None:
             attaching = Sender(conn.connection.driver_connection)
