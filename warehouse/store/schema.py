@@ -238,6 +238,8 @@ claims = Table(
 # retracted) runs. A slice that names only treatments, campaigns, instances and hosts collapses
 # from these rows instead of the runs: the work grows with the number of cells, not of runs.
 # The loader writes them with the runs; retraction and its undo rebuild the cells they touch.
+# PostgreSQL partitions them by campaign, as the runs (revision 0014, store/partitions.py): a
+# new campaign's rows fill a table of their own, indexed by sorting once full, then attached.
 
 cell_stats = Table(
     "cell_stats",
