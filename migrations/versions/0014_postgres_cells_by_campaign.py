@@ -8,7 +8,7 @@ table of its own with no index (`blockyard_open_cells`, called beside the runs' 
 as the campaign's partition (`blockyard_attach_cells`): 0.09 s for the same rows
 (docs/performance.md). A load into a campaign that holds runs writes through the parent into
 the campaign's partition, as before. Every campaign the warehouse holds gets its partition now,
-its rows copied over.
+its rows copied over, and its statistics (the old table's are gone with it).
 
 The parent keeps the indexes' names (ix_cells_campaign, ix_cells_solver, ix_cells_import); each
 partition's are attached to them. The grants on cell_stats are carried to the new table.
@@ -24,6 +24,7 @@ down_revision = "0013"
 branch_labels = None
 depends_on = None
 
+STATISTICS = "campaign_id, import_id, solver_id, instance_id, host_id, slot"
 INDEXES = (("ix_cells_campaign", "campaign", "campaign_id, slot, solver_id, instance_id"),
            ("ix_cells_solver", "solver", "solver_id, slot, instance_id"),
            ("ix_cells_import", "import", "import_id"))
@@ -118,6 +119,8 @@ def upgrade() -> None:
     _indexes()
     _grant(grants)
     _functions(bind)
+    for cid in campaigns:  # the planner's statistics, as a load leaves them (store/cells.refresh_statistics)
+        op.execute(f"ANALYZE cells_c{int(cid)} ({STATISTICS})")
 
 
 def downgrade() -> None:
@@ -135,3 +138,4 @@ def downgrade() -> None:
     op.execute("DROP TABLE cell_stats_0014")  # (its partitions go with it)
     _indexes()
     _grant(grants)
+    op.execute(f"ANALYZE cell_stats ({STATISTICS})")

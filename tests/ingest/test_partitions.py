@@ -278,6 +278,10 @@ def test_revision_0014_down_and_up_keeps_every_cell_row_and_the_loads_go_on(cli,
     ids = dict(query(location, "SELECT name, id FROM campaigns"))
     assert cell_partitions(location) == sorted(f"cells_c{i}" for i in ids.values())
     assert query(location, everything) == before
+    # each partition analyzed by the upgrade (the old table's statistics went with it)
+    analyzed = query(location, "SELECT DISTINCT tablename FROM pg_stats WHERE schemaname = current_schema() "
+                               "AND tablename LIKE 'cells_c%' AND attname = 'instance_id' ORDER BY 1")
+    assert [r[0] for r in analyzed] == cell_partitions(location)
     load_json(cli, write(tmp_path / "c.csv", csv_text(runs(10, start_seed=90))), campaign="night-1")
     load_json(cli, write(tmp_path / "d.csv", csv_text(runs(10))), campaign="night-3")
     assert len(cell_partitions(location)) == 3 and loose_tables(location) == []
