@@ -227,6 +227,8 @@ def main() -> None:
     ap.add_argument("--scale", help="also grow one warehouse to these sizes, e.g. 1000000,3000000")
     ap.add_argument("--no-rounds", action="store_true", help="only the --scale part")
     a = ap.parse_args()
+    if a.repeat < 1 or a.rounds < 1:
+        ap.error("--rounds and --repeat take a whole number of 1 or more")
     db = f"blockyard_bench_{os.getpid()}"
     if not admin(f"CREATE DATABASE {db}"):
         print(f"postgres benchmark skipped: no PostgreSQL server reachable at {server_url()} "

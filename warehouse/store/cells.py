@@ -61,7 +61,7 @@ def write_rows(conn, dialect: str, rows: list[tuple]) -> None:
                 cp.write_row(r)
 
 
-def copy_binary(conn, payload: bytes, table: str = "cell_stats") -> None:
+def copy_binary(conn, payload: bytes, table: str) -> None:
     """A server: cell rows as one binary COPY payload, COLUMNS order (ingest/cellsums.CellSums.copy_payload),
     into cell_stats or a new campaign's table of its own (store/partitions.fresh_cells)."""
     if payload:

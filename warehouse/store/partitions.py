@@ -19,8 +19,9 @@ indexes by sorting and attaches it (`attach_cells`); a load into a campaign that
 writes through cell_stats into the campaign's partition (`ensure_cells` makes it when missing).
 
 Making, attaching and indexing a table are the owner's rights: they go through five functions
-(revisions 0010, 0013 and 0014), which run as the schema's owner for anyone who may insert runs, so a
-team member with the documented grants (docs/reliability.md) loads as before. Attaching takes
+(revisions 0010, 0013 and 0014), which run as the schema's owner for anyone who may insert into
+the table they serve (runs, or cell_stats), so a team member with the documented grants
+(docs/reliability.md) loads as before. Attaching takes
 SHARE UPDATE EXCLUSIVE on the parent, which neither readers nor the loads of other campaigns
 (ROW EXCLUSIVE on the parent alone, store.connect.hold_runs_for_load) wait for; two attaches
 take turns, for the moment between the one's attach and its commit. SQLite keeps one runs
